@@ -1,0 +1,75 @@
+"""``twin check CONFIG``: validate a plant config and print a summary.
+
+Exit status 0 when valid, 1 when the file has problems (one line each on
+stderr), 2 when the file cannot be read.
+
+The output is a sequence of report sections. Each report is a function
+``(config) -> list[str]`` listed in :data:`REPORTS`; a new section (for example
+a redundancy report) is added by appending its function there.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections import Counter
+from collections.abc import Callable
+
+from twin.config import ConfigError, PlantConfig, load_config
+
+Report = Callable[[PlantConfig], list[str]]
+
+
+def _counts(counter: Counter[str]) -> str:
+    return ", ".join(f"{name} {n}" for name, n in sorted(counter.items())) or "none"
+
+
+def summary_report(cfg: PlantConfig) -> list[str]:
+    """Unit, flowsheet size, sensors by quantity, services."""
+    u, b, m, mon = cfg.unit, cfg.broker, cfg.metrics, cfg.monitoring
+    if u.barometric_tag:
+        baro = f"tag {u.barometric_tag} (fallback {u.barometric_pressure:.0f} Pa)"
+    elif u.barometric_pressure is not None:
+        baro = f"{u.barometric_pressure:.0f} Pa"
+    else:
+        baro = "not configured"
+    tls = "tls" if b.tls is not None else "plain"
+    auth = f", user {b.username}" if b.username else ""
+    return [
+        f"unit: {u.id} ({u.name}); barometric pressure: {baro}",
+        f"streams: {len(cfg.streams)}",
+        f"equipment: {len(cfg.equipment)} ({_counts(Counter(e.kind for e in cfg.equipment))})",
+        f"sections: {', '.join(s.id for s in cfg.sections) or 'none'}",
+        f"sensors: {len(cfg.sensors)} ({_counts(Counter(s.quantity for s in cfg.sensors))})",
+        f"broker: {b.host}:{b.port} MQTT {b.protocol} {tls}{auth}, client id {b.client_id}, "
+        f"qos {b.qos}, republish under {b.republish_prefix}/",
+        f"metrics: http://{m.address}:{m.port}/metrics",
+        f"monitoring: cycle {mon.cycle:g} s, window {mon.window:g} s, "
+        f"steady signals {len(mon.steady_signals)}",
+    ]
+
+
+# Report sections printed in order after a successful load.
+REPORTS: list[Report] = [summary_report]
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("config", metavar="CONFIG", help="plant config file (TOML)")
+
+
+def run(args: argparse.Namespace) -> int:
+    try:
+        cfg = load_config(args.config)
+    except ConfigError as exc:
+        for line in exc.problems:
+            print(line, file=sys.stderr)
+        return 1
+    except OSError as exc:
+        print(f"twin check: cannot read {args.config}: {exc.strerror or exc}", file=sys.stderr)
+        return 2
+    print(f"{cfg.source_path}: OK")
+    for report in REPORTS:
+        print()
+        for line in report(cfg):
+            print(line)
+    return 0
