@@ -1,0 +1,379 @@
+"""Nonlinear data reconciliation by successive linearisation (Gauss-Newton SQP).
+
+Problem: ``min (y − z_M)ᵀ V⁻¹ (y − z_M)`` subject to ``f(z) = 0``, with ``z`` all variables
+and ``M`` the measured ones. Each iteration linearises ``f`` at ``z_k``, solves the linear
+reconciliation problem (unmeasured variables eliminated by projection, as in
+:mod:`twin.reconcile.linear`), and moves along the step with a backtracking line
+search on the ℓ₁ merit function ``½ aᵀV⁻¹a + μ ‖f(z)/s_f‖₁``.
+
+References
+----------
+.. [1] J. Nocedal, S. J. Wright, *Numerical Optimization*, 2nd ed., Springer (2006),
+   §18.3 (merit functions) and eq. 18.36 (penalty update).
+.. [2] C. M. Crowe, "Reconciliation of process flow rates by matrix projection. Part II:
+   the nonlinear case", AIChE J. 32(4), 616–623 (1986).
+.. [3] VDI 2048 Blatt 1 (2017).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Protocol, runtime_checkable
+
+import numpy as np
+import scipy.linalg as sla
+import scipy.sparse as sp
+from scipy import stats as sps
+
+from twin.reconcile.linear import (
+    DEFAULT_RANK_TOL,
+    Classification,
+    InconsistentConstraintsError,
+    _build_result,
+    _check_inputs,
+    _cov_factor,
+    _solve,
+)
+
+#: Exceptions from the model callbacks that are treated as "no value here".
+MODEL_ERRORS = (ValueError, ArithmeticError)
+
+
+@runtime_checkable
+class ConstraintSystem(Protocol):
+    """Constraints ``f(z) = 0`` over all variables ``z`` (measured and unmeasured).
+
+    Implementations may also define ``scales() -> (variable_scales, residual_scales)``,
+    typical magnitudes of the variables (n_vars,) and residuals (m,), used for the
+    convergence tests and the merit function.
+    """
+
+    n_vars: int
+
+    def residuals(self, z: np.ndarray) -> np.ndarray:
+        """Constraint residuals f(z), shape (m,)."""
+        ...
+
+    def jacobian(self, z: np.ndarray) -> sp.spmatrix | np.ndarray:
+        """Jacobian ∂f/∂z, shape (m, n_vars)."""
+        ...
+
+
+@dataclass(frozen=True)
+class LinearSystem:
+    """Adapter: linear constraints ``J z = c`` as a :class:`ConstraintSystem`."""
+
+    J: np.ndarray
+    c: np.ndarray
+
+    @property
+    def n_vars(self) -> int:
+        return self.J.shape[1]
+
+    def residuals(self, z: np.ndarray) -> np.ndarray:
+        return self.J @ z - self.c
+
+    def jacobian(self, z: np.ndarray) -> np.ndarray:
+        return self.J
+
+
+@dataclass(frozen=True)
+class SolveOptions:
+    """Settings of :func:`reconcile`.
+
+    Attributes
+    ----------
+    max_iter : int
+        Maximum number of SQP iterations.
+    step_tol : float
+        Converged when the largest scaled step ``|Δz_i| / s_i`` is below this
+        (measured variables are scaled by their σ) ...
+    residual_tol : float
+        ... and the largest scaled residual ``|f_i| / s_f,i`` is below this.
+    objective_tol : float
+        Alternatively converged after a full step that changed ``½ aᵀV⁻¹a`` by less
+        than ``objective_tol·max(1, objective)`` with the residual test met.
+    armijo : float
+        Sufficient-decrease constant of the line search.
+    backtrack : float
+        Step-length reduction factor on each backtrack.
+    max_backtracks : int
+        Backtracks before the line search gives up.
+    rank_tol : float or None
+        Relative rank tolerance (see :func:`twin.reconcile.linear.classify`).
+    """
+
+    max_iter: int = 50
+    step_tol: float = 1e-10
+    residual_tol: float = 1e-9
+    objective_tol: float = 1e-14
+    armijo: float = 1e-4
+    backtrack: float = 0.5
+    max_backtracks: int = 40
+    rank_tol: float | None = None
+
+
+@dataclass(frozen=True)
+class Result:
+    """Outcome of :func:`reconcile`; every number is NaN unless ``status == "converged"``.
+
+    Attributes
+    ----------
+    status : str
+        ``"converged"``, ``"max_iter"``, ``"line_search_failed"``, ``"model_error"``
+        or ``"inconsistent"``.
+    iterations : int
+    z_hat : ndarray, shape (n_vars,)
+        Reconciled values of all variables; NaN for unobservable unmeasured ones.
+    x_hat : ndarray, shape (n,)
+        Reconciled measured variables (order of ``y``).
+    cov_z : ndarray, shape (n_vars, n_vars)
+        Full covariance of ``z_hat`` from the linearisation at the solution; NaN in
+        rows/columns of unobservable variables.
+    adjustments : ndarray, shape (n,)
+        ``y − x_hat``.
+    cov_a : ndarray, shape (n, n)
+        Covariance of the adjustments.
+    gamma, dof, p_value : float, int, float
+        Global test ``aᵀV⁻¹a`` against χ²(dof); p_value NaN when dof is 0.
+    z : ndarray, shape (n,)
+        Normalised adjustments; NaN where not redundant.
+    redundant : ndarray of bool, shape (n,)
+    observable : ndarray of bool, shape (n_vars − n,)
+        For the unmeasured variables, in increasing index order (``unmeasured``).
+    redundancy : ndarray, shape (n,)
+        ``1 − Var(x̂_j)/V_jj``.
+    message : str
+    measured, unmeasured : ndarray of int
+    z_warm : ndarray, shape (n_vars,)
+        The final iterate with every entry finite (unobservable entries keep a
+        feasible but arbitrary value): pass it as ``z0`` next time. NaN on failure.
+    classification : Classification or None
+    """
+
+    status: str
+    iterations: int
+    z_hat: np.ndarray
+    x_hat: np.ndarray
+    cov_z: np.ndarray
+    adjustments: np.ndarray
+    cov_a: np.ndarray
+    gamma: float
+    dof: int
+    p_value: float
+    z: np.ndarray
+    redundant: np.ndarray
+    observable: np.ndarray
+    redundancy: np.ndarray
+    message: str
+    measured: np.ndarray
+    unmeasured: np.ndarray
+    z_warm: np.ndarray
+    classification: Classification | None = field(default=None)
+
+    @property
+    def converged(self) -> bool:
+        return self.status == "converged"
+
+
+def _failed(status, message, iterations, n_vars, measured, unmeasured) -> Result:
+    n, p = len(measured), len(unmeasured)
+    nan = np.full
+    return Result(
+        status=status, iterations=iterations, z_hat=nan(n_vars, np.nan),
+        x_hat=nan(n, np.nan), cov_z=nan((n_vars, n_vars), np.nan),
+        adjustments=nan(n, np.nan), cov_a=nan((n, n), np.nan), gamma=float("nan"),
+        dof=0, p_value=float("nan"), z=nan(n, np.nan), redundant=np.zeros(n, bool),
+        observable=np.zeros(p, bool), redundancy=nan(n, np.nan), message=message,
+        measured=measured, unmeasured=unmeasured, z_warm=nan(n_vars, np.nan),
+    )
+
+
+def _evaluate(system, z, m_expected=None):
+    """Residuals and dense Jacobian at z; raises ValueError on non-finite output."""
+    f = np.asarray(system.residuals(z), dtype=float).reshape(-1)
+    if m_expected is not None and f.shape != (m_expected,):
+        raise ValueError(f"residuals changed length: {f.shape[0]} != {m_expected}")
+    if not np.all(np.isfinite(f)):
+        raise ValueError(f"non-finite residuals at rows {np.flatnonzero(~np.isfinite(f))[:10].tolist()}")
+    J = system.jacobian(z)
+    J = np.asarray(J.toarray() if sp.issparse(J) else J, dtype=float)
+    if J.shape != (f.shape[0], len(z)):
+        raise ValueError(f"jacobian has shape {J.shape}, expected {(f.shape[0], len(z))}")
+    if not np.all(np.isfinite(J)):
+        raise ValueError("non-finite jacobian entries")
+    return f, J
+
+
+def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
+              options: SolveOptions | None = None,
+              classification: Classification | None = None) -> Result:
+    """Reconcile measurements against nonlinear constraints ``f(z) = 0``.
+
+    Parameters
+    ----------
+    system : ConstraintSystem
+        Residuals and Jacobian of the constraints over all variables.
+    z0 : array_like, shape (n_vars,)
+        Starting point (warm start: the previous solution's ``z_warm``).
+    measured : array_like of int, shape (n,)
+        Indices of the measured variables in ``z``, in the order of ``y``.
+    y : array_like, shape (n,)
+        Measured values [variable units].
+    V : array_like, shape (n, n) or (n,)
+        Measurement covariance [variable unit²] (1-D: its diagonal).
+    options : SolveOptions, optional
+    classification : Classification, optional
+        Precomputed classification (e.g. from :func:`~twin.reconcile.linear.classify`
+        when the set of valid tags last changed) whose flags are reported instead of
+        the ones decided at the solution; keeps flags stable near the rank tolerance.
+
+    Returns
+    -------
+    Result
+        ``status == "converged"`` or NaN-filled numbers with a message.
+
+    Raises
+    ------
+    ValueError
+        On invalid inputs (shapes, non-finite ``y`` or ``z0``, singular ``V``, empty or
+        duplicate ``measured``). Errors raised by the model callbacks (``ValueError``,
+        ``ArithmeticError``) never escape: at ``z0`` they give ``status="model_error"``,
+        during the line search they shorten the step.
+    """
+    opts = options or SolveOptions()
+    n_vars = int(system.n_vars)
+    z0 = np.asarray(z0, dtype=float).reshape(-1)
+    if z0.shape != (n_vars,):
+        raise ValueError(f"z0 has shape {z0.shape}, expected ({n_vars},)")
+    if not np.all(np.isfinite(z0)):
+        raise ValueError(f"z0 contains non-finite values at {np.flatnonzero(~np.isfinite(z0)).tolist()}")
+    measured = np.asarray(measured, dtype=int).reshape(-1)
+    if measured.size == 0:
+        raise ValueError("no measurements: 'measured' is empty (all measurements removed?)")
+    if np.unique(measured).size != measured.size:
+        raise ValueError("'measured' contains duplicate indices")
+    if measured.min() < 0 or measured.max() >= n_vars:
+        raise ValueError(f"'measured' indices must lie in [0, {n_vars})")
+    unmeasured = np.setdiff1d(np.arange(n_vars), measured)
+    if classification is not None and not np.array_equal(classification.measured, measured):
+        raise ValueError("classification was computed for a different measured set")
+    tol = DEFAULT_RANK_TOL if opts.rank_tol is None else float(opts.rank_tol)
+
+    fail = lambda status, msg, it: _failed(status, msg, it, n_vars, measured, unmeasured)  # noqa: E731
+
+    try:
+        f, J = _evaluate(system, z0)
+    except MODEL_ERRORS as exc:
+        return fail("model_error", f"model error at the starting point: {type(exc).__name__}: {exc}", 0)
+    m = f.shape[0]
+    _, y, V, _, _ = _check_inputs(np.zeros((m, measured.size)), y, V, None, None)
+    factor = _cov_factor(V)
+    Lfac, diagonal = factor
+    sigma = Lfac if diagonal else np.sqrt(np.diag(V))
+
+    vs = np.maximum(np.abs(z0), 1.0)
+    rs = None
+    if hasattr(system, "scales"):
+        vs_sys, rs_sys = system.scales()
+        vs = np.asarray(vs_sys, dtype=float).reshape(-1).copy()
+        rs = np.asarray(rs_sys, dtype=float).reshape(-1)
+        if vs.shape != (n_vars,) or rs.shape != (m,) or np.any(vs <= 0) or np.any(rs <= 0):
+            raise ValueError("system.scales() must return positive arrays of shapes (n_vars,), (m,)")
+    vs[measured] = sigma
+    if rs is None:
+        rs = np.linalg.norm(J * vs, axis=1)
+        rs[rs == 0.0] = 1.0
+
+    def objective(z):
+        a = y - z[measured]
+        w = a / Lfac if diagonal else sla.solve_triangular(Lfac, a, lower=True)
+        return 0.5 * float(w @ w), a
+
+    def vinv(a):
+        return a / Lfac**2 if diagonal else sla.cho_solve((Lfac, True), a)
+
+    z = z0.copy()
+    mu = 0.0
+    obj, a = objective(z)
+    status, message, core = "max_iter", f"no convergence in {opts.max_iter} iterations", None
+    it = 0
+    for it in range(1, opts.max_iter + 1):
+        JM, JU = J[:, measured], J[:, unmeasured]
+        try:
+            core = _solve(JM, y, V, JU, JM @ z[measured] - f, tol, factor)
+        except InconsistentConstraintsError as exc:
+            return fail("inconsistent", f"linearised constraints inconsistent: {exc}", it)
+        d = np.zeros(n_vars)
+        d[measured] = core.x_hat - z[measured]
+        d[unmeasured] = core.u_part
+        fs = f / rs
+        if np.max(np.abs(d) / vs) <= opts.step_tol and np.max(np.abs(fs)) <= opts.residual_tol:
+            status, message = "converged", f"converged in {it} iterations (step test)"
+            break
+        # l1 merit function with penalty update (Nocedal & Wright eq. 18.36, rho = 1/2)
+        dx = d[measured]
+        gd = -float(vinv(a) @ dx)
+        dHd = float(dx @ vinv(dx))
+        fn1 = float(np.sum(np.abs(fs)))
+        if fn1 > 0.0:
+            mu = max(mu, 1.1 * (gd + 0.5 * dHd) / (0.5 * fn1))
+        phi = obj + mu * fn1
+        slope = gd - mu * fn1
+        alpha, accepted, last_err = 1.0, False, ""
+        for _ in range(opts.max_backtracks + 1):
+            zt = z + alpha * d
+            try:
+                ft, Jt = _evaluate(system, zt, m)
+            except MODEL_ERRORS as exc:
+                last_err = f"{type(exc).__name__}: {exc}"
+                alpha *= opts.backtrack
+                continue
+            objt, at = objective(zt)
+            phit = objt + mu * float(np.sum(np.abs(ft / rs)))
+            if phit <= phi + opts.armijo * alpha * min(slope, 0.0) or (slope >= 0 and phit <= phi):
+                accepted = True
+                break
+            alpha *= opts.backtrack
+        if not accepted:
+            status = "line_search_failed"
+            message = "line search failed to reduce the merit function" + (
+                f" (last model error: {last_err})" if last_err else "")
+            core = None
+            break
+        obj_change = abs(objt - obj)
+        z, f, J, obj, a = zt, ft, Jt, objt, at
+        if (alpha == 1.0 and obj_change <= opts.objective_tol * max(1.0, obj)
+                and np.max(np.abs(f / rs)) <= opts.residual_tol):
+            try:
+                core = _solve(J[:, measured], y, V, J[:, unmeasured],
+                              J[:, measured] @ z[measured] - f, tol, factor)
+            except InconsistentConstraintsError as exc:
+                return fail("inconsistent", f"linearised constraints inconsistent: {exc}", it)
+            status, message = "converged", f"converged in {it} iterations (objective test)"
+            break
+    if status != "converged" or core is None:
+        return fail(status, message, it)
+
+    lin = _build_result(core, J[:, measured], y, classification, measured, unmeasured, tol)
+    # statistics at the accepted iterate z (the final linear step is below tolerance)
+    adj = y - z[measured]
+    gamma = float(adj @ vinv(adj))
+    z_norm = np.full(measured.size, np.nan)
+    ok = lin.redundant & (np.diag(lin.cov_a) > 0)
+    z_norm[ok] = adj[ok] / np.sqrt(np.diag(lin.cov_a)[ok])
+    cov_z = np.empty((n_vars, n_vars))
+    cov_z[np.ix_(measured, measured)] = lin.cov_x
+    cov_z[np.ix_(unmeasured, unmeasured)] = lin.cov_u
+    cov_z[np.ix_(measured, unmeasured)] = lin.cov_xu
+    cov_z[np.ix_(unmeasured, measured)] = lin.cov_xu.T
+    z_hat = z.copy()
+    z_hat[unmeasured[~lin.observable]] = np.nan
+    p_value = float(sps.chi2.sf(gamma, lin.dof)) if lin.dof > 0 else float("nan")
+    return Result(
+        status=status, iterations=it, z_hat=z_hat, x_hat=z[measured].copy(), cov_z=cov_z,
+        adjustments=adj, cov_a=lin.cov_a, gamma=gamma, dof=lin.dof, p_value=p_value,
+        z=z_norm, redundant=lin.redundant, observable=lin.observable,
+        redundancy=lin.redundancy, message=message, measured=measured,
+        unmeasured=unmeasured, z_warm=z.copy(), classification=lin.classification,
+    )
