@@ -218,6 +218,7 @@ class MqttClient:
             )
         }
         self._last_error: str | None = None
+        self._refused = False  # the last CONNACK was a refusal (set on the network thread)
         self._client = self._build()
 
     # ----------------------------------------------------------- set-up ---
@@ -336,6 +337,7 @@ class MqttClient:
         self, client: paho.Client, userdata: Any, flags: Any, reason_code: Any, properties: Any
     ) -> None:
         if reason_code.is_failure:
+            self._refused = True
             with self._lock:
                 self._c["connect_failures"] += 1
             self._last_error = (
@@ -368,7 +370,16 @@ class MqttClient:
     ) -> None:
         was = self._connected.is_set()
         self._connected.clear()
-        if was:
+        refused, self._refused = self._refused, False
+        if not was and not refused:
+            # closed before a CONNACK: e.g. plain MQTT sent to a TLS listener
+            with self._lock:
+                self._c["connect_failures"] += 1
+            self._last_error = (
+                f"MQTT broker {self.settings.address} closed the connection before accepting "
+                f"it ({reason_code}); is TLS required or the port wrong?"
+            )
+        elif was:
             with self._lock:
                 self._c["disconnects"] += 1
             if reason_code.is_failure:
