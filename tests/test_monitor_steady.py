@@ -135,9 +135,7 @@ def test_missing_sample_breaks_hold_but_does_not_poison_filters():
             assert verdict.failing == ("f",)
             continue
         verdict = det.update({"f": float(v)}, t)
-        assert verdict.r["f"] == ref.update(v) or (
-            math.isnan(verdict.r["f"]) and math.isnan(ref.r)
-        )
+        assert verdict.r["f"] == ref.update(v) or (math.isnan(verdict.r["f"]) and math.isnan(ref.r))
 
 
 def test_per_signal_critical_values_and_transient_reason():

@@ -52,7 +52,7 @@ def _check_lambdas(lambdas: Iterable[float]) -> tuple[float, float, float]:
     for name, v in zip(("lambda1", "lambda2", "lambda3"), lam, strict=True):
         if not 0.0 < v <= 1.0:
             raise ValueError(f"{name} must be in (0, 1], got {v!r}")
-    return lam  # type: ignore[return-value]
+    return lam
 
 
 def default_warmup(lambda2: float, lambda3: float) -> int:
