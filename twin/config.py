@@ -174,14 +174,15 @@ class PayloadConfig(_Model):
 
     ``value``, ``timestamp`` and ``quality`` are JSON pointers (RFC 6901); a plain
     key ``"v"`` is stored as ``"/v"``. ``format = "number"`` means the payload is
-    a bare number and the receive time is its timestamp.
+    a bare number and the receive time is its timestamp; ``"batch"`` is one JSON
+    message carrying several tags by name (see :mod:`twin.ingest.decode`).
     """
 
-    format: Literal["json", "number"] = "json"
+    format: Literal["json", "number", "batch"] = "json"
     value: str = "/v"
     timestamp: str | None = "/ts"
     quality: str | None = "/q"
-    timestamp_format: Literal["epoch_s", "epoch_ms", "rfc3339"] = "epoch_s"
+    timestamp_format: Literal["epoch_s", "epoch_ms", "rfc3339", "auto"] = "epoch_s"
     good_quality: list[str | int | bool] = Field(default_factory=lambda: ["good"])
 
     @model_validator(mode="after")
@@ -531,9 +532,10 @@ def _check_equipment(e: EquipmentConfig, streams: set[str], producers: dict[str,
             expected = "one stream id (a string)"
         if not ok:
             add(f"{where}.ports.{name}", f"wrong type {type(value).__name__} ({value!r}); expected {expected}")
-            continue
-        ports[name] = value
-        for sid in [value] if isinstance(value, str) else value:
+        else:
+            ports[name] = value
+        refs = [value] if isinstance(value, str) else value if isinstance(value, list) else []
+        for sid in (r for r in refs if isinstance(r, str)):  # counted anyway: no follow-on errors
             if sid not in streams:
                 add(f"{where}.ports.{name}", f"unknown stream {sid!r}; expected a declared stream id")
                 continue
@@ -654,9 +656,10 @@ def _check_sensors(cfg: PlantConfig, streams: set[str], baro: float | None, add:
         if not s.topic or s.topic.startswith("/") or "+" in s.topic or "#" in s.topic:
             add(f"{where}.topic", f"{s.topic!r} is not a publishable topic; expected no leading '/' "
                 "and no wildcards")
-        loc = (s.topic,) if s.payload.format == "number" else (s.topic, s.payload.value)
+        loc: tuple[str, ...] = {"number": (s.topic,), "batch": (s.topic, s.tag)}.get(
+            s.payload.format, (s.topic, s.payload.value))
         if loc in locations:
-            add(f"{where}.topic", f"{s.topic!r} {'/'.join(loc[1:]) or ''} is already mapped to "
+            add(f"{where}.topic", f"{s.topic!r} {' '.join(loc[1:])} is already mapped to "
                 f"{locations[loc]!r}; expected one sensor per topic and payload location")
         locations.setdefault(loc, s.tag)
     tag = cfg.unit.barometric_tag
