@@ -124,6 +124,18 @@ def test_missing_input_holds_then_becomes_unavailable():
     assert _feed(a, [(110, 10.5)]) == [(110, UNAVAILABLE, ACTIVE)]
 
 
+def test_release_from_suppression_with_missing_input():
+    a = ThresholdAlarm("p", Level("alarm", 10.0, 9.0), HIGH, unavailable_after=30.0)
+    a.update(12.0, 0, suppress="plant not steady")
+    # missing since 10; released at 20 (gap 10 s < 30 s): normal, no evidence either way
+    assert _feed(a, [(10, NAN)], suppress="plant not steady") == []
+    assert _feed(a, [(20, NAN), (40, NAN)]) == [(20, SUPPRESSED, NORMAL), (40, NORMAL, UNAVAILABLE)]
+    b = ThresholdAlarm("p", Level("alarm", 10.0, 9.0), HIGH, unavailable_after=30.0)
+    b.update(NAN, 0, suppress="load low")
+    # missing for 50 s by the time suppression lifts: straight to unavailable
+    assert _feed(b, [(50, NAN)]) == [(50, SUPPRESSED, UNAVAILABLE)]
+
+
 def test_short_gap_does_not_reset_the_on_delay():
     a = ThresholdAlarm("p", Level("alarm", 10.0, 9.0), HIGH, on_delay=30.0)
     seq = [(0, 11.0), (10, NAN), (20, NAN), (30, 11.0)]

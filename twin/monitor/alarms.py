@@ -144,6 +144,13 @@ class ThresholdAlarm:
     unavailable_after : float or None
         Window time [s] of missing input after which the state becomes
         ``"unavailable"``; None keeps holding the last state.
+
+    Notes
+    -----
+    Delays are measured between window times: with windows every 10 s and
+    ``on_delay = 30``, a value first beyond the set threshold at t = 0 raises
+    the alarm at the window of t = 30 if every valid window since has stayed
+    beyond it. A delay of 0 acts in the same window.
     """
 
     def __init__(
