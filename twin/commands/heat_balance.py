@@ -1,0 +1,148 @@
+"""``twin heat-balance CONFIG``: solve and print the forward heat balance."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any
+
+from twin.config import ConfigError, load_config
+from twin.model.flowsheet import Flowsheet
+from twin.model.solve import HeatBalance, Operation, SolveError, solve_design, solve_off_design
+from twin.performance.kpi import CyclePerformanceSettings, cycle_kpis
+from twin.properties import FORMULATION
+
+CAUTION = (
+    "Advisory model only: not for protection or control; defer to plant procedures, "
+    "manufacturers' limits, local codes and licensed engineers."
+)
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("config", help="plant configuration file (TOML)")
+    parser.add_argument("--load", type=float, default=1.0, help="main-steam flow / design flow, 0.2 to 1.2 (default 1.0)")
+    parser.add_argument("--pressure", choices=("sliding", "fixed"), default="sliding", help="throttle-pressure operation off design")
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+
+
+def solve(config: Any, load: float = 1.0, pressure_mode: str = "sliding") -> tuple[HeatBalance, HeatBalance]:
+    """Solve the design point and, unless ``load`` is 1.0 in design terms, the off-design point.
+
+    Returns (design, result); at load 1.0 the off-design solve is still run so that
+    the result comes from the same relations as any other load.
+    """
+    fs = Flowsheet.from_config(config)
+    op = Operation.from_config(config)
+    design = solve_design(fs, op)
+    result = solve_off_design(fs, op, design, load, pressure_mode)
+    return design, result
+
+
+def stream_table(hb: HeatBalance) -> dict[str, dict[str, float]]:
+    """Per stream m [kg/s], p [Pa], T [K], h [J/kg], x [-] (NaN when single phase)."""
+    ctx = hb.context()
+    table = {}
+    for sid in hb.flowsheet.layout.streams:
+        st = ctx.ph(sid)
+        x = st.x if st.two_phase else float("nan")
+        table[sid] = {"m": ctx.m(sid), "p": ctx.p(sid), "T": st.T, "h": st.h, "x": x}
+    return table
+
+
+def report(config: Any, hb: HeatBalance) -> dict[str, Any]:
+    """The heat balance as one JSON-ready dict (SI units; names carry the unit where not SI-obvious)."""
+    ctx = hb.context()
+    k = cycle_kpis(hb.flowsheet, ctx, CyclePerformanceSettings.from_config(config))
+    equipment: dict[str, dict[str, float]] = {}
+    for e in hb.flowsheet.equipment:
+        if hasattr(e, "power") and callable(e.power):
+            equipment[e.id] = {"power_watts": e.power(ctx)}
+        elif hasattr(e, "duty"):
+            equipment[e.id] = {"duty_watts": e.duty(ctx)}
+    for name in hb.flowsheet.layout.extras:
+        eid, what = name.split(".", 1)
+        equipment.setdefault(eid, {})[f"{what}_watts"] = float(hb.z[hb.flowsheet.layout.extra(name)])
+    return {
+        "unit_id": config.unit.id,
+        "formulation": FORMULATION,
+        "load_fraction": hb.load,
+        "pressure_mode": hb.pressure_mode,
+        "newton_iterations": hb.info.iterations,
+        "gross_power_watts": k["gross_power"],
+        "net_power_watts": k["net_power"],
+        "auxiliary_power_watts": k["auxiliary_power"],
+        "heat_input_watts": k["heat_input"],
+        "gross_efficiency": k["gross_efficiency"],
+        "net_efficiency": k["net_efficiency"],
+        "turbine_heat_rate": k["turbine_heat_rate"],
+        "turbine_heat_rate_kj_per_kwh": k["turbine_heat_rate_kj_per_kwh"],
+        "turbine_heat_rate_btu_per_kwh": k["turbine_heat_rate_btu_per_kwh"],
+        "net_heat_rate_kj_per_kwh": k["net_heat_rate_kj_per_kwh"],
+        "plant_heat_rate_kj_per_kwh": k["plant_heat_rate_kj_per_kwh"],
+        "boiler_efficiency": k["boiler_efficiency"],
+        "exhaust_moisture_elep": k.get("exhaust_moisture_elep"),
+        "exhaust_quality_elep": k.get("exhaust_quality_elep"),
+        "exhaust_moisture_ueep": k.get("exhaust_moisture_ueep"),
+        "exhaust_quality_ueep": k.get("exhaust_quality_ueep"),
+        "exhaust_loss_joules_per_kilogram": k.get("exhaust_loss"),
+        "section_efficiency": k["section_efficiency"],
+        "extraction_flow_kg_per_s": k["extraction_flow"],
+        "heaters": k["heaters"],
+        "condensers": k["condensers"],
+        "equipment": equipment,
+        "streams": stream_table(hb),
+    }
+
+
+def _print_text(r: dict[str, Any]) -> None:
+    w = sys.stdout.write
+    w(f"Heat balance of {r['unit_id']} at load {r['load_fraction']:.3f} ({r['pressure_mode']} pressure), {r['formulation']}\n")
+    w(f"{CAUTION}\n\n")
+    w(f"{'stream':<14} {'m kg/s':>9} {'p kPa':>10} {'T °C':>8} {'h kJ/kg':>9} {'x':>6}\n")
+    for sid, s in r["streams"].items():
+        x = "" if s["x"] != s["x"] else f"{s['x']:.4f}"
+        w(f"{sid:<14} {s['m']:9.3f} {s['p'] / 1e3:10.2f} {s['T'] - 273.15:8.2f} {s['h'] / 1e3:9.2f} {x:>6}\n")
+    w("\nequipment\n")
+    for eid, vals in r["equipment"].items():
+        w(f"  {eid:<18} " + "  ".join(f"{k.removesuffix('_watts')} {v / 1e6:9.3f} MW" for k, v in vals.items()) + "\n")
+    w("\nperformance\n")
+    w(f"  gross power            {r['gross_power_watts'] / 1e6:9.3f} MW\n")
+    w(f"  net power              {r['net_power_watts'] / 1e6:9.3f} MW\n")
+    w(f"  heat input             {r['heat_input_watts'] / 1e6:9.3f} MW\n")
+    w(f"  gross / net efficiency {r['gross_efficiency']:.4f} / {r['net_efficiency']:.4f}\n")
+    w(f"  turbine heat rate      {r['turbine_heat_rate_kj_per_kwh']:9.1f} kJ/kWh  ({r['turbine_heat_rate_btu_per_kwh']:.1f} Btu/kWh)\n")
+    w(f"  plant heat rate (fuel) {r['plant_heat_rate_kj_per_kwh']:9.1f} kJ/kWh  (boiler efficiency {r['boiler_efficiency']:.3f})\n")
+    for sec, eta in r["section_efficiency"].items():
+        w(f"  section efficiency {sec:<8} {eta:.4f}\n")
+    if r["exhaust_quality_elep"] is not None:
+        w(f"  exhaust quality ELEP / UEEP {r['exhaust_quality_elep']:.4f} / {r['exhaust_quality_ueep']:.4f}\n")
+    for hid, h in r["heaters"].items():
+        w(f"  {hid:<6} TTD {h['ttd']:6.2f} K  DCA {h['dca']:5.2f} K  rise {h['temperature_rise']:6.2f} K  extraction {h['extraction_flow']:7.3f} kg/s\n")
+    for cid, c in r["condensers"].items():
+        w(f"  {cid} p {c['pressure'] / 1e3:.3f} kPa  ITD {c['itd']:.2f} K  TTD {c['ttd']:.2f} K  LMTD {c['lmtd']:.2f} K  cleanliness {c['cleanliness']:.3f}\n")
+
+
+def run(args: argparse.Namespace) -> int:
+    try:
+        config = load_config(args.config)
+    except FileNotFoundError:
+        print(f"twin heat-balance: {args.config}: no such file", file=sys.stderr)
+        return 2
+    except ConfigError as exc:
+        print(str(exc), file=sys.stderr)
+        return 1
+    if config.performance.load_stream is None:
+        print(f"{args.config}: performance.load_stream: missing; expected the stream whose flow sets the load", file=sys.stderr)
+        return 1
+    try:
+        _, hb = solve(config, args.load, args.pressure)
+    except (SolveError, ValueError) as exc:
+        print(f"twin heat-balance: {args.config}: {exc}", file=sys.stderr)
+        return 1
+    r = report(config, hb)
+    if args.json:
+        print(json.dumps(r, indent=1, allow_nan=True))
+    else:
+        _print_text(r)
+    return 0

@@ -1,0 +1,226 @@
+"""Cycle key performance indicators from a flowsheet state.
+
+All functions take a model ``Context`` (a state ``z`` of the flowsheet) so
+the same code serves the forward heat balance, the reconciled state and,
+through numerical gradients, the uncertainty of each KPI.
+
+References
+----------
+ASME PTC 6-2004, *Steam Turbines* (turbine-cycle heat rate conventions).
+ASME PTC 12.1-2015, *Closed Feedwater Heaters* (TTD, DCA).
+HEI *Standards for Steam Surface Condensers* (ITD, LMTD, cleanliness factor) [memory].
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from twin.model.core import Context
+from twin.model.flow import Boiler, Pump, Reheater
+from twin.model.flowsheet import Flowsheet
+from twin.model.heat_exchange import ClosedHeater, Condenser, OpenHeater
+from twin.model.turbine import ExhaustLoss, Generator
+
+KJ_PER_KWH = 3600.0  # kJ/kWh per unit of dimensionless heat rate
+BTU_PER_KWH = 3412.1416  # Btu_IT/kWh per unit of dimensionless heat rate (1 Btu_IT = 1055.05585262 J)
+
+
+@dataclass(frozen=True)
+class Section:
+    """A turbine section from ``inlet`` to ``outlet`` stream."""
+
+    id: str
+    inlet: str
+    outlet: str
+
+
+@dataclass(frozen=True)
+class CyclePerformanceSettings:
+    """What the KPIs need beyond the flowsheet (from the ``[performance]`` section)."""
+
+    load_stream: str
+    design_flow: float  # [kg/s]
+    auxiliary_fixed: float  # [W]
+    auxiliary_variable: float  # [W] at design flow
+    boiler_efficiency: tuple[tuple[float, float], ...]  # (load fraction, efficiency)
+    sections: tuple[Section, ...]
+
+    @classmethod
+    def from_config(cls, config: Any) -> CyclePerformanceSettings:
+        perf = config.performance
+        return cls(
+            load_stream=perf.load_stream,
+            design_flow=float(next(s for s in config.streams if s.id == perf.load_stream).design["mass_flow"]),
+            auxiliary_fixed=float(perf.auxiliary_fixed),
+            auxiliary_variable=float(perf.auxiliary_variable),
+            boiler_efficiency=tuple((float(a), float(b)) for a, b in perf.boiler_efficiency),
+            sections=tuple(Section(s.id, s.inlet, s.outlet) for s in config.sections),
+        )
+
+
+def section_efficiency(ctx: Context, inlet: str, outlet: str) -> float:
+    """Enthalpy-drop efficiency (h_in − h_out)/(h_in − h_s(p_out, s_in)) [-].
+
+    Meaningful where the outlet is superheated (HP, IP); for a wet outlet it
+    is the efficiency to the given end point (ELEP or UEEP).
+    """
+    si = ctx.ph(inlet)
+    hs = ctx.water.h_ps(ctx.p(outlet), si.s)
+    return (si.h - ctx.h(outlet)) / (si.h - hs)
+
+
+def quality(ctx: Context, stream: str) -> float:
+    """Vapour quality x at the stream's (p, h) [-], clipped to [0, 1] (1 = dry or superheated)."""
+    x = ctx.ph(stream).x
+    return float(min(max(x, 0.0), 1.0)) if x == x else float("nan")
+
+
+def heater_kpis(ctx: Context, e: ClosedHeater) -> dict[str, float]:
+    """TTD, DCA, feedwater temperature rise [K] and extraction flow [kg/s] of a closed heater."""
+    w = ctx.water
+    t_in = ctx.ph(e.port("tube_in")).T
+    t_out = ctx.ph(e.port("tube_out")).T
+    t_sat = w.T_sat(ctx.p(e.port("steam_in")))
+    t_drain = ctx.ph(e.port("drain_out")).T
+    return {
+        "ttd": t_sat - t_out,
+        "dca": t_drain - t_in,
+        "temperature_rise": t_out - t_in,
+        "extraction_flow": ctx.m(e.port("steam_in")),
+    }
+
+
+def condenser_kpis(
+    ctx: Context, e: Condenser, cw_in: float, cw_out: float, u_clean: float | None = None
+) -> dict[str, float]:
+    """Condenser ITD, TTD, LMTD [K], duty [W], UA [W/K], U [W/(m2 K)] and cleanliness [-].
+
+    Parameters
+    ----------
+    cw_in, cw_out : float
+        Cooling-water inlet and outlet temperatures [K].
+    u_clean : float, optional
+        Clean heat-transfer coefficient [W/(m2 K)]; cleanliness is NaN without it.
+    """
+    p = ctx.p(e.port("exhaust"))
+    t_s = ctx.water.T_sat(p)
+    itd, ttd = t_s - cw_in, t_s - cw_out
+    if itd > 0 and ttd > 0 and abs(itd - ttd) > 1e-9:
+        lmtd = (cw_out - cw_in) / math.log(itd / ttd)
+    else:
+        lmtd = float("nan")
+    duty = e.duty(ctx)
+    ua = duty / lmtd if lmtd == lmtd else float("nan")
+    u = ua / e.params["area"]
+    return {
+        "pressure": p,
+        "saturation_temperature": t_s,
+        "itd": itd,
+        "ttd": ttd,
+        "lmtd": lmtd,
+        "duty": duty,
+        "ua": ua,
+        "u": u,
+        "cleanliness": u / u_clean if u_clean else float("nan"),
+    }
+
+
+def interpolate_boiler_efficiency(table: Sequence[tuple[float, float]], load: float) -> float:
+    """Boiler efficiency at a load fraction, linear in the table and held flat outside it [-]."""
+    if not table:
+        return float("nan")
+    xs, ys = zip(*sorted(table), strict=True)
+    return float(np.interp(load, xs, ys))
+
+
+def cycle_kpis(
+    fs: Flowsheet,
+    ctx: Context,
+    settings: CyclePerformanceSettings,
+    cooling_water: dict[str, tuple[float, float]] | None = None,
+) -> dict[str, Any]:
+    """All cycle KPIs at one state.
+
+    Parameters
+    ----------
+    fs : Flowsheet
+    ctx : Context
+        The state (``fs.context(z, constants)``); constants give the condensers'
+        design cooling-water flow and clean U when present.
+    settings : CyclePerformanceSettings
+    cooling_water : dict, optional
+        Measured (inlet, outlet) cooling-water temperatures [K] by condenser id;
+        without them the forward model's values (design flow, configured inlet) are used.
+
+    Returns
+    -------
+    dict
+        Flat numbers [SI] and nested dicts ``section_efficiency``, ``heaters``,
+        ``condensers``, ``extraction_flow``.
+    """
+    gens = [e for e in fs.equipment if isinstance(e, Generator)]
+    p_gen = sum(float(ctx.z[ctx.layout.extra(f"{g.id}.power")]) for g in gens)
+    p_shaft = sum(float(ctx.z[ctx.layout.extra(f"{g.id}.shaft_power")]) for g in gens)
+    pumps = [e for e in fs.equipment if isinstance(e, Pump)]
+    pump_power = sum(float(ctx.z[ctx.layout.extra(f"{e.id}.power")]) for e in pumps)
+    load = ctx.m(settings.load_stream) / settings.design_flow
+    aux = settings.auxiliary_fixed + settings.auxiliary_variable * load + pump_power
+    q_in = sum(e.duty(ctx) for e in fs.equipment if isinstance(e, Boiler | Reheater))
+    net = p_gen - aux
+    eta = p_gen / q_in
+    eta_net = net / q_in
+    eta_boiler = interpolate_boiler_efficiency(settings.boiler_efficiency, load)
+    out: dict[str, Any] = {
+        "load_fraction": load,
+        "gross_power": p_gen,
+        "shaft_power": p_shaft,
+        "auxiliary_power": aux,
+        "net_power": net,
+        "heat_input": q_in,
+        "gross_efficiency": eta,
+        "net_efficiency": eta_net,
+        "turbine_heat_rate": q_in / p_gen,
+        "turbine_heat_rate_kj_per_kwh": KJ_PER_KWH / eta,
+        "turbine_heat_rate_btu_per_kwh": BTU_PER_KWH / eta,
+        "net_heat_rate_kj_per_kwh": KJ_PER_KWH / eta_net,
+        "boiler_efficiency": eta_boiler,
+        "plant_heat_rate_kj_per_kwh": KJ_PER_KWH / (eta_net * eta_boiler),
+    }
+    sections: dict[str, float] = {}
+    for s in settings.sections:
+        sections[s.id] = section_efficiency(ctx, s.inlet, s.outlet)
+        loss = next((e for e in fs.of_kind(ExhaustLoss) if e.port("inlet") == s.outlet), None)
+        if loss is not None:
+            ueep = loss.port("outlet")
+            sections[f"{s.id}_UEEP"] = section_efficiency(ctx, s.inlet, ueep)
+            out["exhaust_quality_elep"] = quality(ctx, s.outlet)
+            out["exhaust_moisture_elep"] = 1.0 - out["exhaust_quality_elep"]
+            out["exhaust_quality_ueep"] = quality(ctx, ueep)
+            out["exhaust_moisture_ueep"] = 1.0 - out["exhaust_quality_ueep"]
+            out["exhaust_loss"] = ctx.h(ueep) - ctx.h(s.outlet)
+    out["section_efficiency"] = sections
+    out["heaters"] = {e.id: heater_kpis(ctx, e) for e in fs.of_kind(ClosedHeater) if isinstance(e, ClosedHeater)}
+    extraction = {hid: v["extraction_flow"] for hid, v in out["heaters"].items()}
+    for e in fs.of_kind(OpenHeater):
+        extraction[e.id] = ctx.m(e.port("steam_in"))
+    out["extraction_flow"] = extraction
+    condensers = {}
+    for e in fs.of_kind(Condenser):
+        assert isinstance(e, Condenser)
+        k = ctx.constants.get(e.id, {})
+        if cooling_water and e.id in cooling_water:
+            cw_in, cw_out = cooling_water[e.id]
+        elif "cw_flow" in k:
+            cw_in = e.params["cooling_water_inlet_temperature"]
+            cw_out = cw_in + e.duty(ctx) / (k["cw_flow"] * e.params["cooling_water_cp"])
+        else:
+            cw_in = e.params["cooling_water_inlet_temperature"]
+            cw_out = cw_in + e.params["cooling_water_rise"]
+        condensers[e.id] = condenser_kpis(ctx, e, cw_in, cw_out, k.get("u_clean"))
+    out["condensers"] = condensers
+    return out
