@@ -7,6 +7,9 @@ as one :class:`ConfigError`, one line per problem::
 
     <file>: <key.path>: <what was wrong>; expected <what>
 
+Shapes and types are checked first; the cross-reference checks (ports against
+kinds, stream connectivity, sensor targets, ...) run once those pass.
+
 A quantity is a number (taken as SI) or a string with a unit (``"16.2 MPa"``,
 ``"541 degC"``, ``"295 kg/s"``, ``"30 s"``), see :mod:`twin.units`.
 """
@@ -83,25 +86,28 @@ _EXAMPLE = {
 }
 
 
-def _quantity(dimension: str, minimum: float | None = None) -> Any:
+def _si(dimension: str, minimum: float | None = None) -> BeforeValidator:
     def check(value: Any) -> float:
         si = _to_si(value, dimension)
         if minimum is not None and not si > minimum:
             raise ValueError(f"{value!r} is not above {minimum:g} (SI); expected a positive {dimension}")
         return si
 
-    schema = {
+    return BeforeValidator(check)
+
+
+def _doc(dimension: str) -> WithJsonSchema:
+    return WithJsonSchema({
         "anyOf": [{"type": "number"}, {"type": "string"}],
         "description": f"{dimension}: a number in SI or a string with a unit, e.g. {_EXAMPLE[dimension]!r}",
-    }
-    return Annotated[float, BeforeValidator(check), WithJsonSchema(schema)]
+    })
 
 
-Duration = _quantity("duration", minimum=0.0)
-Delay = _quantity("duration")
-Ratio = _quantity("ratio")
-Power = _quantity("power")
-Pressure = _quantity("pressure", minimum=0.0)
+Duration = Annotated[float, _si("duration", 0.0), _doc("duration")]
+Delay = Annotated[float, _si("duration"), _doc("duration")]
+Ratio = Annotated[float, _si("ratio"), _doc("ratio")]
+Power = Annotated[float, _si("power"), _doc("power")]
+Pressure = Annotated[float, _si("pressure", 0.0), _doc("pressure")]
 Slug = Annotated[str, Field(pattern=r"^[a-z0-9]([a-z0-9_-]*[a-z0-9])?$")]
 Ident = Annotated[str, Field(pattern=r"^[A-Za-z0-9_][A-Za-z0-9_.:-]*$")]
 Pair = tuple[float, float]
@@ -183,7 +189,7 @@ class PayloadConfig(_Model):
     timestamp: str | None = "/ts"
     quality: str | None = "/q"
     timestamp_format: Literal["epoch_s", "epoch_ms", "rfc3339", "auto"] = "epoch_s"
-    good_quality: list[str | int | bool] = Field(default_factory=lambda: ["good"])
+    good_quality: list[str | int | bool] = Field(default_factory=lambda: list[str | int | bool](["good"]))
 
     @model_validator(mode="after")
     def _pointers(self) -> PayloadConfig:
