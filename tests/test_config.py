@@ -399,6 +399,9 @@ def test_performance_and_sections():
     assert [x.split(": ")[1] for x in lines] == [
         "performance.load_stream", "performance.throttle_valve",
         "performance.boiler_efficiency[1]", "sections[HP].outlet"]
+    data["performance"] = {"load_stream": "ms"}  # no design mass_flow on ms
+    data["sections"] = []
+    assert "performance.load_stream: stream 'ms' has no design mass_flow" in one(data)
 
 
 def test_monitoring_checks():

@@ -592,6 +592,10 @@ def _check_performance(cfg: PlantConfig, streams: set[str], add: Any) -> None:
         sid = getattr(perf, key)
         if sid is not None and sid not in streams:
             add(f"performance.{key}", f"unknown stream {sid!r}; expected a stream id")
+    load = cfg.streams_by_id.get(perf.load_stream or "")
+    if load is not None and "mass_flow" not in load.design:
+        add("performance.load_stream", f"stream {load.id!r} has no design mass_flow; expected the "
+            "stream whose design flow defines full load")
     valve = perf.throttle_valve
     if valve is not None:
         e = cfg.equipment_by_id.get(valve)
