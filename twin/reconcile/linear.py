@@ -182,7 +182,7 @@ def _check_inputs(A, y, V, B, c):
 def _cov_factor(V: np.ndarray) -> tuple[np.ndarray, bool]:
     """Return (L, is_diagonal): V = L Lᵀ; for diagonal V, L is the vector of σ."""
     d = np.diag(V)
-    diagonal = np.count_nonzero(V - np.diag(d)) == 0
+    diagonal = np.count_nonzero(V) == np.count_nonzero(d)
     if diagonal:
         bad = np.flatnonzero(d <= 0.0)
         if bad.size:
@@ -232,8 +232,9 @@ def _project(A, B, c, sigma, rank_tol) -> _Projection:
         Q, R, piv = sla.qr(Bs, mode="full", pivoting=True)
         diag = np.abs(np.diag(R))
         rank_b = int(np.count_nonzero(diag > rank_tol * diag[0]))
-        Ap = Q[:, rank_b:].T @ As
-        cp = Q[:, rank_b:].T @ cs
+        Q2 = Q[:, rank_b:]
+        Ap = np.asarray((sp.csr_matrix(As).T @ Q2).T)  # A is sparse in networks
+        cp = Q2.T @ cs
         R11 = R[:rank_b, :rank_b]
         # null space of B: basic = −R11⁻¹ R12 · nonbasic; a basic variable is
         # observable iff its row of R11⁻¹ R12 vanishes; non-basic ones never are.
@@ -262,6 +263,13 @@ def _reduce_rows(Ap, cp, Lfac, diagonal, rank_tol):
     if Ap.shape[0] == 0:
         return np.zeros((n, 0)), np.zeros((0, 0)), np.zeros(0, dtype=int)
     W = (Ap * Lfac).T if diagonal else (Ap @ Lfac).T  # (n, q) = (Ap L)ᵀ
+    if W.shape[1] <= W.shape[0]:
+        # fast path: unpivoted QR is enough when no diagonal entry of R is small
+        Q, R = sla.qr(W, mode="economic")
+        diag = np.abs(np.diag(R))
+        if diag.size and np.all(diag > rank_tol * np.max(diag)):
+            LG = Lfac[:, None] * Q if diagonal else Lfac @ Q
+            return LG, R, np.arange(W.shape[1])
     Q, R, piv = sla.qr(W, mode="economic", pivoting=True)
     diag = np.abs(np.diag(R))
     if diag.size == 0 or diag[0] == 0.0:
@@ -377,11 +385,18 @@ def _statistics(core: _Core, A, redundant=None, observable=None) -> dict:
     V, LG, proj = core.V, core.LG, core.proj
     redundant = proj.redundant if redundant is None else redundant
     observable = proj.observable if observable is None else observable
-    cov_a = LG @ LG.T
+    if LG.shape[1]:
+        low = sla.blas.dsyrk(1.0, LG, lower=True)  # LG LGᵀ in the lower triangle, zeros above
+        cov_a = low + low.T
+        cov_a[np.diag_indices_from(cov_a)] *= 0.5
+    else:
+        cov_a = np.zeros_like(V)
     cov_x = V - cov_a
-    K = proj.T @ A  # u = T c − K x̂
-    cov_xu = -(cov_x @ K.T)
-    cov_u = K @ cov_x @ K.T
+    K = np.asarray((sp.csr_matrix(A).T @ proj.T.T).T)  # u = T c − K x̂
+    KLG = K @ LG
+    VK = V @ K.T
+    cov_xu = -(VK - LG @ KLG.T)
+    cov_u = K @ VK - KLG @ KLG.T
     u_hat = core.u_part.copy()
     u_hat[~observable] = np.nan
     cov_u[~observable, :] = np.nan

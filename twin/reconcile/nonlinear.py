@@ -104,9 +104,9 @@ class SolveOptions:
     """
 
     max_iter: int = 50
-    step_tol: float = 1e-10
+    step_tol: float = 1e-8
     residual_tol: float = 1e-9
-    objective_tol: float = 1e-14
+    objective_tol: float = 1e-12
     armijo: float = 1e-4
     backtrack: float = 0.5
     max_backtracks: int = 40
@@ -331,7 +331,9 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
                 continue
             objt, at = objective(zt)
             phit = objt + mu * float(np.sum(np.abs(ft / rs)))
-            if phit <= phi + opts.armijo * alpha * min(slope, 0.0) or (slope >= 0 and phit <= phi):
+            # the slack admits merit changes at the rounding-error level near the solution
+            slack = 1e-13 * max(1.0, abs(phi))
+            if phit <= phi + opts.armijo * alpha * min(slope, 0.0) + slack:
                 accepted = True
                 break
             alpha *= opts.backtrack
@@ -343,7 +345,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
             break
         obj_change = abs(objt - obj)
         z, f, J, obj, a = zt, ft, Jt, objt, at
-        if (alpha == 1.0 and obj_change <= opts.objective_tol * max(1.0, obj)
+        if (obj_change <= opts.objective_tol * max(1.0, obj)
                 and np.max(np.abs(f / rs)) <= opts.residual_tol):
             try:
                 core = _solve(J[:, measured], y, V, J[:, unmeasured],

@@ -1,0 +1,182 @@
+"""Serial elimination of suspect measurements.
+
+Repeatedly remove the measurement that the GLR statistic blames most among those the
+measurement test flags, re-reconcile without it, and stop when nothing is flagged, the
+bound on eliminations is reached, or every suspect is needed to keep a protected
+quantity observable.
+
+References
+----------
+.. [1] S. Narasimhan, C. Jordache, *Data Reconciliation and Gross Error Detection*,
+   Gulf Publishing (2000), §8.2 (serial elimination strategies).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+
+import numpy as np
+
+from twin.reconcile.linear import _dense, classify
+from twin.reconcile.nonlinear import ConstraintSystem, LinearSystem, Result, SolveOptions, reconcile
+from twin.reconcile.stats import glr_bias, measurement_test
+
+Protected = Callable[[np.ndarray], bool] | Iterable[int] | None
+
+
+@dataclass(frozen=True)
+class EliminatedMeasurement:
+    """One eliminated measurement.
+
+    Attributes
+    ----------
+    position : int
+        Position in the original measurement vector ``y``.
+    variable : int
+        Index of the variable in ``z``.
+    measured_value : float
+    z : float
+        Its normalised adjustment when it was eliminated.
+    bias : float
+        GLR bias estimate when it was eliminated [measurement units].
+    re_estimate : float
+        Its reconciled value without the eliminated measurements (final result).
+    re_estimate_sigma : float
+        Standard uncertainty of ``re_estimate``.
+    """
+
+    position: int
+    variable: int
+    measured_value: float
+    z: float
+    bias: float
+    re_estimate: float
+    re_estimate_sigma: float
+
+
+@dataclass(frozen=True)
+class Elimination:
+    """Outcome of :func:`eliminate_suspects`.
+
+    Attributes
+    ----------
+    result : Result
+        Reconciliation without the eliminated measurements.
+    eliminated : tuple of EliminatedMeasurement
+    kept : ndarray of int
+        Positions (in the original ``y``) still used.
+    reason : str
+        Why the elimination stopped.
+    """
+
+    result: Result
+    eliminated: tuple[EliminatedMeasurement, ...]
+    kept: np.ndarray
+    reason: str
+
+
+def _protection_check(protected: Protected) -> Callable[[np.ndarray], bool]:
+    if protected is None:
+        return lambda determined: True
+    if callable(protected):
+        return protected
+    idx = np.asarray(sorted(set(int(i) for i in protected)), dtype=int)
+    return lambda determined: bool(np.all(determined[idx]))
+
+
+def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
+                       max_eliminations: int = 3, alpha: float = 0.05,
+                       criterion: str = "sidak", protected: Protected = None,
+                       options: SolveOptions | None = None) -> Elimination:
+    """Serially eliminate suspect measurements (bounded count, protected observability).
+
+    Parameters
+    ----------
+    system, z0, measured, y, V, options
+        As for :func:`twin.reconcile.nonlinear.reconcile`.
+    max_eliminations : int
+        Upper bound on the number of measurements removed.
+    alpha : float
+        Family-wise significance of the measurement test [-].
+    criterion : {"sidak", "vdi"}
+        Which limit flags a suspect: the Šidák-corrected one or VDI 2048's 1.96.
+    protected : set of int, or callable, optional
+        Variable indices (into ``z``) that must stay determined (measured, or
+        observable), or ``protected(determined) -> bool`` with ``determined`` a
+        boolean mask over all variables. A suspect whose removal breaks it is kept.
+
+    Returns
+    -------
+    Elimination
+    """
+    if criterion not in ("sidak", "vdi"):
+        raise ValueError(f"criterion must be 'sidak' or 'vdi', got {criterion!r}")
+    if max_eliminations < 0:
+        raise ValueError(f"max_eliminations must be >= 0, got {max_eliminations!r}")
+    ok = _protection_check(protected)
+    measured = np.asarray(measured, dtype=int).reshape(-1)
+    y = np.asarray(y, dtype=float).reshape(-1)
+    V = _dense(V)
+    if V.ndim == 1:
+        V = np.diag(V)
+    keep = np.arange(measured.size)
+    res = reconcile(system, z0, measured, y, V, options=options)
+    log: list[tuple[int, float, float]] = []
+    reason = f"reached max_eliminations={max_eliminations}"
+    while True:
+        if not res.converged:
+            reason = f"reconciliation failed: {res.status}: {res.message}"
+            break
+        mt = measurement_test(res.z, alpha)
+        flags = mt.flagged_sidak if criterion == "sidak" else mt.flagged_vdi
+        if not np.any(flags):
+            reason = "no measurement flagged"
+            break
+        if len(log) >= max_eliminations:
+            break
+        Vk = V[np.ix_(keep, keep)]
+        bias, drop = glr_bias(res.adjustments, res.cov_a, Vk, res.redundant)
+        order = [j for j in np.argsort(-np.nan_to_num(drop, nan=-1.0)) if flags[j]]
+        J = _dense(system.jacobian(res.z_warm))
+        chosen = None
+        for j in order:
+            trial = np.delete(measured[keep], j)
+            if trial.size == 0:
+                continue
+            cls = classify(J, trial, sigma=np.sqrt(np.diag(np.delete(np.delete(Vk, j, 0), j, 1))))
+            if ok(cls.determined):
+                chosen = j
+                break
+        if chosen is None:
+            reason = "every flagged measurement is needed for a protected quantity"
+            break
+        log.append((int(keep[chosen]), float(res.z[chosen]), float(bias[chosen])))
+        z_start = res.z_warm
+        keep = np.delete(keep, chosen)
+        res = reconcile(system, z_start, measured[keep], y[keep], V[np.ix_(keep, keep)],
+                        options=options)
+    out = []
+    for pos, zj, bj in log:
+        v = int(measured[pos])
+        out.append(EliminatedMeasurement(
+            position=pos, variable=v, measured_value=float(y[pos]), z=zj, bias=bj,
+            re_estimate=float(res.z_hat[v]),
+            re_estimate_sigma=float(np.sqrt(res.cov_z[v, v])) if res.cov_z[v, v] >= 0 else float("nan"),
+        ))
+    return Elimination(res, tuple(out), keep, reason)
+
+
+def eliminate_suspects_linear(A, y, V, B=None, c=None, **kwargs) -> Elimination:
+    """:func:`eliminate_suspects` for linear constraints ``A x + B u = c``.
+
+    Variables are ordered ``z = [x, u]``; measured positions are ``0..n−1`` and the
+    unmeasured variable ``i`` is ``z[n + i]``. Keyword arguments are passed on.
+    """
+    A = _dense(A)
+    m, n = A.shape
+    B = np.zeros((m, 0)) if B is None else _dense(B)
+    c = np.zeros(m) if c is None else np.asarray(c, dtype=float)
+    system = LinearSystem(np.hstack([A, B]), c)
+    z0 = np.concatenate([np.asarray(y, dtype=float), np.zeros(B.shape[1])])
+    return eliminate_suspects(system, z0, np.arange(n), y, V, **kwargs)
