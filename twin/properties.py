@@ -20,10 +20,12 @@ plant model needs on top of it:
 Units are SI base units throughout: pressure [Pa] (absolute), temperature [K],
 specific enthalpy [J/kg], specific entropy [J/(kg K)], specific volume [m3/kg].
 
-Cost on the development machine (``twin bench properties``): ``h_pT`` ~1.8 µs,
-``T_ph`` ~19 µs (one CoolProp (p, h) update of ~13 µs plus the forward
-refinement), ``ph()`` ~35 µs in single phase (one (p, h) update, about five
-(p, T) updates and six cheap saturation updates for the quality derivatives).
+Cost measured with ``twin bench properties`` on the 2-core development machine
+under load: ``h_pT`` ~1.6 µs (raw CoolProp update+getter 1.5 µs); ``T_ph`` ~22 µs
+(raw backward-only update 14 µs; the forward refinement costs two (p, T)
+updates); ``ph()`` ~45 µs in single phase, above the 25 µs aim: one (p, h)
+update, three (p, T) evaluations for T, s, v, cp, four for the (∂v/∂T)_p and
+(∂v/∂p)_T stencils and six saturation updates for x and its derivatives.
 
 References
 ----------
@@ -626,92 +628,28 @@ def water() -> Water:
     return w
 
 
-def h_pT(p: float, T: float) -> float:
-    return water().h_pT(p, T)
-
-
-def s_pT(p: float, T: float) -> float:
-    return water().s_pT(p, T)
-
-
-def v_pT(p: float, T: float) -> float:
-    return water().v_pT(p, T)
-
-
-def cp_pT(p: float, T: float) -> float:
-    return water().cp_pT(p, T)
-
-
-def w_pT(p: float, T: float) -> float:
-    return water().w_pT(p, T)
-
-
-def dh_dp_T(p: float, T: float) -> float:
-    return water().dh_dp_T(p, T)
-
-
-def T_ph(p: float, h: float) -> float:
-    return water().T_ph(p, h)
-
-
-def s_ph(p: float, h: float) -> float:
-    return water().s_ph(p, h)
-
-
-def v_ph(p: float, h: float) -> float:
-    return water().v_ph(p, h)
-
-
-def x_ph(p: float, h: float) -> float:
-    return water().x_ph(p, h)
-
-
-def h_ps(p: float, s: float) -> float:
-    return water().h_ps(p, s)
-
-
-def T_sat(p: float) -> float:
-    return water().T_sat(p)
-
-
-def p_sat(T: float) -> float:
-    return water().p_sat(T)
-
-
-def h_f(p: float) -> float:
-    return water().h_f(p)
-
-
-def h_g(p: float) -> float:
-    return water().h_g(p)
-
-
-def s_f(p: float) -> float:
-    return water().s_f(p)
-
-
-def s_g(p: float) -> float:
-    return water().s_g(p)
-
-
-def v_f(p: float) -> float:
-    return water().v_f(p)
-
-
-def v_g(p: float) -> float:
-    return water().v_g(p)
-
-
-def sat(p: float) -> SatState:
-    return water().sat(p)
-
-
-def ph(p: float, h: float) -> PHState:
-    return water().ph(p, h)
-
-
-def ps(p: float, s: float) -> PSState:
-    return water().ps(p, s)
+def h_pT(p: float, T: float) -> float: return water().h_pT(p, T)
+def s_pT(p: float, T: float) -> float: return water().s_pT(p, T)
+def v_pT(p: float, T: float) -> float: return water().v_pT(p, T)
+def cp_pT(p: float, T: float) -> float: return water().cp_pT(p, T)
+def w_pT(p: float, T: float) -> float: return water().w_pT(p, T)
+def dh_dp_T(p: float, T: float) -> float: return water().dh_dp_T(p, T)
+def T_ph(p: float, h: float) -> float: return water().T_ph(p, h)
+def s_ph(p: float, h: float) -> float: return water().s_ph(p, h)
+def v_ph(p: float, h: float) -> float: return water().v_ph(p, h)
+def x_ph(p: float, h: float) -> float: return water().x_ph(p, h)
+def h_ps(p: float, s: float) -> float: return water().h_ps(p, s)
+def T_sat(p: float) -> float: return water().T_sat(p)
+def p_sat(T: float) -> float: return water().p_sat(T)
+def h_f(p: float) -> float: return water().h_f(p)
+def h_g(p: float) -> float: return water().h_g(p)
+def s_f(p: float) -> float: return water().s_f(p)
+def s_g(p: float) -> float: return water().s_g(p)
+def v_f(p: float) -> float: return water().v_f(p)
+def v_g(p: float) -> float: return water().v_g(p)
+def sat(p: float) -> SatState: return water().sat(p)
+def ph(p: float, h: float) -> PHState: return water().ph(p, h)
+def ps(p: float, s: float) -> PSState: return water().ps(p, s)
 
 
 for _f in (h_pT, s_pT, v_pT, cp_pT, w_pT, dh_dp_T, T_ph, s_ph, v_ph, x_ph, h_ps, T_sat, p_sat,
