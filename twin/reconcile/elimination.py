@@ -18,11 +18,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from twin.reconcile.linear import _dense, classify
+from twin.reconcile.linear import Classification, _dense, classify
 from twin.reconcile.nonlinear import ConstraintSystem, LinearSystem, Result, SolveOptions, reconcile
 from twin.reconcile.stats import glr_bias, measurement_test
 
-Protected = Callable[[np.ndarray], bool] | Iterable[int] | None
+Protected = Callable[[Classification], bool] | Iterable[int] | None
 
 
 @dataclass(frozen=True)
@@ -76,13 +76,13 @@ class Elimination:
     reason: str
 
 
-def _protection_check(protected: Protected) -> Callable[[np.ndarray], bool]:
+def _protection_check(protected: Protected) -> Callable[[Classification], bool]:
     if protected is None:
-        return lambda determined: True
+        return lambda cls: True
     if callable(protected):
         return protected
-    idx = np.asarray(sorted(set(int(i) for i in protected)), dtype=int)
-    return lambda determined: bool(np.all(determined[idx]))
+    idx = np.asarray(sorted({int(i) for i in protected}), dtype=int)
+    return lambda cls: bool(np.all(cls.determined[idx]))
 
 
 def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
@@ -103,8 +103,18 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
         Which limit flags a suspect: the Šidák-corrected one or VDI 2048's 1.96.
     protected : set of int, or callable, optional
         Variable indices (into ``z``) that must stay determined (measured, or
-        observable), or ``protected(determined) -> bool`` with ``determined`` a
-        boolean mask over all variables. A suspect whose removal breaks it is kept.
+        observable), or ``protected(classification) -> bool`` called with the
+        :class:`Classification` of the trial measurement set (``.measured``,
+        ``.redundant``, ``.observable``, ``.determined``). A suspect whose removal
+        breaks it is kept and the next suspect is tried.
+
+    Notes
+    -----
+    Only redundant measurements are ever flagged, and in the linearisation removing a
+    redundant measurement leaves every variable observable (its column lies outside
+    the range of the unmeasured block). A set of protected indices therefore guards
+    against rank decisions that change at the new point; a callable can demand more,
+    e.g. that a key quantity stays measured or redundant.
 
     Returns
     -------
@@ -145,7 +155,7 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
             if trial.size == 0:
                 continue
             cls = classify(J, trial, sigma=np.sqrt(np.diag(np.delete(np.delete(Vk, j, 0), j, 1))))
-            if ok(cls.determined):
+            if ok(cls):
                 chosen = j
                 break
         if chosen is None:
