@@ -336,7 +336,8 @@ class Water:
         else:
             a, b = line(p + dp), line(p - dp)
             d = [(u - w) / (2.0 * dp) for u, w in zip(a, b, strict=True)]
-        return SatState(p, *mid, d[0], d[1], d[2], d[3], d[4], d[5], d[6])
+        t, hf, hg, sf, sg, vf, vg = mid
+        return SatState(p, t, hf, hg, sf, sg, vf, vg, d[0], d[1], d[2], d[3], d[4], d[5], d[6])
 
     def _sat_h(self, p: float) -> tuple[float, float, float, float, float]:
         """(T_sat, h_f, h_g, dh_f/dp, dh_g/dp) for p < P_CRIT; cheaper than sat()."""
