@@ -506,7 +506,8 @@ class Water:
         dT_dh = 1/cp, dT_dp = -(∂h/∂p)_T/cp with (∂h/∂p)_T = v - T(∂v/∂T)_p,
         and central differences for (∂v/∂T)_p (±0.01 K) and (∂v/∂p)_T
         (±1e-4 p), one-sided where a step would cross the saturation line.
-        Two-phase: lever rule on the saturation line, dT_dh = 0,
+        Two-phase: lever rule on the saturation line (s, v and their partials
+        differentiate the lever rule itself), dT_dh = 0,
         dT_dp = dT_sat/dp, v = v_f + x(v_g - v_f). Below the critical pressure x
         is the (extrapolated) equivalent quality, dx_dh = 1/(h_g - h_f),
         dx_dp = -(dh_f/dp (1 - x) + x dh_g/dp)/(h_g - h_f); NaN at p >= P_CRIT.
@@ -561,8 +562,13 @@ class Water:
         v = st.v_f + x * vfg
         T = st.T
         dv_dp = (1.0 - x) * st.dv_f_dp + x * st.dv_g_dp + vfg * dx_dp
+        # entropy partials of the lever rule itself (IF97's saturation line meets
+        # dh = T ds + v dp only to ~1e-4 in these terms at low pressure, so the
+        # identity would not be the derivative of the s that is computed)
+        sfg = st.s_g - st.s_f
+        ds_dp = (1.0 - x) * st.ds_f_dp + x * st.ds_g_dp + sfg * dx_dp
         return PHState(p, h, T, s, v, x, _NAN, True,
-                       st.dT_dp, 0.0, -v / T, 1.0 / T, dv_dp, vfg * dx_dh, dx_dp, dx_dh)
+                       st.dT_dp, 0.0, ds_dp, sfg * dx_dh, dv_dp, vfg * dx_dh, dx_dp, dx_dh)
 
     # ------------------------------------------------------------ (p, s)
     def _ps_T(self, func: str, p: float, s: float, liquid: bool) -> float:
@@ -611,10 +617,18 @@ class Water:
     def ps(self, p: float, s: float) -> PSState:
         """State at pressure p [Pa] and specific entropy s [J/(kg K)]: h, T, v, x, partials.
 
-        dh_dp = v [m3/kg] at constant s and dh_ds = T [K] at constant p (dh = T ds + v dp).
+        dh_dp = v [m3/kg] at constant s and dh_ds = T [K] at constant p (dh = T ds + v dp)
+        in single phase; in two-phase the partials of the lever rule that computes h.
         """
         h, T, v, x, wet = self._ps_common("ps", p, s)
-        return PSState(p, s, h, T, v, x, wet, v, T)
+        if not wet:
+            return PSState(p, s, h, T, v, x, wet, v, T)
+        # two-phase: partials of the lever rule h = h_f + x (h_g - h_f), x = (s - s_f)/(s_g - s_f)
+        st = self.sat(p)
+        sfg, hfg = st.s_g - st.s_f, st.h_g - st.h_f
+        dx_dp = -((1.0 - x) * st.ds_f_dp + x * st.ds_g_dp) / sfg
+        dh_dp = (1.0 - x) * st.dh_f_dp + x * st.dh_g_dp + hfg * dx_dp
+        return PSState(p, s, h, T, v, x, wet, dh_dp, hfg / sfg)
 
 
 # ---------------------------------------------------------------- module level

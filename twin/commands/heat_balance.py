@@ -5,13 +5,10 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from twin.config import ConfigError, load_config
-from twin.model.flowsheet import Flowsheet
-from twin.model.solve import HeatBalance, Operation, SolveError, solve_design, solve_off_design
-from twin.performance.kpi import CyclePerformanceSettings, cycle_kpis
-from twin.properties import FORMULATION
+if TYPE_CHECKING:  # heavy imports (CoolProp) happen only when the command runs
+    from twin.model.solve import HeatBalance
 
 CAUTION = (
     "Advisory model only: not for protection or control; defer to plant procedures, "
@@ -32,6 +29,9 @@ def solve(config: Any, load: float = 1.0, pressure_mode: str = "sliding") -> tup
     Returns (design, result); at load 1.0 the off-design solve is still run so that
     the result comes from the same relations as any other load.
     """
+    from twin.model.flowsheet import Flowsheet
+    from twin.model.solve import Operation, solve_design, solve_off_design
+
     fs = Flowsheet.from_config(config)
     op = Operation.from_config(config)
     design = solve_design(fs, op)
@@ -52,6 +52,9 @@ def stream_table(hb: HeatBalance) -> dict[str, dict[str, float]]:
 
 def report(config: Any, hb: HeatBalance) -> dict[str, Any]:
     """The heat balance as one JSON-ready dict (SI units; names carry the unit where not SI-obvious)."""
+    from twin.performance.kpi import CyclePerformanceSettings, cycle_kpis
+    from twin.properties import FORMULATION
+
     ctx = hb.context()
     k = cycle_kpis(hb.flowsheet, ctx, CyclePerformanceSettings.from_config(config))
     equipment: dict[str, dict[str, float]] = {}
@@ -124,6 +127,9 @@ def _print_text(r: dict[str, Any]) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from twin.config import ConfigError, load_config
+    from twin.model.solve import SolveError
+
     try:
         config = load_config(args.config)
     except FileNotFoundError:
