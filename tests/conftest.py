@@ -4,14 +4,16 @@ Fixtures
 --------
 ``mosquitto_factory``
     A callable ``mosquitto_factory(users=None, tls=False, max_queued_messages=None,
-    protocol_log=False, extra="")`` that starts a real ``mosquitto -c <generated
+    extra="", config=None)`` that starts a real ``mosquitto -c <generated
     conf>`` on a free port on 127.0.0.1 and returns a :class:`Broker` once the
     port accepts connections. ``users={"name": "password"}`` writes a password
     file with ``mosquitto_passwd -b -c`` and turns anonymous access off;
     ``tls=True`` serves TLS with a server certificate for 127.0.0.1/localhost
     signed by a test CA (see ``tls_files``); ``max_queued_messages`` sets the
-    per-client queue; ``extra`` is appended to the config verbatim. Every broker
-    started is killed by PID at teardown.
+    per-client queue; ``extra`` is appended to the config verbatim;
+    ``config`` replaces the generated config entirely (``{port}`` in it becomes
+    the chosen port, which must be a listener). Every broker started is killed
+    by PID at teardown.
 ``mosquitto``
     A plain broker (anonymous, no TLS) for one test.
 ``tls_files``
@@ -198,9 +200,19 @@ def mosquitto_factory(tmp_path: Path, request: pytest.FixtureRequest) -> Iterato
         tls: bool = False,
         max_queued_messages: int | None = None,
         extra: str = "",
+        config: str | None = None,
     ) -> Broker:
         n = len(brokers)
         port = free_port()
+        if config is not None:  # a complete config of the caller's, "{port}" = the port
+            conf = tmp_path / f"mosquitto{n}.conf"
+            text = config.replace("{port}", str(port))
+            if os.geteuid() == 0 and "\nuser " not in text:
+                text += "\nuser root\n"
+            conf.write_text(text)
+            broker = Broker(conf, port, tmp_path / f"mosquitto{n}.log", None)
+            brokers.append(broker)
+            return broker
         lines = [
             f"listener {port} 127.0.0.1",
             "persistence false",

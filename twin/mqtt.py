@@ -22,6 +22,8 @@ from typing import Any
 
 import paho.mqtt.client as paho
 from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
 
 PROTOCOLS = {"3.1.1": paho.MQTTv311, "5": paho.MQTTv5}
 
@@ -65,6 +67,12 @@ class MqttSettings:
     max_queued : int
         Outgoing QoS 1/2 messages held (in flight plus waiting); publishing
         beyond it is refused and counted as dropped. Below 65 535.
+    clean_session : bool
+        False = persistent session: the broker keeps the subscriptions and
+        queues QoS 1/2 messages while the client is away (needs a fixed
+        ``client_id``).
+    session_expiry : int
+        MQTT 5 only: how long the broker keeps a persistent session [s].
     """
 
     host: str = "127.0.0.1"
@@ -84,6 +92,8 @@ class MqttSettings:
     reconnect_max_delay: float = 30.0
     max_inflight: int = 100
     max_queued: int = 10_000
+    clean_session: bool = True
+    session_expiry: int = 3600
 
     def __post_init__(self) -> None:
         if self.protocol not in PROTOCOLS:
@@ -104,6 +114,8 @@ class MqttSettings:
             )
         if self.password is not None and self.username is None:
             raise ValueError("an MQTT password is set without a username")
+        if not self.clean_session and not self.client_id:
+            raise ValueError("a persistent session (clean_session=False) needs a client_id")
         if self.tls_key is not None and self.tls_cert is None:
             raise ValueError("tls_key is set without tls_cert")
 
@@ -209,7 +221,6 @@ class MqttClient:
                 "connects",
                 "disconnects",
                 "connect_failures",
-                "messages_received",
                 "callback_errors",
                 "published",
                 "publish_dropped",
@@ -218,6 +229,7 @@ class MqttClient:
             )
         }
         self._last_error: str | None = None
+        self._received = 0
         self._refused = False  # the last CONNACK was a refusal (set on the network thread)
         self._client = self._build()
 
@@ -227,7 +239,7 @@ class MqttClient:
         s = self.settings
         kwargs: dict[str, Any] = {"protocol": PROTOCOLS[s.protocol], "client_id": s.client_id}
         if s.protocol == "3.1.1":
-            kwargs["clean_session"] = True
+            kwargs["clean_session"] = s.clean_session
         client = paho.Client(CallbackAPIVersion.VERSION2, **kwargs)
         if s.username is not None:
             client.username_pw_set(s.username, s.password)
@@ -259,7 +271,14 @@ class MqttClient:
             raise RuntimeError("MqttClient.start() called twice")
         self._started = True
         s = self.settings
-        self._client.connect_async(s.host, s.port, keepalive=s.keepalive)
+        kwargs: dict[str, Any] = {}
+        if s.protocol == "5":
+            kwargs["clean_start"] = s.clean_session
+            if not s.clean_session:
+                props = Properties(PacketTypes.CONNECT)
+                props.SessionExpiryInterval = s.session_expiry
+                kwargs["properties"] = props
+        self._client.connect_async(s.host, s.port, keepalive=s.keepalive, **kwargs)
         self._client.loop_start()
 
     def stop(self) -> None:
@@ -286,7 +305,12 @@ class MqttClient:
     def stats(self) -> MqttStats:
         with self._lock:
             c = dict(self._c)
-        return MqttStats(connected=self.connected, last_error=self._last_error, **c)
+        return MqttStats(
+            connected=self.connected,
+            last_error=self._last_error,
+            messages_received=self._received,
+            **c,
+        )
 
     # ---------------------------------------------------- subscribe / pub ---
 
@@ -389,8 +413,7 @@ class MqttClient:
 
     def _on_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
         now = self._clock()
-        with self._lock:
-            self._c["messages_received"] += 1
+        self._received += 1  # written only here, on the network thread: no lock needed
         try:
             self._on_message_cb(msg.topic, msg.payload, now)
         except Exception as exc:  # the network thread must survive any handler bug

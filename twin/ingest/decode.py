@@ -306,6 +306,7 @@ class _Compiled:
     good: frozenset[tuple[str, Any]]
 
 
+_JSON = json.JSONDecoder()
 _DEFAULT_BATCH_GOOD: frozenset[str | int | bool] = frozenset({True, "good"})
 
 
@@ -399,8 +400,8 @@ class TopicMap:
             self._decode_number(compiled[0], payload, now, out)
             return out
         try:
-            doc = json.loads(payload)
-        except (ValueError, RecursionError) as exc:
+            doc = _JSON.decode(payload.decode("utf-8"))
+        except (ValueError, RecursionError) as exc:  # UnicodeDecodeError is a ValueError
             out.rejections.append(Rejection(topic, "bad_json", str(exc)[:80]))
             return out
         if kind == "batch":
