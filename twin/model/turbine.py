@@ -61,7 +61,12 @@ class TurbineGroup(Equipment):
             so = ctx.ph(b)
             pb = ctx.p(b)
             ps = ctx.ps(pb, si.s)
-            eta_dry, alpha = self.params["efficiency"], self.params["baumann_factor"]
+            # reconciliation may scale the dry efficiency by a factor shared along an
+            # expansion line (the line keeps its design shape, its level floats)
+            eff_col = ctx.constants.get(self.id, {}).get("efficiency_factor_column")
+            eta_design = self.params["efficiency"]
+            eta_dry = eta_design * float(ctx.z[eff_col]) if eff_col is not None else eta_design
+            alpha = self.params["baumann_factor"]
             y_in, dyi_dp, dyi_dh = _moisture(si)
             y_out, dyo_dp, dyo_dh = _moisture(so)
             eta = eta_dry * (1.0 - alpha * 0.5 * (y_in + y_out))
@@ -75,6 +80,8 @@ class TurbineGroup(Equipment):
                 lay.h(b): 1.0 + drop_s * k * dyo_dh,
                 lay.p(b): eta * (-ps.dh_dp) + drop_s * k * dyo_dp,
             }
+            if eff_col is not None:
+                grad[eff_col] = eta_design * (1.0 - alpha * 0.5 * (y_in + y_out)) * drop_s
             rows.add(name, PERFORMANCE, r, grad, SCALE_ENTHALPY)
         name = self.relation("stodola")
         if name not in skip:

@@ -14,7 +14,7 @@ HEI *Standards for Steam Surface Condensers* (ITD, LMTD, cleanliness factor) [me
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -223,4 +223,161 @@ def cycle_kpis(
             cw_out = cw_in + e.params["cooling_water_rise"]
         condensers[e.id] = condenser_kpis(ctx, e, cw_in, cw_out, k.get("u_clean"))
     out["condensers"] = condensers
+    return out
+
+
+# --------------------------------------------------------------------------- flat KPI definitions
+@dataclass(frozen=True)
+class KpiDef:
+    """One KPI as a function of the state, with the columns of ``z`` it depends on.
+
+    The dependency list lets the reconciliation propagate the full covariance
+    to the KPI through a gradient over those columns only, and decide that the
+    KPI is unavailable when one of them is unobservable.
+    """
+
+    name: str
+    func: Callable[[Context], float]
+    columns: tuple[int, ...]
+    unit: str  # "W", "ratio", "K", "Pa", "kg/s" (for display only)
+
+
+def _stream_cols(fs: Flowsheet, streams: Sequence[str], qs: str = "mph") -> tuple[int, ...]:
+    lay = fs.layout
+    return tuple(getattr(lay, q)(s) for s in streams for q in qs)
+
+
+def kpi_definitions(
+    fs: Flowsheet,
+    settings: CyclePerformanceSettings,
+    cooling_water_columns: dict[str, tuple[int, int]] | None = None,
+) -> list[KpiDef]:
+    """The flat KPIs named in :class:`twin.result.CycleResult`, as functions of the state.
+
+    Parameters
+    ----------
+    fs : Flowsheet
+    settings : CyclePerformanceSettings
+    cooling_water_columns : dict, optional
+        For each condenser id, the columns of ``z`` holding the cooling-water inlet and
+        outlet temperatures [K] (reconciliation variables). Without them the
+        condenser KPIs use the forward model's cooling water (design flow and the
+        configured inlet temperature, from ``ctx.constants``).
+    """
+    lay = fs.layout
+    gens = [e for e in fs.equipment if isinstance(e, Generator)]
+    pumps = [e for e in fs.equipment if isinstance(e, Pump)]
+    heat = [e for e in fs.equipment if isinstance(e, Boiler | Reheater)]
+    gen_cols = tuple(lay.extra(f"{g.id}.power") for g in gens)
+    pump_cols = tuple(lay.extra(f"{p.id}.power") for p in pumps)
+    heat_streams = [s for e in heat for s in e.ports.values() if isinstance(s, str)]
+    q_cols = _stream_cols(fs, heat_streams, "mh")
+    load_col = (lay.m(settings.load_stream),)
+
+    def p_gen(ctx: Context) -> float:
+        return sum(float(ctx.z[c]) for c in gen_cols)
+
+    def q_in(ctx: Context) -> float:
+        return sum(e.duty(ctx) for e in heat)  # type: ignore[attr-defined]
+
+    def load(ctx: Context) -> float:
+        return ctx.m(settings.load_stream) / settings.design_flow
+
+    def net(ctx: Context) -> float:
+        aux = settings.auxiliary_fixed + settings.auxiliary_variable * load(ctx)
+        return p_gen(ctx) - aux - sum(float(ctx.z[c]) for c in pump_cols)
+
+    def boiler_eff(ctx: Context) -> float:
+        return interpolate_boiler_efficiency(settings.boiler_efficiency, load(ctx))
+
+    net_cols = gen_cols + pump_cols + load_col
+    defs = [
+        KpiDef("load_fraction", load, load_col, "ratio"),
+        KpiDef("gross_power", p_gen, gen_cols, "W"),
+        KpiDef("net_power", net, net_cols, "W"),
+        KpiDef("heat_input", q_in, q_cols, "W"),
+        KpiDef("gross_efficiency", lambda c: p_gen(c) / q_in(c), gen_cols + q_cols, "ratio"),
+        KpiDef("net_efficiency", lambda c: net(c) / q_in(c), net_cols + q_cols, "ratio"),
+        KpiDef("turbine_heat_rate", lambda c: q_in(c) / p_gen(c), gen_cols + q_cols, "ratio"),
+        KpiDef("plant_heat_rate", lambda c: q_in(c) / (net(c) * boiler_eff(c)), net_cols + q_cols, "ratio"),
+    ]
+
+    def section(inlet: str, outlet: str) -> Callable[[Context], float]:
+        return lambda c: section_efficiency(c, inlet, outlet)
+
+    def qual(stream: str) -> Callable[[Context], float]:
+        return lambda c: quality(c, stream)
+
+    def moist(stream: str) -> Callable[[Context], float]:
+        return lambda c: 1.0 - quality(c, stream)
+
+    for s in settings.sections:
+        cols = _stream_cols(fs, [s.inlet, s.outlet], "ph")
+        defs.append(KpiDef(f"section_efficiency.{s.id}", section(s.inlet, s.outlet), cols, "ratio"))
+        loss = next((e for e in fs.of_kind(ExhaustLoss) if e.port("inlet") == s.outlet), None)
+        if loss is not None:
+            ueep = loss.port("outlet")
+            defs.append(KpiDef(f"section_efficiency.{s.id}_UEEP", section(s.inlet, ueep),
+                               _stream_cols(fs, [s.inlet, ueep], "ph"), "ratio"))
+            for point, stream in (("elep", s.outlet), ("ueep", ueep)):
+                c2 = _stream_cols(fs, [stream], "ph")
+                defs.append(KpiDef(f"exhaust_quality_{point}", qual(stream), c2, "ratio"))
+                defs.append(KpiDef(f"exhaust_moisture_{point}", moist(stream), c2, "ratio"))
+
+    for e in fs.of_kind(ClosedHeater):
+        assert isinstance(e, ClosedHeater)
+        ti, to, st, do = e.port("tube_in"), e.port("tube_out"), e.port("steam_in"), e.port("drain_out")
+        defs += [
+            KpiDef(f"heater_ttd.{e.id}", lambda c, st=st, to=to: c.water.T_sat(c.p(st)) - c.ph(to).T,
+                   _stream_cols(fs, [st], "p") + _stream_cols(fs, [to], "ph"), "K"),
+            KpiDef(f"heater_dca.{e.id}", lambda c, do=do, ti=ti: c.ph(do).T - c.ph(ti).T,
+                   _stream_cols(fs, [do, ti], "ph"), "K"),
+            KpiDef(f"heater_temperature_rise.{e.id}", lambda c, ti=ti, to=to: c.ph(to).T - c.ph(ti).T,
+                   _stream_cols(fs, [to, ti], "ph"), "K"),
+            KpiDef(f"extraction_flow.{e.id}", lambda c, st=st: c.m(st), _stream_cols(fs, [st], "m"), "kg/s"),
+        ]
+    for e in fs.of_kind(OpenHeater):
+        st = e.port("steam_in")
+        defs.append(KpiDef(f"extraction_flow.{e.id}", lambda c, st=st: c.m(st), _stream_cols(fs, [st], "m"), "kg/s"))
+
+    for e in fs.of_kind(Condenser):
+        assert isinstance(e, Condenser)
+        ex = e.port("exhaust")
+        ins = [ex, *e.port_list("inlets"), e.port("outlet")]
+        duty_cols = _stream_cols(fs, ins, "mh") + _stream_cols(fs, [ex], "p")
+        cw = (cooling_water_columns or {}).get(e.id)
+
+        def cw_temps(c: Context, e: Condenser = e, cw: tuple[int, int] | None = cw) -> tuple[float, float]:
+            if cw is not None:
+                return float(c.z[cw[0]]), float(c.z[cw[1]])
+            k = c.constants.get(e.id, {})
+            t_in = e.params["cooling_water_inlet_temperature"]
+            if "cw_flow" in k:
+                return t_in, t_in + e.duty(c) / (k["cw_flow"] * e.params["cooling_water_cp"])
+            return t_in, t_in + e.params["cooling_water_rise"]
+
+        def cond(key: str, e: Condenser = e, cw_temps: Callable = cw_temps) -> Callable[[Context], float]:
+            def f(c: Context) -> float:
+                t_in, t_out = cw_temps(c)
+                return condenser_kpis(c, e, t_in, t_out, c.constants.get(e.id, {}).get("u_clean"))[key]
+            return f
+
+        cw_cols = tuple(cw) if cw is not None else ()
+        defs += [
+            KpiDef(f"condenser_pressure.{e.id}", lambda c, ex=ex: c.p(ex), _stream_cols(fs, [ex], "p"), "Pa"),
+            KpiDef(f"condenser_itd.{e.id}", cond("itd"), _stream_cols(fs, [ex], "p") + cw_cols[:1], "K"),
+            KpiDef(f"condenser_ttd.{e.id}", cond("ttd"), _stream_cols(fs, [ex], "p") + cw_cols[1:], "K"),
+            KpiDef(f"condenser_cleanliness.{e.id}", cond("cleanliness"), duty_cols + cw_cols, "ratio"),
+        ]
+    return defs
+
+
+def evaluate_kpis(defs: Sequence[KpiDef], ctx: Context) -> dict[str, float]:
+    """Values of the KPIs at one state; a KPI whose evaluation fails is NaN."""
+    out = {}
+    for d in defs:
+        try:
+            out[d.name] = float(d.func(ctx))
+        except (ValueError, ZeroDivisionError, ArithmeticError):
+            out[d.name] = float("nan")
     return out

@@ -1,0 +1,301 @@
+"""The plant's reconciliation problem: flowsheet balances, sensors and soft model relations.
+
+Variables (one vector ``z``): the flowsheet's ``[m, p, h]`` per stream and
+equipment powers; one efficiency factor per wet expansion line (stage groups
+with a Baumann factor, by section: each group's dry efficiency is its design
+value times the factor); the cooling-water inlet and outlet
+temperature of each condenser; one variable per sensor (its true value);
+one variable per soft relation (its residual).
+
+Constraints:
+
+- every balance of the flowsheet (mass, energy, equal pressure, saturation) —
+  hard;
+- per sensor, ``x_k = g_k(z)``: the stream's mass flow or pressure, its
+  temperature ``T(p, h)`` (``T_sat(p)`` when wet), an equipment power, or a
+  condenser's cooling-water temperature — hard;
+- model relations that carry their own uncertainty (VDI 2048 practice; see
+  the domain notes): the wet LP expansion line (design shape, one level factor
+  per line, Baumann correction), the exhaust-loss curve, the generator loss curve,
+  pressure-drop fractions and pump efficiencies. Each is written
+  ``r_j(z) = e_j`` with a pseudo-measurement ``e_j = 0 ± σ_j``.
+
+The sensor variables and the pseudo-measurements are the measured variables
+of the weighted least-squares problem; everything else is unmeasured and
+classified observable or not.
+
+References
+----------
+VDI 2048 Blatt 1 (2017), *Control and quality improvement of process data and
+their uncertainties by correction calculation for operation and acceptance tests*.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from twin.model.core import Rows
+from twin.model.flow import Pipe, Pump, Reheater
+from twin.model.flowsheet import Flowsheet
+from twin.model.heat_exchange import ClosedHeater, Condenser
+from twin.model.solve import HeatBalance
+from twin.model.turbine import ExhaustLoss, Generator, TurbineGroup
+
+K95 = 1.96  # coverage factor of a 95 % interval (normal distribution)
+
+
+@dataclass(frozen=True)
+class SensorBinding:
+    """Where one sensor sits in ``z``.
+
+    ``column`` is the sensor's own variable; ``kind`` is how its true value
+    follows from the model: ``m``, ``p``, ``T`` (stream) or ``power``,
+    ``cw_in``, ``cw_out`` (equipment).
+    """
+
+    tag: str
+    quantity: str
+    kind: str
+    target: str  # stream or equipment id
+    column: int
+    target_column: int  # m/p/power/cw column; for T the stream's p column (h is next)
+
+
+@dataclass(frozen=True)
+class SoftRelation:
+    """A model relation used as a pseudo-measurement ``r(z) = e``, ``e = 0 ± sigma``."""
+
+    name: str  # "<equipment>.<relation>"
+    sigma: float  # [unit of the residual]
+    column: int  # the variable e
+    unit: str
+
+
+def soft_relation_sigmas(fs: Flowsheet, design: HeatBalance) -> dict[str, tuple[float, str]]:
+    """Default standard uncertainties of the soft model relations, from the design state.
+
+    Returns ``{relation name: (sigma, unit)}``. Values are practice-based
+    allowances (``# common practice``), not sourced constants:
+
+    - wet expansion line: one point of efficiency (1 % of the group's isentropic drop);
+    - exhaust-loss curve: 25 % of the design loss (95 %);
+    - generator and mechanical losses: 10 % of the design losses (95 %);
+    - pressure drops (pipes, reheater, heater tubes): 50 % of the design drop (95 %) + 1 kPa;
+    - pump isentropic efficiency: 5 points (95 %); pump discharge rule: 2 % (95 %).
+    """
+    ctx = design.context()
+    out: dict[str, tuple[float, str]] = {}
+    for e in fs.equipment:
+        if isinstance(e, TurbineGroup) and e.params["baumann_factor"] > 0:
+            a, b = e.port("inlet"), e.port("outlet")
+            si = ctx.ph(a)
+            drop_s = si.h - ctx.water.h_ps(ctx.p(b), si.s)
+            out[e.relation("expansion")] = (0.01 * drop_s, "J/kg")
+        elif isinstance(e, ExhaustLoss):
+            el = ctx.h(e.port("outlet")) - ctx.h(e.port("inlet"))
+            out[e.relation("curve")] = (0.25 * abs(el) / K95 + 500.0, "J/kg")
+        elif isinstance(e, Generator):
+            loss, _ = e.losses(float(design.z[fs.layout.extra(f"{e.id}.power")]))
+            out[e.relation("losses")] = (0.10 * loss / K95 + 1e4, "W")
+        elif isinstance(e, Pipe | Reheater):
+            drop = ctx.p(e.port("inlet")) - ctx.p(e.port("outlet"))
+            out[e.relation("pressure_drop")] = (0.5 * abs(drop) / K95 + 1e3, "Pa")
+        elif isinstance(e, ClosedHeater):
+            drop = abs(e.params["tube_pressure_drop"])
+            out[e.relation("tube_pressure_drop")] = (0.5 * drop / K95 + 1e3, "Pa")
+        elif isinstance(e, Pump):
+            a, b = e.port("inlet"), e.port("outlet")
+            dh = ctx.h(b) - ctx.h(a)
+            out[e.relation("efficiency")] = (0.05 / e.params["efficiency"] * dh / K95, "J/kg")
+            out[e.relation("discharge")] = (0.02 * ctx.p(b) / K95, "Pa")
+    return out
+
+
+class PlantSystem:
+    """Constraints of the plant's reconciliation (a :class:`twin.reconcile.ConstraintSystem`).
+
+    Parameters
+    ----------
+    fs : Flowsheet
+    sensors : sequence
+        Sensor configurations (``tag``, ``quantity``, ``stream`` or ``equipment``);
+        sensors of quantities the model does not hold (barometric pressure) are ignored.
+    design : HeatBalance
+        The design point: starting state and the scale of the soft relations' σ.
+    soft : dict, optional
+        ``{relation: (sigma, unit)}``; default :func:`soft_relation_sigmas`.
+    """
+
+    def __init__(self, fs: Flowsheet, sensors: Sequence[Any], design: HeatBalance,
+                 soft: dict[str, tuple[float, str]] | None = None) -> None:
+        self.fs = fs
+        self.design = design
+        lay = fs.layout
+        n = lay.n_vars
+        # one efficiency factor per wet expansion line (section): η_i = factor · η_i,design
+        self.line_columns: dict[str, int] = {}
+        self.constants: dict[str, dict] = {k: dict(v) for k, v in design.constants.items()}
+        for e in fs.of_kind(TurbineGroup):
+            if e.params["baumann_factor"] > 0:
+                key = f"{e.params['section']}_line"
+                if key not in self.line_columns:
+                    self.line_columns[key] = n
+                    n += 1
+                self.constants.setdefault(e.id, {})["efficiency_factor_column"] = self.line_columns[key]
+        self.cooling_water_columns: dict[str, tuple[int, int]] = {}
+        for e in fs.of_kind(Condenser):
+            self.cooling_water_columns[e.id] = (n, n + 1)
+            n += 2
+        self.sensors: list[SensorBinding] = []
+        for s in sensors:
+            b = self._bind(s, n)
+            if b is not None:
+                self.sensors.append(b)
+                n += 1
+        self.sensor_by_tag = {b.tag: b for b in self.sensors}
+        sig = soft if soft is not None else soft_relation_sigmas(fs, design)
+        self.soft: list[SoftRelation] = []
+        for name, (sigma, unit) in sig.items():
+            self.soft.append(SoftRelation(name, sigma, n, unit))
+            n += 1
+        self.soft_by_name = {r.name: r for r in self.soft}
+        self.n_vars = n
+        self.n_model = lay.n_vars
+        self._skip = self._non_soft_relations()
+        self._cache_key: bytes | None = None
+        self._cache: tuple[np.ndarray, sp.csr_matrix] | None = None
+        self._scales = self._make_scales()
+
+    # ------------------------------------------------------------ structure
+    def _bind(self, s: Any, col: int) -> SensorBinding | None:
+        lay = self.fs.layout
+        q = s.quantity
+        if q in ("mass_flow", "pressure", "temperature") and s.stream:
+            kind = {"mass_flow": "m", "pressure": "p", "temperature": "T"}[q]
+            target_col = lay.m(s.stream) if kind == "m" else lay.p(s.stream)
+            return SensorBinding(s.tag, q, kind, s.stream, col, target_col)
+        if q == "power" and s.equipment:
+            return SensorBinding(s.tag, q, "power", s.equipment, col, lay.extra(f"{s.equipment}.power"))
+        if q in ("cooling_water_inlet_temperature", "cooling_water_outlet_temperature") and s.equipment:
+            cin, cout = self.cooling_water_columns[s.equipment]
+            kind = "cw_in" if q.endswith("inlet_temperature") else "cw_out"
+            return SensorBinding(s.tag, q, kind, s.equipment, col, cin if kind == "cw_in" else cout)
+        return None
+
+    def _non_soft_relations(self) -> frozenset[str]:
+        """Performance relations left out of the reconciliation (what it monitors)."""
+        rows = self.fs.evaluate(self.design.z, constants=self.design.constants)
+        return frozenset(
+            name for name, kind in zip(rows.names, rows.sets, strict=True)
+            if kind == "performance" and name not in self.soft_by_name
+        )
+
+    def _make_scales(self) -> tuple[np.ndarray, np.ndarray]:
+        z0 = self.initial_point(self.design.z)
+        vs = np.maximum(np.abs(z0), 1.0)
+        vs[self.n_model:] = np.maximum(np.abs(z0[self.n_model:]), 1.0)
+        for r in self.soft:
+            vs[r.column] = r.sigma
+        rows = self._rows(z0)
+        return vs, np.asarray(rows[1])
+
+    def scales(self) -> tuple[np.ndarray, np.ndarray]:
+        return self._scales
+
+    def initial_point(self, z_model: np.ndarray) -> np.ndarray:
+        """A full ``z`` from a flowsheet state: sensors at their model values, soft residuals at 0."""
+        z = np.zeros(self.n_vars)
+        z[: self.n_model] = z_model
+        for col in self.line_columns.values():
+            z[col] = 1.0
+        ctx = self.fs.context(z_model, self.design.constants)
+        for e in self.fs.of_kind(Condenser):
+            assert isinstance(e, Condenser)
+            cin, cout = self.cooling_water_columns[e.id]
+            k = self.design.constants.get(e.id, {})
+            t_in = e.params["cooling_water_inlet_temperature"]
+            z[cin] = t_in
+            z[cout] = t_in + e.duty(ctx) / (k["cw_flow"] * e.params["cooling_water_cp"]) if "cw_flow" in k else t_in + e.params["cooling_water_rise"]
+        for b in self.sensors:
+            z[b.column] = self._model_value(b, z, ctx)
+        rows = self.fs.evaluate(z, skip=self._skip_or_empty(), constants=self.constants)
+        for name, value in zip(rows.names, rows.values, strict=True):
+            r = self.soft_by_name.get(name)
+            if r is not None:
+                z[r.column] = value
+        return z
+
+    def _skip_or_empty(self) -> frozenset[str]:
+        return getattr(self, "_skip", frozenset())
+
+    def _model_value(self, b: SensorBinding, z: np.ndarray, ctx: Any) -> float:
+        if b.kind == "T":
+            return ctx.ph(b.target).T
+        return float(z[b.target_column])
+
+    # ------------------------------------------------------------ equations
+    def _rows(self, z: np.ndarray) -> tuple[Rows, list[float]]:
+        fs = self.fs
+        rows = fs.evaluate(z, skip=self._skip, constants=self.constants)
+        scales = list(rows.scales)
+        # soft relations: r_j(z) − e_j = 0
+        for i, name in enumerate(rows.names):
+            r = self.soft_by_name.get(name)
+            if r is not None:
+                rows.values[i] -= float(z[r.column])
+                rows._rows.append(i)
+                rows._cols.append(r.column)
+                rows._data.append(-1.0)
+        ctx = fs.context(z, self.constants)
+        lay = fs.layout
+        for b in self.sensors:
+            if b.kind == "T":
+                st = ctx.ph(b.target)
+                rows.add(f"sensor.{b.tag}", "sensor", z[b.column] - st.T,
+                         {b.column: 1.0, lay.p(b.target): -st.dT_dp, lay.h(b.target): -st.dT_dh}, 10.0)
+            else:
+                scale = max(abs(float(self.design.z[b.target_column])) if b.target_column < self.n_model else 300.0, 1.0)
+                rows.add(f"sensor.{b.tag}", "sensor", z[b.column] - z[b.target_column],
+                         {b.column: 1.0, b.target_column: -1.0}, scale)
+            scales.append(rows.scales[-1])
+        return rows, scales
+
+    def _evaluate(self, z: np.ndarray) -> tuple[np.ndarray, sp.csr_matrix]:
+        key = z.tobytes()
+        if key != self._cache_key or self._cache is None:
+            rows, _ = self._rows(z)
+            self._cache = (rows.residuals(), rows.jacobian(self.n_vars))
+            self._cache_key = key
+        return self._cache
+
+    def residuals(self, z: np.ndarray) -> np.ndarray:
+        return self._evaluate(np.asarray(z, dtype=float))[0]
+
+    def jacobian(self, z: np.ndarray) -> sp.csr_matrix:
+        return self._evaluate(np.asarray(z, dtype=float))[1]
+
+    def row_names(self) -> list[str]:
+        return self._rows(self.initial_point(self.design.z))[0].names
+
+    # ------------------------------------------------------------ naming
+    def name_of(self, col: int) -> str:
+        if col < self.n_model:
+            return self.fs.layout.name_of(col)
+        for key, c in self.line_columns.items():
+            if c == col:
+                return f"{key}.efficiency_factor"
+        for cid, (cin, cout) in self.cooling_water_columns.items():
+            if col in (cin, cout):
+                return f"{cid}.cooling_water_{'inlet' if col == cin else 'outlet'}_temperature"
+        for b in self.sensors:
+            if b.column == col:
+                return f"sensor.{b.tag}"
+        for r in self.soft:
+            if r.column == col:
+                return f"model.{r.name}"
+        raise IndexError(col)
