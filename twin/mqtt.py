@@ -164,10 +164,10 @@ def read_secret(
         return secret
     assert env is not None
     source = os.environ if environ is None else environ
-    secret = source.get(env)
-    if not secret:
+    value = source.get(env)
+    if not value:
         raise ValueError(f"environment variable {env!r} is not set or empty")
-    return secret
+    return value
 
 
 @dataclass(frozen=True)
@@ -253,7 +253,8 @@ class MqttClient:
             if s.tls_insecure:
                 ctx.check_hostname = False
             client.tls_set_context(ctx)
-        client.reconnect_delay_set(s.reconnect_min_delay, s.reconnect_max_delay)
+        # paho annotates the delays as int but computes with any number
+        client.reconnect_delay_set(s.reconnect_min_delay, s.reconnect_max_delay)  # type: ignore[arg-type]
         client.max_inflight_messages_set(s.max_inflight)
         client.max_queued_messages_set(s.max_queued)
         client.on_connect = self._on_connect
@@ -415,7 +416,10 @@ class MqttClient:
         now = self._clock()
         self._received += 1  # written only here, on the network thread: no lock needed
         try:
-            self._on_message_cb(msg.topic, msg.payload, now)
+            payload = msg.payload
+            self._on_message_cb(
+                msg.topic, payload if type(payload) is bytes else bytes(payload), now
+            )
         except Exception as exc:  # the network thread must survive any handler bug
             with self._lock:
                 self._c["callback_errors"] += 1

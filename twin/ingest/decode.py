@@ -466,12 +466,13 @@ class TopicMap:
         if t is None:
             out.rejections.append(Rejection(tag, "bad_timestamp"))
             return
-        ok: bool | None = True
+        ok = True
         if c.quality is not None:
-            ok = self._quality(c, resolve(doc, c.quality))
-            if ok is None:
+            q = self._quality(c, resolve(doc, c.quality))
+            if q is None:
                 out.rejections.append(Rejection(tag, "bad_quality"))
                 return
+            ok = q
         self._accept(c, raw, t, ok, out)
 
     def _decode_batch(
