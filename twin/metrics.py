@@ -1,0 +1,439 @@
+"""Prometheus exposition of the latest :class:`~twin.result.CycleResult`.
+
+The only module that imports ``prometheus_client``. One custom collector,
+:class:`CycleCollector`, asks a provider for the latest result at scrape time
+and turns it into metric families; nothing is copied into long-lived metric
+objects, so a scrape always sees one whole cycle. The only stateful metric is
+the cycle-duration histogram, which the daemon feeds through
+:meth:`MetricsServer.observe_cycle`.
+
+Naming (see ``docs/metrics.md`` for the full table):
+
+* prefix ``twin_``; SI base unit as suffix (``_pascals``, ``_watts``,
+  ``_kilograms_per_second``, ``_joules_per_kilogram``, ``_seconds``);
+* ``_celsius`` for temperatures and temperature differences (the result holds
+  kelvin: temperatures are shifted by 273.15, differences are unchanged);
+* ``_ratio`` for 0-1 fractions: efficiencies, moisture, quality, load, and the
+  dimensionless heat rate (heat in / electricity out);
+* labels only from bounded sets (``unit_id``, ``section``, ``heater``,
+  ``condenser``, ``cause``, ``tag``, ``stream``, ``alarm``, ``level``,
+  ``state``, ``status``, ``reason``, ``kpi``, ``point``).
+
+A sample whose value is undefined (NaN) is left out rather than exported as
+NaN, and an unavailable KPI is left out too (``twin_kpi_available`` says 0).
+Live samples carry no timestamps; :func:`openmetrics_lines` writes the same
+families with the window-end timestamp for TSDB back-fill.
+
+Advisory monitoring only: alarm metrics must not be used to trip, interlock or
+operate equipment.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from collections.abc import Callable, Iterable, Iterator
+from typing import Any
+
+from prometheus_client import CollectorRegistry, Histogram, generate_latest, start_http_server
+from prometheus_client.core import (
+    CounterMetricFamily,
+    GaugeMetricFamily,
+    InfoMetricFamily,
+    Metric,
+)
+from prometheus_client.openmetrics.exposition import generate_latest as generate_openmetrics
+
+from twin import __version__
+from twin.kinds import MEASURED_QUANTITIES
+from twin.monitor.alarms import STATES as ALARM_STATES
+from twin.result import RECONCILE_STATUSES, CycleResult
+
+Provider = Callable[[], CycleResult | None]
+
+ZERO_CELSIUS = 273.15  # [K]
+ALARM_LEVELS = ("warning", "alarm")
+CYCLE_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0)
+
+ADVISORY = (
+    " Advisory only: not for protection, tripping or control. Default limits "
+    "(e.g. exhaust moisture 10 % warn, 12 % alarm) are common practice, not "
+    "manufacturer limits."
+)
+_DIFF = " (a temperature difference: kelvin and degrees Celsius agree)"
+_EXPANDED = " Expanded uncertainty at about 95 % (1.96 standard uncertainties)."
+
+# Measured-quantity dimension -> (metric word, unit suffix, absolute temperature?).
+_DIMENSIONS: dict[str, tuple[str, str, bool]] = {
+    "mass_flow": ("mass_flow", "kilograms_per_second", False),
+    "pressure": ("pressure", "pascals", False),
+    "temperature": ("temperature", "celsius", True),
+    "power": ("power", "watts", False),
+}
+
+# KPI key (before any ".<name>") -> (metric stem, unit, label for the key suffix, meaning).
+_KPIS: dict[str, tuple[str, str, str | None, str]] = {
+    "gross_power": ("gross_power", "watts", None, "Gross electrical output at the generator terminals"),
+    "net_power": ("net_power", "watts", None, "Net electrical output (gross minus auxiliary power)"),
+    "heat_input": ("heat_input", "watts", None, "Heat added to the water-steam cycle (feedwater to main steam plus reheat)"),
+    "gross_efficiency": ("gross_efficiency", "ratio", None, "Gross cycle efficiency, gross power / heat input"),
+    "net_efficiency": ("net_efficiency", "ratio", None, "Net cycle efficiency, net power / heat input"),
+    "turbine_heat_rate": ("turbine_heat_rate", "ratio", None, "Turbine-cycle heat rate, heat input / gross power, dimensionless (x3600 = kJ/kWh)"),
+    "plant_heat_rate": ("plant_heat_rate", "ratio", None, "Plant heat rate on a fuel basis (turbine heat rate / boiler efficiency), dimensionless"),
+    "load_fraction": ("load", "ratio", None, "Load as a fraction of design"),
+    "section_efficiency": ("section_efficiency", "ratio", "section", "Turbine section (enthalpy-drop) isentropic efficiency"),
+    "heater_ttd": ("heater_ttd", "celsius", "heater", "Feedwater heater terminal temperature difference, Tsat(shell) - feedwater outlet" + _DIFF),
+    "heater_dca": ("heater_dca", "celsius", "heater", "Feedwater heater drain cooler approach, drain outlet - feedwater inlet" + _DIFF),
+    "heater_temperature_rise": ("heater_temperature_rise", "celsius", "heater", "Feedwater temperature rise across the heater" + _DIFF),
+    "extraction_flow": ("extraction_mass_flow", "kilograms_per_second", "heater", "Extraction steam flow to the heater (heater energy balance)"),
+    "condenser_pressure": ("condenser_pressure", "pascals", "condenser", "Condenser (back) pressure, absolute"),
+    "condenser_cleanliness": ("condenser_cleanliness", "ratio", "condenser", "Condenser cleanliness factor U / U_clean"),
+    "condenser_itd": ("condenser_itd", "celsius", "condenser", "Condenser initial temperature difference, Tsat - cooling water inlet" + _DIFF),
+    "condenser_ttd": ("condenser_ttd", "celsius", "condenser", "Condenser terminal temperature difference, Tsat - cooling water outlet" + _DIFF),
+}
+# Exhaust KPIs carry the end-point convention in the ``point`` label.
+_POINT_KPIS = {
+    f"exhaust_{q}_{p}": (f"exhaust_{q}", p)
+    for q in ("quality", "moisture")
+    for p in ("elep", "ueep")
+}
+_POINT_HELP = {
+    "exhaust_quality": "LP turbine exhaust steam quality (dryness fraction); point=elep expansion-line end point, ueep used-energy end point",
+    "exhaust_moisture": "LP turbine exhaust moisture, 1 - quality; point=elep expansion-line end point, ueep used-energy end point",
+}
+
+
+def kpi_metric(key: str) -> tuple[str, str, dict[str, str], str] | None:
+    """Metric stem, unit suffix, extra labels and meaning of a KPI key; None if unknown."""
+    if key in _POINT_KPIS:
+        stem, point = _POINT_KPIS[key]
+        return stem, "ratio", {"point": point}, _POINT_HELP[stem]
+    base, _, name = key.partition(".")
+    spec = _KPIS.get(base)
+    if spec is None or (spec[2] is None) != (name == ""):
+        return None
+    stem, unit, label, meaning = spec
+    return stem, unit, ({label: name} if label else {}), meaning
+
+
+def _finite(x: float) -> bool:
+    return x is not None and math.isfinite(x)
+
+
+class _Families:
+    """Metric families collected in first-use order, with optional sample timestamp."""
+
+    def __init__(self, common: dict[str, str], timestamp: float | None) -> None:
+        self.common = common
+        self.timestamp = timestamp
+        self.families: dict[str, Metric] = {}
+
+    def _family(self, cls: type, name: str, doc: str, labels: dict[str, str]) -> Any:
+        fam = self.families.get(name)
+        if fam is None:
+            fam = cls(name, doc, labels=list({**self.common, **labels}))
+            self.families[name] = fam
+        return fam
+
+    def gauge(self, name: str, doc: str, value: float, **labels: str) -> None:
+        if not _finite(value):
+            return
+        fam = self._family(GaugeMetricFamily, name, doc, labels)
+        fam.add_metric([*self.common.values(), *labels.values()], float(value), timestamp=self.timestamp)
+
+    def flag(self, name: str, doc: str, value: bool, **labels: str) -> None:
+        self.gauge(name, doc, 1.0 if value else 0.0, **labels)
+
+    def counter(self, name: str, doc: str, value: float, **labels: str) -> None:
+        fam = self._family(CounterMetricFamily, name, doc, labels)
+        fam.add_metric([*self.common.values(), *labels.values()], float(value), timestamp=self.timestamp)
+
+    def enum(self, name: str, doc: str, label: str, current: str, values: Iterable[str], **labels: str) -> None:
+        """One sample per value of ``values`` (plus ``current`` if foreign), 1 for ``current``."""
+        states = list(values)
+        if current not in states:
+            states.append(current)
+        for s in states:
+            self.flag(name, doc, s == current, **labels, **{label: s})
+
+
+def _kelvin_to_celsius(value: float) -> float:
+    return value - ZERO_CELSIUS
+
+
+def build_families(result: CycleResult | None, timestamp: float | None = None) -> list[Metric]:
+    """Metric families of one result (``timestamp`` [s] stamped on every sample, or none).
+
+    ``None`` (no cycle finished yet) gives only ``twin_build_info`` and
+    ``twin_cycle_result_available 0``.
+    """
+    f = _Families({"unit_id": result.unit_id} if result is not None else {}, timestamp)
+    info = InfoMetricFamily("twin_build", "twin version and steam-property formulation of the result")
+    info.add_metric(
+        [], {"version": __version__, "formulation": result.formulation if result else "unknown"},
+        timestamp=timestamp,
+    )
+    f.families["twin_build"] = info
+    if result is None:
+        f.flag("twin_cycle_result_available", "1 once a monitoring cycle has produced a result", False)
+        return list(f.families.values())
+    f.flag("twin_cycle_result_available", "1 once a monitoring cycle has produced a result", True)
+    _window(f, result)
+    _inputs(f, result)
+    _streams(f, result)
+    _sensors(f, result)
+    _kpis(f, result)
+    _deviation(f, result)
+    _alarms(f, result)
+    _drift(f, result)
+    return list(f.families.values())
+
+
+def _window(f: _Families, r: CycleResult) -> None:
+    f.gauge("twin_window_start_timestamp_seconds", "Start of the latest closed window, Unix time", r.window_start)
+    f.gauge("twin_window_end_timestamp_seconds", "End of the latest closed window, Unix time", r.window_end)
+    f.gauge("twin_result_compute_seconds", "Time from window close to result ready for the latest window", r.compute_seconds)
+    f.flag("twin_steady_state", "1 when the steady-state gate (Cao & Rhinehart R-statistic) is open", r.steady)
+    for tag, value in r.steady_r.items():
+        f.gauge("twin_steady_state_r", "Cao & Rhinehart R-statistic of a key signal (about 1 at steady state), dimensionless", value, tag=tag)
+    f.enum("twin_steady_state_status", "Steady-state verdict, 1 for the current one", "status",
+           r.steady_status, ("steady", "transient", "insufficient_data"))
+    f.enum("twin_reconcile_status", "Reconciliation outcome of the latest window, 1 for the current status",
+           "status", r.reconcile_status, RECONCILE_STATUSES)
+    f.gauge("twin_reconcile_iterations", "Solver iterations of the latest reconciliation", r.iterations)
+    f.gauge("twin_reconcile_global_test_statistic", "Global test statistic gamma = a' V^-1 a of the latest reconciliation, dimensionless", r.global_test)
+    f.gauge("twin_reconcile_global_test_degrees_of_freedom", "Degrees of freedom (redundancy) of the global test", r.global_test_dof)
+    f.gauge("twin_reconcile_global_test_p_value", "p-value of the global test, chi-square with the given degrees of freedom", r.global_test_p_value)
+
+
+def _inputs(f: _Families, r: CycleResult) -> None:
+    s = r.inputs
+    f.counter("twin_messages_received", "MQTT messages received since start", s.messages)
+    for reason, n in s.rejected.items():
+        f.counter("twin_payloads_rejected", "Payloads rejected since start, by reason", n, reason=reason)
+    f.gauge("twin_stale_tags", "Number of sensor tags older than their maximum age at window close", len(s.stale_tags))
+    f.flag("twin_mqtt_connected", "1 while connected to the MQTT broker", s.connected)
+    f.counter("twin_mqtt_reconnects", "MQTT reconnections since start", s.reconnects)
+
+
+def _streams(f: _Families, r: CycleResult) -> None:
+    for name, st in r.streams.items():
+        f.gauge("twin_stream_mass_flow_kilograms_per_second", "Reconciled (or model) stream mass flow", st.mass_flow, stream=name)
+        f.gauge("twin_stream_pressure_pascals", "Reconciled (or model) stream pressure, absolute", st.pressure, stream=name)
+        f.gauge("twin_stream_temperature_celsius", "Reconciled (or model) stream temperature in degrees Celsius", _kelvin_to_celsius(st.temperature), stream=name)
+        f.gauge("twin_stream_enthalpy_joules_per_kilogram", "Reconciled (or model) stream specific enthalpy (IAPWS-IF97 reference state)", st.enthalpy, stream=name)
+        f.gauge("twin_stream_quality_ratio", "Steam quality (dryness fraction) of a two-phase stream; absent in single phase", st.quality, stream=name)
+
+
+def _sensors(f: _Families, r: CycleResult) -> None:
+    for tag, t in r.tags.items():
+        dim = MEASURED_QUANTITIES.get(t.quantity, (t.quantity, ""))[0]
+        spec = _DIMENSIONS.get(dim)
+        if spec is not None:
+            word, unit, absolute = spec
+            conv = _kelvin_to_celsius if absolute else float
+            what = f"{word.replace('_', ' ')}" + (" in degrees Celsius" if unit == "celsius" else "")
+            f.gauge(f"twin_sensor_measured_{word}_{unit}", f"Window mean of a {what} sensor", conv(t.measured), tag=tag)
+            f.gauge(f"twin_sensor_reconciled_{word}_{unit}", f"Reconciled value at a {what} sensor", conv(t.reconciled), tag=tag)
+            f.gauge(f"twin_sensor_reconciled_uncertainty_{word}_{unit}",
+                    f"Uncertainty of the reconciled value at a {word.replace('_', ' ')} sensor"
+                    + (_DIFF if unit == "celsius" else "") + "." + _EXPANDED, 1.96 * t.reconciled_sigma, tag=tag)
+        f.gauge("twin_sensor_normalised_adjustment", "Measurement-test statistic z = (measured - reconciled) / sd of the adjustment; absent when not redundant", t.normalised_adjustment, tag=tag)
+        f.gauge("twin_sensor_redundancy_ratio", "Redundancy of a measurement, 1 - Var(reconciled) / Var(measured)", t.redundancy, tag=tag)
+        f.flag("twin_sensor_suspect", "1 when the sensor fails the family-wise (Sidak-corrected) measurement test this window", t.suspect, tag=tag)
+        f.flag("twin_sensor_vdi_flagged", "1 when |z| > 1.96, the VDI 2048 per-measurement criterion", t.flagged_vdi, tag=tag)
+        f.flag("twin_sensor_valid", "1 when the sensor's window value entered the reconciliation", t.valid, tag=tag)
+        if not t.valid and t.reason:
+            f.flag("twin_sensor_excluded", "1 for a sensor excluded from the window, labelled with the reason", True, tag=tag, reason=t.reason)
+        f.gauge("twin_sensor_age_seconds", "Age of the newest sample of the sensor at window close", t.age_seconds, tag=tag)
+        f.gauge("twin_sensor_window_samples", "Number of samples of the sensor in the window", t.count, tag=tag)
+
+
+def _kpis(f: _Families, r: CycleResult) -> None:
+    for key, est in r.kpis.items():
+        f.flag("twin_kpi_available", "1 when the KPI is observable this window; an unavailable KPI has no value sample", est.available, kpi=key)
+        spec = kpi_metric(key)
+        if spec is None or not est.available:
+            continue
+        stem, unit, labels, meaning = spec
+        f.gauge(f"twin_{stem}_{unit}", meaning, est.value, **labels)
+        f.gauge(f"twin_{stem}_uncertainty_{unit}", f"Uncertainty of: {meaning}.{_EXPANDED}", est.uncertainty, **labels)
+    for key, value in r.expected.items():
+        spec = kpi_metric(key)
+        if spec is not None:
+            stem, unit, labels, meaning = spec
+            f.gauge(f"twin_expected_{stem}_{unit}", f"Expected at current conditions (forward model): {meaning}", value, **labels)
+
+
+def _deviation(f: _Families, r: CycleResult) -> None:
+    f.gauge("twin_heat_rate_deviation_ratio", "Turbine heat rate, actual - expected, dimensionless (x3600 = kJ/kWh)", r.heat_rate_deviation)
+    for cause, value in r.heat_rate_deviation_by_cause.items():
+        f.gauge("twin_heat_rate_deviation_by_cause_ratio", "Share of the turbine heat-rate deviation attributed to a cause, dimensionless; causes and 'unaccounted' sum to the total", value, cause=cause)
+
+
+def _alarms(f: _Families, r: CycleResult) -> None:
+    for name, a in r.alarms.items():
+        f.enum("twin_alarm_state", "Alarm state machine, 1 for the current state." + ADVISORY, "state",
+               a.state, ALARM_STATES, alarm=name)
+        levels = list(ALARM_LEVELS) + ([a.severity] if a.severity and a.severity not in ALARM_LEVELS else [])
+        for level in levels:
+            f.flag("twin_alarm_active", "1 when the alarm is raised at this level (its highest raised level)." + ADVISORY,
+                   a.active and a.severity == level, alarm=name, level=level)
+
+
+def _drift(f: _Families, r: CycleResult) -> None:
+    unit = " In the unit of the KPI's own metric."
+    for key, d in r.drift.items():
+        f.gauge("twin_kpi_drift_ewma", "EWMA of a KPI over steady windows." + unit, d.ewma, kpi=key)
+        f.gauge("twin_kpi_drift_ewma_lower", "Lower EWMA control limit of a KPI." + unit, d.ewma_lower, kpi=key)
+        f.gauge("twin_kpi_drift_ewma_upper", "Upper EWMA control limit of a KPI." + unit, d.ewma_upper, kpi=key)
+        f.gauge("twin_kpi_drift_cusum_high", "Upper tabular CUSUM statistic of a KPI." + unit, d.cusum_high, kpi=key)
+        f.gauge("twin_kpi_drift_cusum_low", "Lower tabular CUSUM statistic of a KPI." + unit, d.cusum_low, kpi=key)
+        f.flag("twin_kpi_drift_alarm", "1 when the EWMA or CUSUM chart of a KPI signals drift." + ADVISORY, d.alarm, kpi=key)
+        f.gauge("twin_kpi_drift_direction", "Direction of a KPI's drift: 1 up, -1 down, 0 none",
+                {"up": 1.0, "down": -1.0}.get(d.direction, 0.0), kpi=key)
+
+
+class CycleCollector:
+    """Custom collector: the latest result's metric families, read at scrape time.
+
+    Parameters
+    ----------
+    provider : callable
+        Returns the latest :class:`~twin.result.CycleResult`, or None before
+        the first cycle. Called once per scrape, from the HTTP thread.
+    """
+
+    def __init__(self, provider: Provider) -> None:
+        if not callable(provider):
+            raise TypeError(f"provider must be callable, got {type(provider).__name__}")
+        self._provider = provider
+
+    def describe(self) -> list[Metric]:
+        # Nothing up front: the families depend on the plant; no scrape at registration.
+        return []
+
+    def collect(self) -> Iterator[Metric]:
+        yield from build_families(self._provider())
+
+
+class MetricsServer:
+    """The Prometheus endpoint of the live daemon.
+
+    Parameters
+    ----------
+    provider : callable
+        Latest result or None (see :class:`CycleCollector`).
+    address : str
+        Address to bind; 127.0.0.1 by default (expose deliberately).
+    port : int
+        TCP port; 0 picks a free one (read :attr:`port` after :meth:`start`).
+    registry : CollectorRegistry, optional
+        Registry to use; a fresh private one by default (never the global one).
+    """
+
+    def __init__(
+        self,
+        provider: Provider,
+        address: str = "127.0.0.1",
+        port: int = 9108,
+        registry: CollectorRegistry | None = None,
+    ) -> None:
+        if not 0 <= int(port) <= 65535:
+            raise ValueError(f"port must be in 0..65535, got {port!r}")
+        self.address = address
+        self.port = int(port)
+        self.registry = registry if registry is not None else CollectorRegistry(auto_describe=True)
+        self.collector = CycleCollector(provider)
+        self.registry.register(self.collector)
+        self.cycle_duration = Histogram(
+            "twin_cycle_duration_seconds",
+            "Wall time of one monitoring cycle (window close to result published)",
+            buckets=CYCLE_BUCKETS,
+            registry=self.registry,
+        )
+        self._server: Any = None
+        self._thread: threading.Thread | None = None
+
+    def start(self) -> None:
+        """Serve ``/metrics`` on ``address:port`` in a daemon thread."""
+        if self._server is not None:
+            raise RuntimeError(f"metrics server already running on {self.address}:{self.port}")
+        self._server, self._thread = start_http_server(self.port, addr=self.address, registry=self.registry)
+        self.port = int(self._server.server_address[1])
+
+    def stop(self) -> None:
+        """Shut the HTTP server down and wait for its thread; a no-op when not running."""
+        server, thread, self._server, self._thread = self._server, self._thread, None, None
+        if server is None:
+            return
+        server.shutdown()
+        server.server_close()
+        if thread is not None:
+            thread.join(timeout=5)
+
+    @property
+    def running(self) -> bool:
+        return self._server is not None
+
+    def observe_cycle(self, seconds: float) -> None:
+        """Record one cycle's duration [s] in ``twin_cycle_duration_seconds``."""
+        if not _finite(seconds) or seconds < 0:
+            raise ValueError(f"cycle duration must be a finite number of seconds >= 0, got {seconds!r}")
+        self.cycle_duration.observe(seconds)
+
+    def __enter__(self) -> MetricsServer:
+        self.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+
+def exposition(registry: CollectorRegistry) -> bytes:
+    """Prometheus text exposition (format 0.0.4) of ``registry``."""
+    return generate_latest(registry)
+
+
+class _Static:
+    """A collector yielding fixed families (for one-off OpenMetrics output)."""
+
+    def __init__(self, families: list[Metric]) -> None:
+        self._families = families
+
+    def collect(self) -> Iterator[Metric]:
+        yield from self._families
+
+
+def openmetrics_lines(results: CycleResult | Iterable[CycleResult], timestamp: bool = True) -> str:
+    """OpenMetrics text of one or more results for ``promtool tsdb create-blocks-from openmetrics``.
+
+    Every sample is stamped with its result's ``window_end`` (Unix seconds)
+    when ``timestamp`` is true. Samples of several results are merged per
+    family and grouped per series in time order, as OpenMetrics requires; the
+    text ends with ``# EOF``.
+    """
+    if isinstance(results, CycleResult):
+        results = [results]
+    ordered = sorted(results, key=lambda r: r.window_end)
+    if timestamp and len({r.window_end for r in ordered}) != len(ordered):
+        raise ValueError("results must have distinct window_end times to be written with timestamps")
+    merged: dict[str, Metric] = {}
+    for r in ordered:
+        if not _finite(r.window_end) and timestamp:
+            raise ValueError(f"result of unit {r.unit_id!r} has no finite window_end")
+        for fam in build_families(r, r.window_end if timestamp else None):
+            if fam.name == "twin_cycle_result_available":
+                continue  # a live-endpoint liveness signal, meaningless in history
+            if fam.name in merged:
+                merged[fam.name].samples.extend(fam.samples)
+            else:
+                merged[fam.name] = fam
+    for fam in merged.values():
+        order: dict[tuple, int] = {}
+        for s in fam.samples:
+            order.setdefault((s.name, tuple(sorted(s.labels.items()))), len(order))
+        fam.samples.sort(key=lambda s: (order[(s.name, tuple(sorted(s.labels.items())))], s.timestamp or 0))
+    registry = CollectorRegistry(auto_describe=False)
+    registry.register(_Static(list(merged.values())))
+    return generate_openmetrics(registry).decode("utf-8")
