@@ -31,12 +31,15 @@ stop, restart or reconfigure a broker need their own.
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import signal
 import socket
 import subprocess
 import time
+import urllib.parse
+import urllib.request
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -284,3 +287,131 @@ def wait_for(predicate: Callable[[], object], timeout: float = 10.0, step: float
 def wait_for_fixture() -> Callable[..., bool]:
     """The :func:`wait_for` helper, as a fixture (no import of conftest needed)."""
     return wait_for
+
+
+# ---------------------------------------------------------------- prometheus ---
+# ``prometheus_factory(targets, rule_files=(), scrape_interval="1s")`` starts a
+# real ``prometheus`` on a free port of 127.0.0.1 with a generated config that
+# scrapes ``targets`` ("host:port") as job "twin" and loads ``rule_files``; it
+# returns a :class:`PrometheusServer` once ``/-/ready`` answers. Every server
+# started is stopped by PID at teardown. Skips when the binary is missing.
+
+PROMETHEUS = shutil.which("prometheus")
+
+
+class PrometheusServer:
+    """A private Prometheus process and a minimal client of its HTTP API."""
+
+    host = "127.0.0.1"
+
+    def __init__(self, args: list[str], port: int, log_path: Path, wait_seconds: float = 30.0) -> None:
+        self.port = port
+        self.log_path = log_path
+        with open(log_path, "ab") as log:
+            self._proc: subprocess.Popen[bytes] | None = subprocess.Popen(
+                args, stdout=log, stderr=subprocess.STDOUT
+            )
+        if not wait_for(self._ready, timeout=wait_seconds, step=0.1):
+            self.stop()
+            raise RuntimeError(
+                f"prometheus on port {port} did not become ready; log:\n"
+                + log_path.read_text(errors="replace")[-2000:]
+            )
+
+    @property
+    def url(self) -> str:
+        return f"http://{self.host}:{self.port}"
+
+    @property
+    def pid(self) -> int | None:
+        return self._proc.pid if self._proc is not None else None
+
+    def _ready(self) -> bool:
+        if self._proc is None or self._proc.poll() is not None:
+            raise RuntimeError(
+                "prometheus exited; log:\n" + self.log_path.read_text(errors="replace")[-2000:]
+            )
+        try:
+            with urllib.request.urlopen(f"{self.url}/-/ready", timeout=1) as resp:
+                return resp.status == 200
+        except OSError:
+            return False
+
+    def query(self, expr: str) -> list[dict]:
+        """Instant query; the ``data.result`` list of the API answer."""
+        q = urllib.parse.urlencode({"query": expr})
+        with urllib.request.urlopen(f"{self.url}/api/v1/query?{q}", timeout=5) as resp:
+            body = json.load(resp)
+        if body.get("status") != "success":
+            raise RuntimeError(f"query {expr!r} failed: {body}")
+        return body["data"]["result"]
+
+    def wait_for_result(self, expr: str, timeout: float = 30.0) -> list[dict]:
+        """Poll ``expr`` until it returns a non-empty result (a bounded wait, not a timing test)."""
+        found: list[list[dict]] = []
+
+        def has_result() -> bool:
+            r = self.query(expr)
+            if r:
+                found.append(r)
+            return bool(r)
+
+        if not wait_for(has_result, timeout=timeout, step=0.25):
+            raise AssertionError(f"no result for {expr!r} within {timeout} s")
+        return found[-1]
+
+    def stop(self) -> None:
+        p, self._proc = self._proc, None
+        if p is None or p.poll() is not None:
+            return
+        p.send_signal(signal.SIGTERM)
+        try:
+            p.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            p.kill()
+            p.wait()
+
+
+PrometheusFactory = Callable[..., PrometheusServer]
+
+
+@pytest.fixture
+def prometheus_factory(tmp_path: Path) -> Iterator[PrometheusFactory]:
+    if PROMETHEUS is None:
+        pytest.skip("prometheus is not installed (apt-get install --no-install-recommends prometheus)")
+    servers: list[PrometheusServer] = []
+
+    def factory(
+        targets: list[str], rule_files: tuple[Path, ...] = (), scrape_interval: str = "1s"
+    ) -> PrometheusServer:
+        n = len(servers)
+        port = free_port()
+        conf = tmp_path / f"prometheus{n}.yml"
+        lines = [
+            "global:",
+            f"  scrape_interval: {scrape_interval}",
+            f"  evaluation_interval: {scrape_interval}",
+            "rule_files:",
+            *[f"  - {json.dumps(str(Path(p).resolve()))}" for p in rule_files],
+            "scrape_configs:",
+            "  - job_name: twin",
+            "    static_configs:",
+            f"      - targets: {json.dumps(list(targets))}",
+        ]
+        if not rule_files:
+            lines[3] = "rule_files: []"
+        conf.write_text("\n".join(lines) + "\n")
+        args = [
+            PROMETHEUS,
+            f"--config.file={conf}",
+            f"--storage.tsdb.path={tmp_path / f'prometheus{n}-data'}",
+            f"--web.listen-address={PrometheusServer.host}:{port}",
+            "--log.level=warn",
+        ]
+        server = PrometheusServer(args, port, tmp_path / f"prometheus{n}.log")
+        servers.append(server)
+        return server
+
+    yield factory
+    for s in servers:
+        s.stop()
