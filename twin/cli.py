@@ -56,7 +56,11 @@ def main(argv: list[str] | None = None) -> int:
     if getattr(args, "_unavailable", None):
         print(f"twin: command {args.command!r} is not available in this build", file=sys.stderr)
         return 2
-    return int(args._run(args) or 0)
+    try:
+        return int(args._run(args) or 0)
+    except BrokenPipeError:  # output piped into head/less that closed early
+        sys.stderr.close()
+        return 0
 
 
 if __name__ == "__main__":  # pragma: no cover

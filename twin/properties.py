@@ -35,11 +35,13 @@ the Thermodynamic Properties of Water and Steam (IAPWS-IF97), 2007/2012.
 
 from __future__ import annotations
 
+import functools
 import math
 import threading
 from collections.abc import Callable
 from dataclasses import dataclass
 from math import isfinite
+from typing import Any
 
 import CoolProp.CoolProp as _CP
 import numpy as np
@@ -369,6 +371,15 @@ class Water:
         inside [lo, hi] (the phase's side of the saturation line); bisection
         steps when Newton leaves the bracket. Leaves the state at the result.
         """
+        try:
+            return self._solve_T_loop(func, p, target, by_s, T0, lo, hi)
+        except (ValueError, IndexError) as exc:  # CoolProp range errors (e.g. on the saturation line)
+            if isinstance(exc, PropertyError):
+                raise
+            raise _range_error(func, exc, p=p, **{("s" if by_s else "h"): target}) from None
+
+    def _solve_T_loop(self, func: str, p: float, target: float, by_s: bool, T0: float,
+                      lo: float, hi: float) -> float:
         up, get, cp = self._up, (self._s if by_s else self._h), self._cp
         T = min(max(T0, lo), hi)
         for _ in range(60):
@@ -401,7 +412,7 @@ class Water:
         self._up(_PQ, p, 0.0)
         tsat = self._t()
         if liquid:
-            return _T_LO, tsat, tsat
+            return _T_LO, math.nextafter(tsat, -math.inf), tsat
         return math.nextafter(tsat, math.inf), top, tsat
 
     def _bracketed_T(self, func: str, p: float, target: float, by_s: bool) -> float:
@@ -629,6 +640,27 @@ class Water:
         dx_dp = -((1.0 - x) * st.ds_f_dp + x * st.ds_g_dp) / sfg
         dh_dp = (1.0 - x) * st.dh_f_dp + x * st.dh_g_dp + hfg * dx_dp
         return PSState(p, s, h, T, v, x, wet, dh_dp, hfg / sfg)
+
+
+def _guarded(name: str, method: Callable[..., Any]) -> Callable[..., Any]:
+    """Turn any CoolProp range error escaping ``method`` into a PropertyError naming the inputs."""
+
+    @functools.wraps(method)
+    def wrapper(self: Water, *args: float) -> Any:
+        try:
+            return method(self, *args)
+        except PropertyError:
+            raise
+        except (ValueError, IndexError) as exc:
+            names = ("p", "T") if name.endswith("pT") else ("p", "s") if name in ("h_ps", "ps") else ("p", "h")
+            raise _range_error(name, exc, **dict(zip(names, args, strict=False))) from None
+
+    return wrapper
+
+
+for _name in ("h_pT", "s_pT", "v_pT", "cp_pT", "w_pT", "dh_dp_T", "T_ph", "s_ph", "v_ph", "x_ph", "h_ps",
+              "T_sat", "p_sat", "h_f", "h_g", "s_f", "s_g", "v_f", "v_g", "sat", "ph", "ps"):
+    setattr(Water, _name, _guarded(_name, getattr(Water, _name)))
 
 
 # ---------------------------------------------------------------- module level

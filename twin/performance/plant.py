@@ -40,7 +40,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from twin.model.core import Rows
-from twin.model.flow import Pipe, Pump, Reheater
+from twin.model.flow import Pipe, Pump, Reheater, Source
 from twin.model.flowsheet import Flowsheet
 from twin.model.heat_exchange import ClosedHeater, Condenser
 from twin.model.solve import HeatBalance
@@ -86,7 +86,8 @@ def soft_relation_sigmas(fs: Flowsheet, design: HeatBalance) -> dict[str, tuple[
     - exhaust-loss curve: 25 % of the design loss (95 %);
     - generator and mechanical losses: 10 % of the design losses (95 %);
     - pressure drops (pipes, reheater, heater tubes): 50 % of the design drop (95 %) + 1 kPa;
-    - pump isentropic efficiency: 5 points (95 %); pump discharge rule: 2 % (95 %).
+    - pump isentropic efficiency: 5 points (95 %); pump discharge rule: 2 % (95 %);
+    - supply pressure of a boundary inflow (make-up): 50 % of its design value (95 %).
     """
     ctx = design.context()
     out: dict[str, tuple[float, str]] = {}
@@ -108,6 +109,10 @@ def soft_relation_sigmas(fs: Flowsheet, design: HeatBalance) -> dict[str, tuple[
         elif isinstance(e, ClosedHeater):
             drop = abs(e.params["tube_pressure_drop"])
             out[e.relation("tube_pressure_drop")] = (0.5 * drop / K95 + 1e3, "Pa")
+        elif isinstance(e, Source):
+            # the supply pressure of a boundary inflow is known roughly (its design value)
+            p = ctx.p(e.port("outlet"))
+            out[f"{e.id}.supply_pressure"] = (0.5 * p / K95, "Pa")
         elif isinstance(e, Pump):
             a, b = e.port("inlet"), e.port("outlet")
             dh = ctx.h(b) - ctx.h(a)
@@ -164,6 +169,8 @@ class PlantSystem:
             self.soft.append(SoftRelation(name, sigma, n, unit))
             n += 1
         self.soft_by_name = {r.name: r for r in self.soft}
+        self._supply = [(e, self.soft_by_name[f"{e.id}.supply_pressure"]) for e in fs.of_kind(Source)
+                        if f"{e.id}.supply_pressure" in self.soft_by_name]
         self.n_vars = n
         self.n_model = lay.n_vars
         self._skip = self._non_soft_relations()
@@ -253,6 +260,12 @@ class PlantSystem:
                 rows._data.append(-1.0)
         ctx = fs.context(z, self.constants)
         lay = fs.layout
+        for e, r in self._supply:
+            out = e.port("outlet")
+            col = lay.p(out)
+            rows.add(r.name, "performance", z[col] - float(self.design.z[col]) - z[r.column],
+                     {col: 1.0, r.column: -1.0}, 1e5)
+            scales.append(1e5)
         for b in self.sensors:
             if b.kind == "T":
                 st = ctx.ph(b.target)

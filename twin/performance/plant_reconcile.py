@@ -1,0 +1,317 @@
+"""Reconcile one window of plant measurements: values, suspects, unmeasured estimates, KPIs ± U.
+
+``PlantReconciler`` owns the plant's reconciliation problem
+(:class:`twin.performance.plant.PlantSystem`), a warm start and a cache of
+the classification per set of valid tags. ``reconcile(values)`` takes the
+window means of the valid tags in SI and returns a
+:class:`PlantReconciliation` with one :class:`twin.result.TagResult` per
+sensor, reconciled stream states and KPI estimates with expanded (95 %)
+uncertainties. It never raises for bad data: missing, NaN or unknown tags
+are reported, and a failed solve returns a status with no numbers.
+
+References
+----------
+VDI 2048 Blatt 1 (2017); S. Narasimhan, C. Jordache, *Data Reconciliation and
+Gross Error Detection*, Gulf (2000), ch. 7–8 (measurement test, serial elimination).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from twin.model.flowsheet import Flowsheet
+from twin.model.solve import HeatBalance, Operation, SolveError, solve_design, solve_off_design
+from twin.performance.kpi import CyclePerformanceSettings, KpiDef, kpi_definitions
+from twin.performance.plant import K95, PlantSystem
+from twin.reconcile import (
+    Classification,
+    SolveOptions,
+    classify,
+    eliminate_suspects,
+    measurement_test,
+    reconcile,
+)
+from twin.result import Estimate, StreamState, TagResult
+
+#: KPIs whose observability serial elimination must never break.
+PROTECTED_KPIS = ("gross_efficiency", "turbine_heat_rate", "exhaust_quality_ueep")
+
+DEFAULT_OPTIONS = SolveOptions(max_iter=40, step_tol=1e-7, residual_tol=1e-7, objective_tol=1e-9)
+
+
+@dataclass(frozen=True)
+class PlantReconciliation:
+    """The outcome of one plant reconciliation (SI units; uncertainties expanded, ≈95 %)."""
+
+    status: str
+    message: str = ""
+    iterations: int = 0
+    z: np.ndarray | None = None  # reconciled variables (NaN where unobservable)
+    cov: np.ndarray | None = None
+    tags: Mapping[str, TagResult] = field(default_factory=dict)
+    streams: Mapping[str, StreamState] = field(default_factory=dict)
+    kpis: Mapping[str, Estimate] = field(default_factory=dict)
+    global_test: float = math.nan
+    dof: int = 0
+    p_value: float = math.nan
+    global_test_critical: float = math.nan  # χ²(dof) 95 % quantile
+    suspects: tuple[str, ...] = ()  # instruments (tags) eliminated or flagged (Šidák)
+    model_suspects: tuple[str, ...] = ()  # soft model relations flagged (Šidák)
+    depends_on: tuple[str, ...] = ()  # soft model relations in use
+    unmeasured: Mapping[str, Estimate] = field(default_factory=dict)  # LP exhaust enthalpy, extraction flows...
+
+    @property
+    def converged(self) -> bool:
+        return self.status == "converged"
+
+
+class PlantReconciler:
+    """Reconciles windows of tag values for one unit.
+
+    Parameters
+    ----------
+    config : PlantConfig
+    flowsheet, design : optional
+        Reuse an existing flowsheet and solved design point.
+    alpha : float
+        Family-wise significance of the measurement test (Šidák) [-].
+    max_eliminations : int
+        Bound on serially eliminated suspects per window (0 disables elimination).
+    options : SolveOptions, optional
+    """
+
+    def __init__(self, config: Any, *, flowsheet: Flowsheet | None = None, design: HeatBalance | None = None,
+                 alpha: float = 0.05, max_eliminations: int = 3, options: SolveOptions | None = None) -> None:
+        self.config = config
+        self.fs = flowsheet or Flowsheet.from_config(config)
+        self.op = Operation.from_config(config)
+        self.design = design or solve_design(self.fs, self.op)
+        self.system = PlantSystem(self.fs, config.sensors, self.design)
+        self.settings = CyclePerformanceSettings.from_config(config)
+        self.kpi_defs: list[KpiDef] = kpi_definitions(
+            self.fs, self.settings, cooling_water_columns=self.system.cooling_water_columns
+        )
+        self.alpha = alpha
+        self.max_eliminations = max_eliminations
+        self.options = options or DEFAULT_OPTIONS
+        self.sensor_configs = {s.tag: s for s in config.sensors}
+        self._classifications: dict[tuple[int, ...], Classification] = {}
+        self._z_warm: np.ndarray | None = None
+        self._soft_cols = np.array([r.column for r in self.system.soft], dtype=int)
+        protected = {c for d in self.kpi_defs if d.name in PROTECTED_KPIS for c in d.columns}
+        self._protected_cols = np.array(sorted(protected), dtype=int)
+
+    # ------------------------------------------------------------------ helpers
+    def sigma(self, tag: str, value_si: float) -> float:
+        """Standard uncertainty (1 σ) of a sensor's reading [SI]."""
+        return float(self.sensor_configs[tag].sigma_si(value_si))
+
+    def start_point(self, load: float | None = None) -> np.ndarray:
+        """Starting state: the forward model at ``load`` (or the design point)."""
+        if load is None or not 0.2 <= load <= 1.2:
+            return self.system.initial_point(self.design.z)
+        try:
+            hb = solve_off_design(self.fs, self.op, self.design, float(load), "sliding")
+        except (SolveError, ValueError):
+            return self.system.initial_point(self.design.z)
+        return self.system.initial_point(hb.z)
+
+    def _estimate_load(self, values: Mapping[str, float]) -> float | None:
+        flows = [v for t, v in values.items()
+                 if t in self.system.sensor_by_tag and self.system.sensor_by_tag[t].kind == "m"
+                 and self.system.sensor_by_tag[t].target in (self.op.load_stream, "feedwater")]
+        if not flows:
+            return None
+        return float(np.median(flows)) / self.settings.design_flow
+
+    def classification(self, measured: np.ndarray, sigma: np.ndarray, z: np.ndarray) -> Classification:
+        """Classification for this set of valid tags, computed once per set."""
+        key = tuple(int(i) for i in measured)
+        cls = self._classifications.get(key)
+        if cls is None:
+            vs, rs = self.system.scales()
+            cls = classify(self.system.jacobian(z), measured, sigma=sigma, var_scale=vs, residual_scale=rs)
+            if len(self._classifications) > 64:
+                self._classifications.clear()
+            self._classifications[key] = cls
+        return cls
+
+    def reset(self) -> None:
+        """Forget the warm start (e.g. after a unit trip)."""
+        self._z_warm = None
+
+    # ------------------------------------------------------------------ main
+    def reconcile(self, values: Mapping[str, float], *, excluded: Mapping[str, str] | None = None,
+                  z0: np.ndarray | None = None) -> PlantReconciliation:
+        """Reconcile one window.
+
+        Parameters
+        ----------
+        values : mapping
+            Window mean of each valid tag [SI]. Non-finite values are excluded.
+        excluded : mapping, optional
+            Tags the caller left out and why (``stale``, ``out_of_range``...), for the report.
+        z0 : ndarray, optional
+            Starting point; default the previous solution, else the forward model at the
+            measured load.
+        """
+        excluded = dict(excluded or {})
+        sysm = self.system
+        valid: list[str] = []
+        for tag in sysm.sensor_by_tag:
+            v = values.get(tag)
+            if v is None:
+                excluded.setdefault(tag, "no_data")
+            elif not math.isfinite(v):
+                excluded[tag] = "not_finite"
+            else:
+                valid.append(tag)
+        tags_out = {t: TagResult(t, b.quantity, valid=False, reason=excluded.get(t, "no_data"))
+                    for t, b in sysm.sensor_by_tag.items() if t not in valid}
+        if not valid:
+            return PlantReconciliation("insufficient_data", "no valid sensor in this window", tags=tags_out)
+        cols = np.array([sysm.sensor_by_tag[t].column for t in valid], dtype=int)
+        y_s = np.array([values[t] for t in valid], dtype=float)
+        sig_s = np.array([self.sigma(t, values[t]) for t in valid])
+        measured = np.concatenate([cols, self._soft_cols])
+        y = np.concatenate([y_s, np.zeros(self._soft_cols.size)])
+        sig = np.concatenate([sig_s, [r.sigma for r in sysm.soft]])
+        V = sig**2
+        if z0 is None:
+            z0 = self._z_warm if self._z_warm is not None else self.start_point(self._estimate_load(values))
+        res = reconcile(sysm, z0, measured, y, V, options=self.options)
+        if not res.converged and self._z_warm is not None:
+            # a stale warm start (after a load change): restart from the forward model
+            res = reconcile(sysm, self.start_point(self._estimate_load(values)), measured, y, V, options=self.options)
+        if not res.converged:
+            status = "model_error" if res.status == "model_error" else "not_converged"
+            return PlantReconciliation(status, res.message, res.iterations, tags=tags_out)
+        first = res
+        n_s = len(valid)
+        flagged = measurement_test(first.z, self.alpha).flagged_sidak
+        eliminated: dict[int, Any] = {}
+        if self.max_eliminations > 0 and np.any(flagged[:n_s]):
+            soft = set(self._soft_cols.tolist())
+            protected = self._protected_cols
+
+            def keep_ok(cls: Classification) -> bool:
+                if not soft.issubset(set(cls.measured.tolist())):
+                    return False
+                return bool(np.all(cls.determined[protected])) if protected.size else True
+
+            elim = eliminate_suspects(sysm, first.z_warm, measured, y, V, max_eliminations=self.max_eliminations,
+                                      alpha=self.alpha, criterion="sidak", protected=keep_ok, options=self.options)
+            if elim.result.converged:
+                res = elim.result
+                eliminated = {e.position: e for e in elim.eliminated}
+        self._z_warm = res.z_warm.copy()
+        # ---- tags
+        final_pos = {int(v): i for i, v in enumerate(res.measured)}
+        mt_final = measurement_test(res.z, self.alpha)
+        suspects = []
+        for i, tag in enumerate(valid):
+            col = int(cols[i])
+            e = eliminated.get(i)
+            if e is not None:
+                rec, rec_sig = e.re_estimate, e.re_estimate_sigma
+                suspect = True
+                red = math.nan
+            else:
+                j = final_pos[col]
+                rec = float(res.x_hat[j])
+                rec_sig = float(math.sqrt(max(res.cov_z[col, col], 0.0)))
+                suspect = bool(mt_final.flagged_sidak[j])
+                red = float(res.redundancy[j])
+            if suspect:
+                suspects.append(tag)
+            z_first = float(first.z[i])
+            tags_out[tag] = TagResult(
+                tag, sysm.sensor_by_tag[tag].quantity, measured=float(y_s[i]), valid=True,
+                sigma=float(sig_s[i]), reconciled=rec, reconciled_sigma=rec_sig,
+                adjustment=float(y_s[i] - rec), normalised_adjustment=z_first,
+                redundancy=red if e is None else float(first.redundancy[i]), suspect=suspect,
+                flagged_vdi=bool(math.isfinite(z_first) and abs(z_first) > 1.96),
+                reason="eliminated" if e is not None else "",
+            )
+        model_suspects = tuple(
+            r.name for k, r in enumerate(sysm.soft)
+            if bool(mt_final.flagged_sidak[final_pos[r.column]])
+        )
+        # ---- states, KPIs
+        z_hat, cov = res.z_hat, res.cov_z
+        streams = self._streams(z_hat)
+        kpis = self._kpis(z_hat, cov)
+        unmeasured = self._unmeasured(z_hat, cov)
+        from scipy.stats import chi2
+
+        return PlantReconciliation(
+            "converged", res.message, res.iterations, z_hat, cov, tags_out, streams, kpis,
+            float(res.gamma), int(res.dof), float(res.p_value),
+            float(chi2.ppf(0.95, res.dof)) if res.dof > 0 else math.nan,
+            tuple(suspects), model_suspects, tuple(r.name for r in sysm.soft), unmeasured,
+        )
+
+    # ------------------------------------------------------------------ outputs
+    def _streams(self, z: np.ndarray) -> dict[str, StreamState]:
+        out = {}
+        ctx = self.fs.context(z, self.design.constants)
+        for sid in self.fs.layout.streams:
+            m, p, h = ctx.m(sid), ctx.p(sid), ctx.h(sid)
+            T = x = math.nan
+            if math.isfinite(p) and math.isfinite(h):
+                try:
+                    st = ctx.ph(sid)
+                    T, x = st.T, (st.x if st.two_phase else math.nan)
+                except ValueError:
+                    pass
+            out[sid] = StreamState(m, p, T, h, x)
+        return out
+
+    def _kpi_estimate(self, d: KpiDef, z: np.ndarray, cov: np.ndarray) -> Estimate:
+        cols = list(d.columns)
+        if any(not math.isfinite(z[c]) for c in cols):
+            return Estimate()
+        constants = self.system.constants
+        try:
+            value = float(d.func(self.fs.context(z, constants)))
+            grad = np.zeros(len(cols))
+            for k, c in enumerate(cols):
+                step = 1e-6 * max(abs(z[c]), 1.0)
+                zp, zm = z.copy(), z.copy()
+                zp[c] += step
+                zm[c] -= step
+                grad[k] = (d.func(self.fs.context(zp, constants)) - d.func(self.fs.context(zm, constants))) / (2 * step)
+        except (ValueError, ZeroDivisionError, ArithmeticError):
+            return Estimate()
+        C = cov[np.ix_(cols, cols)]
+        var = float(grad @ C @ grad)
+        if not (math.isfinite(value) and math.isfinite(var)):
+            return Estimate()
+        return Estimate(value, K95 * math.sqrt(max(var, 0.0)), True)
+
+    def _kpis(self, z: np.ndarray, cov: np.ndarray) -> dict[str, Estimate]:
+        return {d.name: self._kpi_estimate(d, z, cov) for d in self.kpi_defs}
+
+    def _unmeasured(self, z: np.ndarray, cov: np.ndarray) -> dict[str, Estimate]:
+        """Unmeasured quantities worth reporting: LP exhaust enthalpies, line factors."""
+        out = {}
+        lay = self.fs.layout
+        for s in self.settings.sections:
+            col = lay.h(s.outlet)
+            out[f"{s.outlet}.enthalpy"] = self._var_estimate(z, cov, col)
+        for e in self.fs.of_kind("exhaust_loss"):
+            out[f"{e.port('outlet')}.enthalpy"] = self._var_estimate(z, cov, lay.h(e.port("outlet")))
+        for key, col in self.system.line_columns.items():
+            out[f"{key}.efficiency_factor"] = self._var_estimate(z, cov, col)
+        return out
+
+    @staticmethod
+    def _var_estimate(z: np.ndarray, cov: np.ndarray, col: int) -> Estimate:
+        if not math.isfinite(z[col]) or not math.isfinite(cov[col, col]):
+            return Estimate()
+        return Estimate(float(z[col]), K95 * math.sqrt(max(cov[col, col], 0.0)), True)
