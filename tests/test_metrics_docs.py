@@ -1,0 +1,61 @@
+"""docs/metrics.md lists exactly the metric families twin exports, with units matching names."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+from tests.test_deploy import populated_result
+from twin.metrics import MetricsServer
+
+DOC = Path(__file__).resolve().parent.parent / "docs" / "metrics.md"
+ROW = re.compile(r"^\| `(twin_[a-z0-9_]+)` \| ([a-z ()]+) \| ([^|]*) \| (.+) \| ([^|]+) \|$")
+UNITS = {
+    "_kilograms_per_second": "kg/s",
+    "_joules_per_kilogram": "J/kg",
+    "_pascals": "Pa (absolute)",
+    "_watts": "W",
+    "_celsius": "°C",
+    "_timestamp_seconds": "s (Unix time)",
+    "_seconds": "s",
+    "_ratio": "1",
+}
+
+
+def documented() -> dict[str, tuple[str, set[str], str]]:
+    rows = {}
+    for line in DOC.read_text().splitlines():
+        m = ROW.match(line)
+        if m:
+            labels = set(re.findall(r"`([a-z_]+)`", m.group(3)))
+            rows[m.group(1)] = (m.group(2), labels, m.group(5).strip())
+    return rows
+
+
+def exported() -> dict[str, tuple[str, set[str]]]:
+    server = MetricsServer(populated_result, port=0)
+    server.observe_cycle(0.1)
+    out = {}
+    for fam in server.registry.collect():
+        name = fam.name + {"counter": "_total", "info": "_info"}.get(fam.type, "")
+        labels = {k for s in fam.samples for k in s.labels} - {"le"}
+        out[name] = (fam.type, labels)
+    return out
+
+
+def test_every_exported_family_is_documented_and_nothing_else() -> None:
+    docs, live = documented(), exported()
+    assert sorted(set(live) - set(docs)) == []
+    assert sorted(set(docs) - set(live)) == []
+
+
+def test_documented_type_labels_and_unit_match() -> None:
+    docs, live = documented(), exported()
+    for name, (typ, labels) in live.items():
+        doc_type, doc_labels, doc_unit = docs[name]
+        assert doc_type.split()[0] == ("gauge" if typ == "info" else typ), name
+        assert doc_labels == labels, name
+        base = name.removesuffix("_total")
+        want = next((u for suffix, u in UNITS.items() if base.endswith(suffix)), None)
+        if want is not None:
+            assert doc_unit == want, name
