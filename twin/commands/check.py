@@ -49,12 +49,20 @@ def summary_report(cfg: PlantConfig) -> list[str]:
     ]
 
 
+def redundancy_section(cfg: PlantConfig) -> list[str]:
+    """Per tag redundancy and detectable bias; per KPI observability and expected uncertainty."""
+    from twin.performance.redundancy import redundancy_report  # CoolProp: imported on use
+
+    return redundancy_report(cfg)
+
+
 # Report sections printed in order after a successful load.
-REPORTS: list[Report] = [summary_report]
+REPORTS: list[Report] = [summary_report, redundancy_section]
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("config", metavar="CONFIG", help="plant config file (TOML)")
+    parser.add_argument("--summary-only", action="store_true", help="skip the redundancy report (no model solve)")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -68,7 +76,7 @@ def run(args: argparse.Namespace) -> int:
         print(f"twin check: cannot read {args.config}: {exc.strerror or exc}", file=sys.stderr)
         return 2
     print(f"{cfg.source_path}: OK")
-    for report in REPORTS:
+    for report in REPORTS[:1] if getattr(args, "summary_only", False) else REPORTS:
         print()
         for line in report(cfg):
             print(line)
