@@ -25,6 +25,7 @@ import scipy.linalg as sla
 import scipy.sparse as sp
 from scipy import stats as sps
 
+from twin.reconcile.kkt import KKTFactorisationError, ScaledKKT, scaled_blocks
 from twin.reconcile.linear import (
     DEFAULT_RANK_TOL,
     Classification,
@@ -33,6 +34,7 @@ from twin.reconcile.linear import (
     _check_inputs,
     _cov_factor,
     _solve,
+    classify,
 )
 
 #: Exceptions from the model callbacks that are treated as "no value here".
@@ -77,6 +79,11 @@ class LinearSystem:
         return self.J
 
 
+#: Valid values of :attr:`SolveOptions.method` and :attr:`SolveOptions.covariance`.
+METHODS = ("sparse", "dense")
+COVARIANCES = ("full", "measured", "none")
+
+
 @dataclass(frozen=True)
 class SolveOptions:
     """Settings of :func:`reconcile`.
@@ -87,12 +94,17 @@ class SolveOptions:
         Maximum number of SQP iterations.
     step_tol : float
         Converged when the largest scaled step ``|Δz_i| / s_i`` is below this
-        (measured variables are scaled by their σ) ...
+        (measured variables are scaled by their σ; unmeasured ones by the system's
+        variable scales; when a ``classification`` is passed, unobservable unmeasured
+        variables are left out of the test) ...
     residual_tol : float
-        ... and the largest scaled residual ``|f_i| / s_f,i`` is below this.
+        ... and the largest scaled residual ``|f_i| / s_f,i`` is below this (relative
+        to the system's residual scales; models whose properties come from iterative
+        routines have a floor near 1e-8).
     objective_tol : float
-        Alternatively converged after a full step that changed ``½ aᵀV⁻¹a`` by less
-        than ``objective_tol·max(1, objective)`` with the residual test met.
+        Alternatively converged after a full step below ``100·step_tol`` that changed
+        ``½ aᵀV⁻¹a`` by less than ``objective_tol·max(1, objective)`` with the residual
+        test met (ends the iteration at a model's noise floor).
     armijo : float
         Sufficient-decrease constant of the line search.
     backtrack : float
@@ -101,16 +113,33 @@ class SolveOptions:
         Backtracks before the line search gives up.
     rank_tol : float or None
         Relative rank tolerance (see :func:`twin.reconcile.linear.classify`).
+    method : {"sparse", "dense"}
+        How each Gauss-Newton step is solved: a sparse LU of the augmented (KKT)
+        system (:mod:`twin.reconcile.kkt`), or the dense projection by pivoted QR of
+        the unmeasured block (:mod:`twin.reconcile.linear`), kept as a reference.
+    covariance : {"full", "measured", "none"}
+        Which covariances the result carries: all of ``cov_z``; only the measured
+        block of ``cov_z`` and ``cov_a`` (unmeasured rows/columns NaN); or none
+        (``cov_z``, ``cov_a``, ``z`` and ``redundancy`` NaN). The sparse method then
+        skips the corresponding solves.
     """
 
     max_iter: int = 50
     step_tol: float = 1e-8
-    residual_tol: float = 1e-9
-    objective_tol: float = 1e-12
+    residual_tol: float = 1e-8
+    objective_tol: float = 1e-10
     armijo: float = 1e-4
     backtrack: float = 0.5
     max_backtracks: int = 40
     rank_tol: float | None = None
+    method: str = "sparse"
+    covariance: str = "full"
+
+    def __post_init__(self) -> None:
+        if self.method not in METHODS:
+            raise ValueError(f"method must be one of {METHODS}, got {self.method!r}")
+        if self.covariance not in COVARIANCES:
+            raise ValueError(f"covariance must be one of {COVARIANCES}, got {self.covariance!r}")
 
 
 @dataclass(frozen=True)
@@ -189,20 +218,61 @@ def _failed(status, message, iterations, n_vars, measured, unmeasured) -> Result
     )
 
 
-def _evaluate(system, z, m_expected=None):
-    """Residuals and dense Jacobian at z; raises ValueError on non-finite output."""
+def _evaluate(system, z, m_expected=None, dense=True):
+    """Residuals and Jacobian at z (dense array or CSR); ValueError on non-finite output."""
     f = np.asarray(system.residuals(z), dtype=float).reshape(-1)
     if m_expected is not None and f.shape != (m_expected,):
         raise ValueError(f"residuals changed length: {f.shape[0]} != {m_expected}")
     if not np.all(np.isfinite(f)):
         raise ValueError(f"non-finite residuals at rows {np.flatnonzero(~np.isfinite(f))[:10].tolist()}")
     J = system.jacobian(z)
-    J = np.asarray(J.toarray() if sp.issparse(J) else J, dtype=float)
+    if dense:
+        J = np.asarray(J.toarray() if sp.issparse(J) else J, dtype=float)
+        finite = bool(np.all(np.isfinite(J)))
+    else:
+        J = sp.csr_matrix(J, dtype=float)
+        finite = bool(np.all(np.isfinite(J.data)))
     if J.shape != (f.shape[0], len(z)):
         raise ValueError(f"jacobian has shape {J.shape}, expected {(f.shape[0], len(z))}")
-    if not np.all(np.isfinite(J)):
+    if not finite:
         raise ValueError("non-finite jacobian entries")
     return f, J
+
+
+class _SparseStep:
+    """Gauss-Newton steps by the sparse KKT system (internal)."""
+
+    def __init__(self, measured, unmeasured, Lfac, diagonal, vs, rs):
+        self.measured, self.unmeasured = measured, unmeasured
+        self.Lfac, self.diagonal = Lfac, diagonal
+        self.su, self.rs = vs[unmeasured], rs
+        self.kkt: ScaledKKT | None = None
+
+    def factor(self, J) -> ScaledKKT:
+        Cw, Cv = scaled_blocks(J, self.measured, self.unmeasured, self.Lfac, self.diagonal,
+                               self.su, self.rs)
+        self.kkt = ScaledKKT(Cw, Cv)
+        self.Cw, self.Cv = Cw, Cv
+        return self.kkt
+
+    def __call__(self, J, z, f, a, n_vars) -> np.ndarray:
+        kkt = self.factor(J)
+        g = a / self.Lfac if self.diagonal else sla.solve_triangular(self.Lfac, a, lower=True)
+        fs = f / self.rs
+        dw, dv = kkt.step(g, fs)
+        lin = self.Cw @ dw + self.Cv @ dv + fs
+        if np.max(np.abs(lin)) > _LINEAR_CONSISTENCY * max(1.0, float(np.max(np.abs(fs)))):
+            raise InconsistentConstraintsError(
+                "constraints are inconsistent: the linearised step cannot satisfy them "
+                f"(worst scaled residual {float(np.max(np.abs(lin))):.3g})")
+        d = np.zeros(n_vars)
+        d[self.measured] = self.Lfac * dw if self.diagonal else self.Lfac @ dw
+        d[self.unmeasured] = self.su * dv
+        return d
+
+
+#: Largest scaled residual of the linearised constraints a sparse step may leave.
+_LINEAR_CONSISTENCY = 1e-6
 
 
 def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
@@ -242,6 +312,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
         during the line search they shorten the step.
     """
     opts = options or SolveOptions()
+    dense = opts.method == "dense"
     n_vars = int(system.n_vars)
     z0 = np.asarray(z0, dtype=float).reshape(-1)
     if z0.shape != (n_vars,):
@@ -263,11 +334,11 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
     fail = lambda status, msg, it: _failed(status, msg, it, n_vars, measured, unmeasured)  # noqa: E731
 
     try:
-        f, J = _evaluate(system, z0)
+        f, J = _evaluate(system, z0, dense=dense)
     except MODEL_ERRORS as exc:
         return fail("model_error", f"model error at the starting point: {type(exc).__name__}: {exc}", 0)
     m = f.shape[0]
-    _, y, V, _, _ = _check_inputs(np.zeros((m, measured.size)), y, V, None, None)
+    y, V = _check_measurements(y, V, measured.size)
     factor = _cov_factor(V)
     Lfac, diagonal = factor
     sigma = Lfac if diagonal else np.sqrt(np.diag(V))
@@ -282,8 +353,12 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
             raise ValueError("system.scales() must return positive arrays of shapes (n_vars,), (m,)")
     vs[measured] = sigma
     if rs is None:
-        rs = np.linalg.norm(J * vs, axis=1)
+        # row norms of J·diag(vs)
+        J2 = (J * J) if dense else J.multiply(J)
+        rs = np.sqrt(np.asarray(J2 @ vs**2, dtype=float).reshape(-1))
         rs[rs == 0.0] = 1.0
+    # the step test covers measured and (when known) observable unmeasured variables
+    tested = classification.determined if classification is not None else np.ones(n_vars, bool)
 
     def objective(z):
         a = y - z[measured]
@@ -293,22 +368,31 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
     def vinv(a):
         return a / Lfac**2 if diagonal else sla.cho_solve((Lfac, True), a)
 
-    z = z0.copy()
-    mu = 0.0
-    obj, a = objective(z)
-    status, message, core = "max_iter", f"no convergence in {opts.max_iter} iterations", None
-    it = 0
-    for it in range(1, opts.max_iter + 1):
+    sparse_step = None if dense else _SparseStep(measured, unmeasured, Lfac, diagonal, vs, rs)
+
+    def step(J, z, f, a):
+        if sparse_step is not None:
+            return sparse_step(J, z, f, a, n_vars)
         JM, JU = J[:, measured], J[:, unmeasured]
-        try:
-            core = _solve(JM, y, V, JU, JM @ z[measured] - f, tol, factor)
-        except InconsistentConstraintsError as exc:
-            return fail("inconsistent", f"linearised constraints inconsistent: {exc}", it)
+        core = _solve(JM, y, V, JU, JM @ z[measured] - f, tol, factor)
         d = np.zeros(n_vars)
         d[measured] = core.x_hat - z[measured]
         d[unmeasured] = core.u_part
+        return d
+
+    z = z0.copy()
+    mu = 0.0
+    obj, a = objective(z)
+    status, message = "max_iter", f"no convergence in {opts.max_iter} iterations"
+    it = 0
+    for it in range(1, opts.max_iter + 1):
+        try:
+            d = step(J, z, f, a)
+        except (InconsistentConstraintsError, KKTFactorisationError) as exc:
+            return fail("inconsistent", f"linearised constraints inconsistent: {exc}", it)
         fs = f / rs
-        if np.max(np.abs(d) / vs) <= opts.step_tol and np.max(np.abs(fs)) <= opts.residual_tol:
+        if (np.max(np.abs(d[tested]) / vs[tested]) <= opts.step_tol
+                and np.max(np.abs(fs)) <= opts.residual_tol):
             status, message = "converged", f"converged in {it} iterations (step test)"
             break
         # l1 merit function with penalty update (Nocedal & Wright eq. 18.36, rho = 1/2)
@@ -324,7 +408,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
         for _ in range(opts.max_backtracks + 1):
             zt = z + alpha * d
             try:
-                ft, Jt = _evaluate(system, zt, m)
+                ft, Jt = _evaluate(system, zt, m, dense=dense)
             except MODEL_ERRORS as exc:
                 last_err = f"{type(exc).__name__}: {exc}"
                 alpha *= opts.backtrack
@@ -341,41 +425,102 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
             status = "line_search_failed"
             message = "line search failed to reduce the merit function" + (
                 f" (last model error: {last_err})" if last_err else "")
-            core = None
             break
         obj_change = abs(objt - obj)
+        small_step = np.max(np.abs(d[tested]) / vs[tested]) <= 100.0 * opts.step_tol
         z, f, J, obj, a = zt, ft, Jt, objt, at
-        if (obj_change <= opts.objective_tol * max(1.0, obj)
+        if (alpha == 1.0 and small_step and obj_change <= opts.objective_tol * max(1.0, obj)
                 and np.max(np.abs(f / rs)) <= opts.residual_tol):
-            try:
-                core = _solve(J[:, measured], y, V, J[:, unmeasured],
-                              J[:, measured] @ z[measured] - f, tol, factor)
-            except InconsistentConstraintsError as exc:
-                return fail("inconsistent", f"linearised constraints inconsistent: {exc}", it)
             status, message = "converged", f"converged in {it} iterations (objective test)"
             break
-    if status != "converged" or core is None:
+    if status != "converged":
         return fail(status, message, it)
-
-    lin = _build_result(core, J[:, measured], y, classification, measured, unmeasured, tol)
+    try:
+        if dense:
+            stats = _final_dense(J, z, f, y, V, factor, measured, unmeasured, classification, tol)
+        else:
+            stats = _final_sparse(J, y, V, sigma, vs, rs, sparse_step, measured, unmeasured,
+                                  classification, tol, opts.covariance)
+    except (InconsistentConstraintsError, KKTFactorisationError) as exc:
+        return fail("inconsistent", f"linearised constraints inconsistent: {exc}", it)
+    cls, cov_x, cov_xu, cov_u = stats
     # statistics at the accepted iterate z (the final linear step is below tolerance)
     adj = y - z[measured]
     gamma = float(adj @ vinv(adj))
-    z_norm = np.full(measured.size, np.nan)
-    ok = lin.redundant & (np.diag(lin.cov_a) > 0)
-    z_norm[ok] = adj[ok] / np.sqrt(np.diag(lin.cov_a)[ok])
-    cov_z = np.empty((n_vars, n_vars))
-    cov_z[np.ix_(measured, measured)] = lin.cov_x
-    cov_z[np.ix_(unmeasured, unmeasured)] = lin.cov_u
-    cov_z[np.ix_(measured, unmeasured)] = lin.cov_xu
-    cov_z[np.ix_(unmeasured, measured)] = lin.cov_xu.T
+    observable = cls.observable
+    nan = float("nan")
+    cov_z = np.full((n_vars, n_vars), nan)
+    cov_a = np.full((measured.size, measured.size), nan)
+    z_norm = np.full(measured.size, nan)
+    redundancy = np.full(measured.size, nan)
+    if opts.covariance != "none":
+        cov_a = V - cov_x
+        cov_z[np.ix_(measured, measured)] = cov_x
+        va = np.diag(cov_a)
+        ok = cls.redundant & (va > 0)
+        z_norm[ok] = adj[ok] / np.sqrt(va[ok])
+        redundancy = np.where(cls.redundant, 1.0 - np.diag(cov_x) / np.diag(V), 0.0)
+    if opts.covariance == "full":
+        cov_u = cov_u.copy()
+        cov_xu = cov_xu.copy()
+        cov_u[~observable, :] = nan
+        cov_u[:, ~observable] = nan
+        cov_xu[:, ~observable] = nan
+        cov_z[np.ix_(unmeasured, unmeasured)] = cov_u
+        cov_z[np.ix_(measured, unmeasured)] = cov_xu
+        cov_z[np.ix_(unmeasured, measured)] = cov_xu.T
     z_hat = z.copy()
-    z_hat[unmeasured[~lin.observable]] = np.nan
-    p_value = float(sps.chi2.sf(gamma, lin.dof)) if lin.dof > 0 else float("nan")
+    z_hat[unmeasured[~observable]] = np.nan
+    p_value = float(sps.chi2.sf(gamma, cls.dof)) if cls.dof > 0 else nan
     return Result(
         status=status, iterations=it, z_hat=z_hat, x_hat=z[measured].copy(), cov_z=cov_z,
-        adjustments=adj, cov_a=lin.cov_a, gamma=gamma, dof=lin.dof, p_value=p_value,
-        z=z_norm, redundant=lin.redundant, observable=lin.observable,
-        redundancy=lin.redundancy, message=message, measured=measured,
-        unmeasured=unmeasured, z_warm=z.copy(), classification=lin.classification,
+        adjustments=adj, cov_a=cov_a, gamma=gamma, dof=cls.dof, p_value=p_value,
+        z=z_norm, redundant=cls.redundant.copy(), observable=observable.copy(),
+        redundancy=redundancy, message=message, measured=measured,
+        unmeasured=unmeasured, z_warm=z.copy(), classification=cls,
     )
+
+
+def _check_measurements(y, V, n):
+    _, y, V, _, _ = _check_inputs(np.zeros((1, n)), y, V, None, None)
+    return y, V
+
+
+def _final_dense(J, z, f, y, V, factor, measured, unmeasured, classification, tol):
+    """Classification and covariances by the dense projection at the solution."""
+    JM, JU = J[:, measured], J[:, unmeasured]
+    core = _solve(JM, y, V, JU, JM @ z[measured] - f, tol, factor)
+    lin = _build_result(core, JM, y, classification, measured, unmeasured, tol)
+    return lin.classification, lin.cov_x, lin.cov_xu, lin.cov_u
+
+
+def _final_sparse(J, y, V, sigma, vs, rs, sparse_step, measured, unmeasured,
+                  classification, tol, covariance):
+    """Classification (unless given) and the linearised covariance from the sparse KKT.
+
+    ``ŵ = X g`` and ``v̂ = U g`` for whitened data ``g``, so ``Cov(x̂) = L X Lᵀ``,
+    ``Cov(x̂, û) = L Uᵀ S`` and ``Cov(û) = S U Uᵀ S`` (see :class:`ScaledKKT`).
+    """
+    cls = classification
+    if cls is None:
+        cls = classify(J, measured, sigma=sigma, var_scale=vs, residual_scale=rs, rank_tol=tol)
+    n, p = measured.size, unmeasured.size
+    if covariance == "none":
+        return cls, None, None, None
+    kkt = sparse_step.factor(J)
+    X, U = kkt.sensitivities()
+    X = 0.5 * (X + X.T)
+    Lfac, diagonal = sparse_step.Lfac, sparse_step.diagonal
+    if diagonal:
+        cov_x = Lfac[:, None] * X * Lfac[None, :]
+        LUt = Lfac[:, None] * U.T
+    else:
+        cov_x = Lfac @ X @ Lfac.T
+        LUt = Lfac @ U.T
+    if covariance != "full":
+        return cls, cov_x, np.zeros((n, p)), np.zeros((p, p))
+    su = sparse_step.su
+    cov_xu = LUt * su[None, :]
+    SU = su[:, None] * U
+    cov_u = SU @ SU.T
+    return cls, cov_x, cov_xu, cov_u
