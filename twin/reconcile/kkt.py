@@ -51,20 +51,51 @@ class ScaledKKT:
 
     Parameters
     ----------
-    Cw : sparse matrix, shape (m, n)
-        Scaled Jacobian of the measured variables, ``D_r J_M L``.
-    Cv : sparse matrix, shape (m, p)
-        Scaled Jacobian of the unmeasured variables, ``D_r J_U S_u``.
+    J : sparse matrix, shape (m, n_vars)
+        Jacobian over all variables.
+    measured, unmeasured : ndarray of int
+        Column indices; the KKT unknowns are ordered ``[w (measured), v (unmeasured), λ]``.
+    Lfac : ndarray
+        ``σ`` of the measurements (diagonal ``V``) or the Cholesky factor ``L``.
+    diagonal : bool
+    var_scale_u : ndarray, shape (p,)
+        Scales ``s_u`` of the unmeasured variables.
+    residual_scale : ndarray, shape (m,)
+        Scales of the constraint rows.
     """
 
-    def __init__(self, Cw: sp.spmatrix, Cv: sp.spmatrix) -> None:
-        m, n = Cw.shape
-        p = Cv.shape[1]
+    def __init__(self, J: sp.spmatrix, measured: np.ndarray, unmeasured: np.ndarray,
+                 Lfac: np.ndarray, diagonal: bool, var_scale_u: np.ndarray,
+                 residual_scale: np.ndarray) -> None:
+        m, n_vars = J.shape
+        n, p = measured.size, unmeasured.size
         self.n, self.p, self.m = n, p, m
-        C = sp.hstack([Cw, Cv], format="csr")
-        H = sp.diags(np.r_[np.ones(n), np.full(p, EPS_UNMEASURED)])
-        self.K0 = sp.bmat([[H, C.T], [C, None]], format="csc")
-        K = self.K0 + sp.diags(np.r_[np.zeros(n + p), np.full(m, -DELTA_CONSTRAINTS)], format="csc")
+        N = n + p
+        Jc = sp.coo_matrix(J)
+        rows, cols, vals = Jc.row, Jc.col, Jc.data / residual_scale[Jc.row]
+        pos = np.empty(n_vars, dtype=np.int64)
+        pos[measured] = np.arange(n)
+        pos[unmeasured] = np.arange(n, N)
+        colscale = np.empty(n_vars)
+        colscale[unmeasured] = var_scale_u
+        if diagonal:
+            colscale[measured] = Lfac
+            keep = np.ones(rows.size, dtype=bool)
+        else:  # C_w = D_r J_M L is formed densely (correlated measurements are few)
+            colscale[measured] = 1.0
+            keep = np.isin(cols, unmeasured)
+        ci, cj, cv = rows[keep], pos[cols[keep]], vals[keep] * colscale[cols[keep]]
+        if not diagonal:
+            Dr = sp.diags(1.0 / residual_scale)
+            Cw = np.asarray((Dr @ sp.csr_matrix(J)[:, measured]) @ Lfac)
+            wi, wj = np.nonzero(Cw)
+            ci, cj, cv = np.r_[ci, wi], np.r_[cj, wj], np.r_[cv, Cw[wi, wj]]
+        diag = np.arange(N + m)
+        hd = np.r_[np.ones(n), np.full(p, EPS_UNMEASURED), np.full(m, -DELTA_CONSTRAINTS)]
+        K = sp.csc_matrix((np.r_[hd, cv, cv], (np.r_[diag, N + ci, cj], np.r_[diag, cj, N + ci])),
+                          shape=(N + m, N + m))
+        self.K = K
+        self._delta = np.r_[np.zeros(N), np.full(m, DELTA_CONSTRAINTS)]
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("error", spla.MatrixRankWarning)
@@ -74,11 +105,15 @@ class ScaledKKT:
         except (RuntimeError, spla.MatrixRankWarning) as exc:
             raise KKTFactorisationError(f"KKT system is singular: {exc}") from None
 
-    def solve(self, rhs: np.ndarray) -> np.ndarray:
-        """Solve ``K0 s = rhs`` (one or many columns) with iterative refinement."""
+    def solve(self, rhs: np.ndarray, sweeps: int = REFINE_SWEEPS) -> np.ndarray:
+        """Solve ``K0 s = rhs`` (one or many columns) with iterative refinement.
+
+        ``K0`` is the factored matrix without the ``−δI`` block.
+        """
         s = self.lu.solve(rhs)
-        for _ in range(REFINE_SWEEPS):
-            s = s + self.lu.solve(rhs - self.K0 @ s)
+        delta = self._delta if rhs.ndim == 1 else self._delta[:, None]
+        for _ in range(sweeps):
+            s = s + self.lu.solve(rhs - (self.K @ s + delta * s))
         if not np.all(np.isfinite(s)):
             raise KKTFactorisationError("KKT solve produced non-finite values")
         return s
@@ -98,20 +133,5 @@ class ScaledKKT:
         """
         rhs = np.zeros((self.n + self.p + self.m, self.n))
         rhs[: self.n] = np.eye(self.n)
-        s = self.solve(rhs)
+        s = self.solve(rhs, sweeps=1)
         return s[: self.n], s[self.n: self.n + self.p]
-
-
-def scaled_blocks(J: sp.spmatrix, measured: np.ndarray, unmeasured: np.ndarray,
-                  Lfac: np.ndarray, diagonal: bool, var_scale_u: np.ndarray,
-                  residual_scale: np.ndarray) -> tuple[sp.csr_matrix, sp.csr_matrix]:
-    """``(D_r J_M L, D_r J_U S_u)`` as sparse matrices."""
-    J = sp.csr_matrix(J)
-    Dr = sp.diags(1.0 / residual_scale)
-    JM = Dr @ J[:, measured]
-    if diagonal:
-        Cw = JM @ sp.diags(Lfac)
-    else:
-        Cw = sp.csr_matrix(JM @ Lfac)
-    Cv = Dr @ J[:, unmeasured] @ sp.diags(var_scale_u)
-    return sp.csr_matrix(Cw), sp.csr_matrix(Cv)

@@ -25,7 +25,7 @@ import scipy.linalg as sla
 import scipy.sparse as sp
 from scipy import stats as sps
 
-from twin.reconcile.kkt import KKTFactorisationError, ScaledKKT, scaled_blocks
+from twin.reconcile.kkt import KKTFactorisationError, ScaledKKT
 from twin.reconcile.linear import (
     DEFAULT_RANK_TOL,
     Classification,
@@ -249,10 +249,8 @@ class _SparseStep:
         self.kkt: ScaledKKT | None = None
 
     def factor(self, J) -> ScaledKKT:
-        Cw, Cv = scaled_blocks(J, self.measured, self.unmeasured, self.Lfac, self.diagonal,
-                               self.su, self.rs)
-        self.kkt = ScaledKKT(Cw, Cv)
-        self.Cw, self.Cv = Cw, Cv
+        self.kkt = ScaledKKT(J, self.measured, self.unmeasured, self.Lfac, self.diagonal,
+                             self.su, self.rs)
         return self.kkt
 
     def __call__(self, J, z, f, a, n_vars) -> np.ndarray:
@@ -260,14 +258,14 @@ class _SparseStep:
         g = a / self.Lfac if self.diagonal else sla.solve_triangular(self.Lfac, a, lower=True)
         fs = f / self.rs
         dw, dv = kkt.step(g, fs)
-        lin = self.Cw @ dw + self.Cv @ dv + fs
+        d = np.zeros(n_vars)
+        d[self.measured] = self.Lfac * dw if self.diagonal else self.Lfac @ dw
+        d[self.unmeasured] = self.su * dv
+        lin = (J @ d + f) / self.rs
         if np.max(np.abs(lin)) > _LINEAR_CONSISTENCY * max(1.0, float(np.max(np.abs(fs)))):
             raise InconsistentConstraintsError(
                 "constraints are inconsistent: the linearised step cannot satisfy them "
                 f"(worst scaled residual {float(np.max(np.abs(lin))):.3g})")
-        d = np.zeros(n_vars)
-        d[self.measured] = self.Lfac * dw if self.diagonal else self.Lfac @ dw
-        d[self.unmeasured] = self.su * dv
         return d
 
 

@@ -48,8 +48,10 @@ class SyntheticNetwork:
 class BilinearNetwork:
     """Mass and enthalpy balances of a mixing network; variables ``[F (E), h (E)]``.
 
-    Rows: one mass balance per node, one energy balance ``Σ F h`` per node, and
-    ``h_k − h_first = 0`` for every further outlet of a node.
+    Rows: one mass balance per node; per node with several inlets the energy balance
+    ``Σ F h = 0``, per node with a single inlet ``h_out − h_in = 0`` for its first
+    outlet (there the energy balance would follow from the mass balance and make the
+    Jacobian rank-deficient); and ``h_k − h_first = 0`` for every further outlet.
     """
 
     def __init__(self, src: np.ndarray, dst: np.ndarray, n_nodes: int):
@@ -64,9 +66,14 @@ class BilinearNetwork:
             if src[e] >= 0:
                 inc[src[e], e] -= 1.0
         self.inc = sp.csr_matrix(inc)
+        mixing = [i for i in range(n_nodes) if np.count_nonzero(dst == i) > 1]
+        self.energy = sp.csr_matrix(inc[mixing])
         pairs = []
         for node in range(n_nodes):
             outs = np.flatnonzero(src == node)
+            ins = np.flatnonzero(dst == node)
+            if ins.size == 1:
+                pairs.append((ins[0], outs[0]))
             pairs += [(outs[0], o) for o in outs[1:]]
         self.pairs = np.asarray(pairs, dtype=int).reshape(-1, 2)
         P = np.zeros((len(pairs), E))
@@ -77,7 +84,7 @@ class BilinearNetwork:
     def residuals(self, z: np.ndarray) -> np.ndarray:
         E = self.n_streams
         F, h = z[:E], z[E:]
-        return np.concatenate([self.inc @ F, self.inc @ (F * h), self.P @ h])
+        return np.concatenate([self.inc @ F, self.energy @ (F * h), self.P @ h])
 
     def jacobian(self, z: np.ndarray) -> sp.csr_matrix:
         E = self.n_streams
@@ -85,7 +92,7 @@ class BilinearNetwork:
         zero = sp.csr_matrix((self.inc.shape[0], E))
         return sp.vstack([
             sp.hstack([self.inc, zero]),
-            sp.hstack([self.inc @ sp.diags(h), self.inc @ sp.diags(F)]),
+            sp.hstack([self.energy @ sp.diags(h), self.energy @ sp.diags(F)]),
             sp.hstack([sp.csr_matrix((self.P.shape[0], E)), self.P]),
         ]).tocsr()
 
