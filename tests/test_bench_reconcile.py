@@ -1,0 +1,22 @@
+"""Smoke test: ``twin bench reconcile --quick`` runs and reports every figure (no timing asserts)."""
+
+from __future__ import annotations
+
+import argparse
+
+from twin.bench import reconcile as bench
+
+
+def test_bench_reconcile_quick_returns_all_keys():
+    parser = argparse.ArgumentParser()
+    bench.add_arguments(parser)
+    out = bench.run(parser.parse_args(["--quick"]))
+    demo = out["demo_u1"]
+    for key in ("cold", "warm", "warm_no_covariance", "slsqp"):
+        assert {"median_ms", "p95_ms", "n"} <= set(demo[key])
+    assert demo["warm"]["failed"] == 0 and demo["n_measured"] > 0
+    assert "speedup_vs_slsqp" in demo
+    for kind in ("linear", "bilinear"):
+        for cov in ("covariance_full", "covariance_none"):
+            row = out["synthetic"][kind][cov]
+            assert set(row["median_ms"]) == {"100", "200"} and "loglog_slope" in row

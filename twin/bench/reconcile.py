@@ -1,0 +1,226 @@
+"""``twin bench reconcile``: cost of one reconciliation.
+
+(a) demo-u1 with all sensors and the soft model relations, fresh Gaussian noise on
+every run, warm-started from the previous ``z_warm`` with the classification cached
+(as the live daemon does between changes of the valid-tag set), and cold from the
+design point; the model's own evaluation time is reported apart.
+(b) scipy's SLSQP on the same demo-u1 problem, and the ratio of its median time to
+the warm-started sparse solver's.
+(c) synthetic steam-metering networks of 100…2000 measurements (linear and bilinear),
+median time per reconciliation, and the fitted log-log slope of time against size.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import time
+
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import numpy as np
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--config", default="configs/demo-u1.toml", help="plant config (default demo-u1)")
+    parser.add_argument("--runs", type=int, default=50, help="warm-started demo-u1 runs (default 50)")
+    parser.add_argument("--slsqp-runs", type=int, default=3, help="SLSQP runs (default 3)")
+    parser.add_argument("--repeat", type=int, default=5, help="runs per synthetic size (default 5)")
+    parser.add_argument("--seed", type=int, default=1, help="random seed")
+    parser.add_argument("--quick", action="store_true", help="tiny sizes (smoke test)")
+
+
+class _Timed:
+    """Wraps a constraint system, timing its evaluations (bench only).
+
+    Also maps ``IndexError`` escaping the property layer to ``ValueError`` so that the
+    solvers treat it as "no value here" like every other out-of-range property call.
+    """
+
+    def __init__(self, system):
+        self.system = system
+        self.n_vars = system.n_vars
+        self.seconds = 0.0
+        self.calls = 0
+
+    def scales(self):
+        return self.system.scales()
+
+    def _call(self, fn, z):
+        t0 = time.perf_counter()
+        try:
+            return fn(z)
+        except IndexError as exc:
+            raise ValueError(str(exc)) from None
+        finally:
+            self.seconds += time.perf_counter() - t0
+            self.calls += 1
+
+    def residuals(self, z):
+        return self._call(self.system.residuals, z)
+
+    def jacobian(self, z):
+        return self._call(self.system.jacobian, z)
+
+
+def _stats_ms(times: list[float]) -> dict:
+    a = np.asarray(times) * 1e3
+    if a.size == 0:
+        return {"median_ms": None, "p95_ms": None, "n": 0}
+    return {"median_ms": round(float(np.median(a)), 3),
+            "p95_ms": round(float(np.percentile(a, 95)), 3), "n": int(a.size)}
+
+
+def _demo_problem(config: str):
+    from twin.config import load_config
+    from twin.model.flowsheet import Flowsheet
+    from twin.model.solve import Operation, solve_design
+    from twin.performance.plant import PlantSystem
+
+    cfg = load_config(config)
+    fs = Flowsheet.from_config(cfg)
+    design = solve_design(fs, Operation.from_config(cfg))
+    ps = PlantSystem(fs, cfg.sensors, design)
+    z0 = ps.initial_point(design.z)
+    n_sens = len(ps.sensors)
+    measured = np.array([b.column for b in ps.sensors] + [r.column for r in ps.soft], dtype=int)
+    sigma = np.array([cfg.sensors_by_tag[b.tag].sigma_si(float(z0[b.column])) for b in ps.sensors]
+                     + [r.sigma for r in ps.soft])
+    y_true = z0[measured].copy()
+    y_true[n_sens:] = 0.0
+    return ps, z0, measured, y_true, sigma
+
+
+def _demo(args, rng) -> dict:
+    from twin.reconcile import SolveOptions, reconcile
+
+    ps, z0, measured, y_true, sigma = _demo_problem(args.config)
+    system = _Timed(ps)
+    V = sigma**2
+    out: dict = {"n_vars": int(ps.n_vars), "n_constraints": int(ps.residuals(z0).size),
+                 "n_measured": int(measured.size)}
+    # cold: from the design point, classification decided at the solution
+    cold_t, cold_it, cls, z_warm = [], [], None, z0
+    for _ in range(max(1, args.runs // 10)):
+        y = y_true + sigma * rng.standard_normal(sigma.size)
+        t0 = time.perf_counter()
+        r = reconcile(system, z0, measured, y, V)
+        cold_t.append(time.perf_counter() - t0)
+        cold_it.append(r.iterations)
+        if r.converged:
+            cls, z_warm = r.classification, r.z_warm
+    out["cold"] = {**_stats_ms(cold_t), "iterations_median": float(np.median(cold_it))}
+    # warm: previous z_warm, cached classification
+    warm_t, warm_it, model_t, failed = [], [], [], 0
+    for _ in range(args.runs):
+        y = y_true + sigma * rng.standard_normal(sigma.size)
+        system.seconds = 0.0
+        t0 = time.perf_counter()
+        r = reconcile(system, z_warm, measured, y, V, classification=cls)
+        warm_t.append(time.perf_counter() - t0)
+        model_t.append(system.seconds)
+        warm_it.append(r.iterations)
+        if r.converged:
+            z_warm = r.z_warm
+        else:
+            failed += 1
+    engine = [a - b for a, b in zip(warm_t, model_t, strict=True)]
+    out["warm"] = {**_stats_ms(warm_t), "iterations_median": float(np.median(warm_it)),
+                   "failed": failed, "model_evaluation": _stats_ms(model_t),
+                   "engine_only": _stats_ms(engine)}
+    none_t = []
+    for _ in range(max(1, args.runs // 5)):
+        y = y_true + sigma * rng.standard_normal(sigma.size)
+        t0 = time.perf_counter()
+        r = reconcile(system, z_warm, measured, y, V, classification=cls,
+                      options=SolveOptions(covariance="none"))
+        none_t.append(time.perf_counter() - t0)
+    out["warm_no_covariance"] = _stats_ms(none_t)
+    out["slsqp"] = _slsqp(system, z_warm, measured, y_true, sigma, rng, args)
+    med = out["warm"]["median_ms"]
+    sl = out["slsqp"]["median_ms"]
+    out["speedup_vs_slsqp"] = round(sl / med, 1) if (sl and med) else None
+    return out
+
+
+def _slsqp(system, z_start, measured, y_true, sigma, rng, args) -> dict:
+    """SLSQP on the same weighted problem, variables scaled by σ / the system's scales."""
+    from scipy import optimize
+
+    vs = np.asarray(system.scales()[0], dtype=float).copy()
+    vs[measured] = sigma
+    times, ok = [], 0
+    for _ in range(max(1, args.slsqp_runs)):
+        y = y_true + sigma * rng.standard_normal(sigma.size)
+
+        def obj(w, y=y):
+            r = (y - (w * vs)[measured]) / sigma
+            return 0.5 * float(r @ r)
+
+        def jac(w, y=y):
+            g = np.zeros_like(w)
+            g[measured] = -(y - (w * vs)[measured]) / sigma
+            return g
+
+        def cfun(w):
+            return system.residuals(w * vs) / system.scales()[1]
+
+        def cjac(w):
+            J = system.jacobian(w * vs)
+            J = J.toarray() if hasattr(J, "toarray") else np.asarray(J)
+            return J * vs / system.scales()[1][:, None]
+
+        t0 = time.perf_counter()
+        res = optimize.minimize(obj, z_start / vs, jac=jac, method="SLSQP",
+                                constraints=[{"type": "eq", "fun": cfun, "jac": cjac}],
+                                options={"ftol": 1e-10, "maxiter": 5 if args.quick else 300})
+        times.append(time.perf_counter() - t0)
+        ok += bool(res.success)
+    return {**_stats_ms(times), "converged": ok}
+
+
+def _synthetic(args) -> dict:
+    from twin.reconcile import SolveOptions, reconcile
+
+    sizes = (100, 200) if args.quick else (100, 200, 500, 1000, 2000)
+    out: dict = {}
+    for kind in ("linear", "bilinear"):
+        rows = {}
+        for cov in ("full", "none"):
+            med = []
+            for n in sizes:
+                from twin.reconcile import synthetic_network
+
+                net = synthetic_network(n, seed=args.seed, kind=kind)
+                first = reconcile(net.system, net.z0, net.measured, net.y, net.V)
+                cls = first.classification
+                rng = np.random.default_rng(args.seed)
+                sd = np.sqrt(np.diag(net.V))
+                times = []
+                for _ in range(max(1, args.repeat)):
+                    y = net.z_true[net.measured] + sd * rng.standard_normal(sd.size)
+                    t0 = time.perf_counter()
+                    reconcile(net.system, first.z_warm, net.measured, y, net.V,
+                              classification=cls, options=SolveOptions(covariance=cov))
+                    times.append(time.perf_counter() - t0)
+                med.append(float(np.median(times)))
+            slope = float(np.polyfit(np.log(sizes), np.log(med), 1)[0])
+            rows[f"covariance_{cov}"] = {
+                "median_ms": {str(n): round(t * 1e3, 3) for n, t in zip(sizes, med, strict=True)},
+                "loglog_slope": round(slope, 2),
+            }
+        out[kind] = rows
+    return out
+
+
+def run(args: argparse.Namespace) -> dict:
+    rng = np.random.default_rng(args.seed)
+    if args.quick:
+        args.runs = min(args.runs, 3)
+        args.slsqp_runs = 1
+        args.repeat = 1
+    return {
+        "openblas_num_threads": os.environ.get("OPENBLAS_NUM_THREADS"),
+        "demo_u1": _demo(args, rng),
+        "synthetic": _synthetic(args),
+    }
