@@ -21,7 +21,17 @@ from twin.properties import Water
 
 
 class Guess:
-    """Partial initial state: NaN marks a value not yet guessed."""
+    """Partial initial state: NaN marks a value not yet guessed.
+
+    Parameters
+    ----------
+    layout : Layout
+        Variable index of the flowsheet.
+    water : Water
+        Property calculator.
+    reference_flow : float
+        Typical mass flow [kg/s] (the design main-steam flow) for guesses that have no other scale.
+    """
 
     def __init__(self, layout: Layout, water: Water, reference_flow: float) -> None:
         self.layout = layout

@@ -105,6 +105,7 @@ class Context:
         return st
 
     def sat(self, pressure: float) -> SatState:
+        """Saturation state at pressure [Pa], cached for this evaluation."""
         st = self._sat.get(pressure)
         if st is None:
             st = self.water.sat(pressure)
@@ -112,6 +113,7 @@ class Context:
         return st
 
     def ps(self, pressure: float, entropy: float) -> PSState:
+        """State at pressure [Pa] and specific entropy [J/(kg K)] (not cached)."""
         return self.water.ps(pressure, entropy)
 
 

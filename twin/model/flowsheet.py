@@ -166,6 +166,15 @@ class Flowsheet:
     def initial_guess(self, specs: Sequence[Spec], reference_flow: float, max_sweeps: int = 60) -> np.ndarray:
         """A starting point for Newton from the specs, by sweeping each equipment's guess rule.
 
+        Parameters
+        ----------
+        specs : sequence of Spec
+            Specified stream values; they are set first.
+        reference_flow : float
+            Typical mass flow [kg/s] (the design main-steam flow) for flows with no other guess.
+        max_sweeps : int
+            Passes over the equipment before giving up.
+
         Raises
         ------
         ValueError

@@ -182,7 +182,7 @@ class Condenser(Equipment):
         return sum(ctx.m(s) * ctx.h(s) for s in self._inlets()) - ctx.m(out) * ctx.h(out)
 
     def cooling_factor(self, cw_flow: float, ua: float) -> float:
-        """1/(m_cw c_p (1 − exp(−NTU))) [K/W]."""
+        """1/(m_cw c_p (1 − exp(−NTU))) [K/W] for cooling-water flow cw_flow [kg/s] and ua [W/K]."""
         c = cw_flow * self.params["cooling_water_cp"]
         return 1.0 / (c * (1.0 - math.exp(-ua / c)))
 

@@ -139,6 +139,10 @@ def design_specs(fs: Flowsheet) -> list[Spec]:
 
 
 def off_design_specs(fs: Flowsheet, op: Operation, load: float, pressure_mode: str) -> list[Spec]:
+    """Held design values, the load flow and (fixed pressure) the throttle pressure as specs.
+
+    ``load`` is the main-steam flow / design flow [-]; ``pressure_mode`` one of ``PRESSURE_MODES``.
+    """
     if pressure_mode not in PRESSURE_MODES:
         raise ValueError(f"pressure mode {pressure_mode!r}; expected one of {PRESSURE_MODES}")
     specs = []

@@ -49,7 +49,7 @@ class TurbineGroup(Equipment):
         self.equal_mass(ctx, rows, self.port("inlet"), self.port("outlet"))
 
     def efficiency(self, y_in: float, y_out: float) -> float:
-        """Wet efficiency by the Baumann rule [-]."""
+        """Wet efficiency [-] by the Baumann rule from inlet and outlet moisture y_in [-], y_out [-]."""
         return self.params["efficiency"] * (1.0 - self.params["baumann_factor"] * 0.5 * (y_in + y_out))
 
     def performance(self, ctx: Context, rows: Rows, skip: frozenset[str]) -> None:
@@ -142,7 +142,10 @@ class ExhaustLoss(Equipment):
         self.equal_pressure(ctx, rows, a, b, "pressure")
 
     def loss(self, m: float, st: PHState) -> tuple[float, float, float, float]:
-        """EL [J/kg] and its derivatives with respect to m, p and h at the inlet."""
+        """EL [J/kg] and its derivatives with respect to m, p and h at the inlet.
+
+        ``m`` is the exhaust mass flow [kg/s], ``st`` the inlet state.
+        """
         P = self.params
         A = P["annulus_area"]
         vel = m * st.v / A
@@ -220,7 +223,7 @@ class Generator(Equipment):
         rows.add(self.relation("shaft"), BALANCE, value, grad, SCALE_POWER)
 
     def losses(self, p_gen: float) -> tuple[float, float]:
-        """Shaft-to-terminal losses [W] and their derivative with respect to P_gen [-]."""
+        """Shaft-to-terminal losses [W] at terminal output p_gen [W], and their derivative d/dp_gen [-]."""
         P = self.params
         r = P["rated_power"]
         return (

@@ -131,7 +131,10 @@ def condenser_kpis(
 
 
 def interpolate_boiler_efficiency(table: Sequence[tuple[float, float]], load: float) -> float:
-    """Boiler efficiency at a load fraction, linear in the table and held flat outside it [-]."""
+    """Boiler efficiency at a load fraction, linear in the table and held flat outside it [-].
+
+    ``table`` holds (load [-], efficiency [-]) pairs; ``load`` is main-steam flow / design flow [-].
+    """
     if not table:
         return float("nan")
     xs, ys = zip(*sorted(table), strict=True)
