@@ -178,6 +178,7 @@ def read_secret(
 # ------------------------------------------------------ batched receive ---
 
 _RECV_BLOCK = 65536
+_TOPIC_CACHE = 4096  # decoded topic names kept; cleared when full
 _PUBACK = 0x40
 # paho internals the batching client relies on (checked once; absent = plain paho).
 _PAHO_INTERNALS = (
@@ -187,6 +188,10 @@ _PAHO_INTERNALS = (
     "_packet_write",
     "_loop_rc_handle",
     "_out_packet",
+    "_in_packet",
+    "_msgtime_mutex",
+    "_last_bytes_received",
+    "_protocol",
 )
 
 
@@ -205,15 +210,23 @@ class _BatchingClient(paho.Client):
       data ever waits in it while the loop sleeps in ``select``;
     * ``_send_puback`` collects the acknowledgements (in arrival order); they
       are written in one packet before the next ``recv`` from the socket and
-      at the end of ``loop_read``, i.e. always after the message callbacks.
+      at the end of ``loop_read``, i.e. always after the message callbacks;
+    * complete QoS 0/1 PUBLISH packets found in the buffer (MQTT 5: only
+      those without properties) are parsed here and handed to ``deliver(topic
+      bytes, payload)`` without building paho message objects; anything else
+      (QoS 2, properties, other packet types, a packet split across reads, a
+      malformed header) goes through paho's ``_packet_read`` unchanged.
 
     Only for the threaded loop (``loop_start``) and automatic acknowledgement;
     everything else (connect, keep-alive, reconnect, TLS, QoS 2, publishing)
     is paho's own code.
     """
 
-    def __init__(self, *args: Any, **kwargs: Any) -> None:
+    def __init__(
+        self, *args: Any, deliver: Callable[[bytes, bytes], None] | None = None, **kwargs: Any
+    ) -> None:
         super().__init__(*args, **kwargs)
+        self._deliver = deliver
         self._rsock: Any = None
         self._rbuf = b""
         self._rpos = 0
@@ -254,6 +267,8 @@ class _BatchingClient(paho.Client):
             if not buf:
                 return buf
             self._rbuf, pos = buf, 0
+            with self._msgtime_mutex:  # the fast path below skips paho's own update
+                self._last_bytes_received = paho.time_func()
         self._rpos = pos + bufsize
         return buf[pos : pos + bufsize]
 
@@ -270,10 +285,13 @@ class _BatchingClient(paho.Client):
         if self._sock is None:
             return MQTTErrorCode.MQTT_ERR_NO_CONN
         n = 0
+        fast = self._deliver is not None
         try:
             while True:
                 if self._sock is None:
                     return MQTTErrorCode.MQTT_ERR_NO_CONN
+                if fast and self._in_packet["command"] == 0 and self._rsock is self._sock:
+                    n += self._fast_publishes()
                 rc = self._packet_read()
                 n += 1
                 if rc > 0:
@@ -283,6 +301,55 @@ class _BatchingClient(paho.Client):
                     return MQTTErrorCode.MQTT_ERR_SUCCESS
         finally:
             self._flush_acks()
+
+
+    def _fast_publishes(self) -> int:
+        """Deliver the complete QoS 0/1 PUBLISH packets at the head of the buffer."""
+        buf, pos, end = self._rbuf, self._rpos, len(self._rbuf)
+        deliver, acks = self._deliver, self._acks
+        assert deliver is not None
+        v5 = self._protocol == paho.MQTTv5
+        if acks and self._acks_sock is not self._sock:
+            acks.clear()
+        self._acks_sock = self._sock
+        count = 0
+        while end - pos >= 4:
+            cmd = buf[pos]
+            qos = (cmd >> 1) & 3
+            if cmd >> 4 != 3 or qos == 2 or qos == 3:
+                break
+            # remaining length: 1..4 bytes, 7 bits each
+            length, shift, i = 0, 0, pos + 1
+            while i < end and i - pos <= 4:
+                byte = buf[i]
+                length |= (byte & 0x7F) << shift
+                shift += 7
+                i += 1
+                if not byte & 0x80:
+                    break
+            else:
+                break  # incomplete or malformed: paho's reader decides
+            stop = i + length
+            if stop > end or length < 2:
+                break
+            j = i + 2 + ((buf[i] << 8) | buf[i + 1])
+            topic = buf[i + 2 : j]
+            if qos:
+                mid = buf[j : j + 2]
+                j += 2
+            if v5:
+                if j >= stop or buf[j] != 0:  # properties present: let paho parse them
+                    break
+                j += 1
+            if j > stop:
+                break  # header longer than the packet: malformed, paho decides
+            deliver(topic, buf[j:stop])
+            if qos:
+                acks += b"\x40\x02" + mid
+            pos = stop
+            count += 1
+        self._rpos = pos
+        return count
 
 
 def _batching_supported() -> bool:
@@ -354,6 +421,7 @@ class MqttClient:
         }
         self._last_error: str | None = None
         self._received = 0
+        self._topic_text: dict[bytes, str] = {}  # decoded topics (fast path), bounded
         self._refused = False  # the last CONNACK was a refusal (set on the network thread)
         self._client = self._build()
 
@@ -365,6 +433,8 @@ class MqttClient:
         if s.protocol == "3.1.1":
             kwargs["clean_session"] = s.clean_session
         cls = _BatchingClient if s.batch_receive and BATCH_RECEIVE_SUPPORTED else paho.Client
+        if cls is _BatchingClient:
+            kwargs["deliver"] = self._deliver
         client = cls(CallbackAPIVersion.VERSION2, **kwargs)
         if s.username is not None:
             client.username_pw_set(s.username, s.password)
@@ -539,16 +609,37 @@ class MqttClient:
 
     def _on_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
         now = self._clock()
-        self._received += 1  # written only here, on the network thread: no lock needed
+        self._received += 1  # written only on the network thread: no lock needed
+        topic: str | None = None
         try:
+            topic = msg.topic  # UnicodeDecodeError for an invalid UTF-8 topic
             payload = msg.payload
-            self._on_message_cb(
-                msg.topic, payload if type(payload) is bytes else bytes(payload), now
-            )
+            self._on_message_cb(topic, payload if type(payload) is bytes else bytes(payload), now)
         except Exception as exc:  # the network thread must survive any handler bug
-            with self._lock:
-                self._c["callback_errors"] += 1
-            self._last_error = f"message handler failed on {msg.topic!r}: {exc!r}"
+            self._handler_failed(topic, exc)
+
+    def _deliver(self, topic_raw: bytes, payload: bytes) -> None:
+        """The batching client's fast path: topic as raw bytes, payload as bytes."""
+        now = self._clock()
+        self._received += 1
+        topic = self._topic_text.get(topic_raw)
+        try:
+            if topic is None:
+                topic = topic_raw.decode("utf-8")
+                if len(self._topic_text) >= _TOPIC_CACHE:
+                    self._topic_text.clear()
+                self._topic_text[topic_raw] = topic
+            self._on_message_cb(topic, payload, now)
+        except Exception as exc:  # the network thread must survive any handler bug
+            self._handler_failed(topic, exc)
+
+    def _handler_failed(self, topic: str | None, exc: Exception) -> None:
+        with self._lock:
+            self._c["callback_errors"] += 1
+        if topic is None:
+            self._last_error = f"message with an invalid UTF-8 topic dropped: {exc!r}"
+        else:
+            self._last_error = f"message handler failed on {topic!r}: {exc!r}"
 
     def _on_publish(
         self, client: paho.Client, userdata: Any, mid: int, reason_code: Any, properties: Any
