@@ -149,7 +149,7 @@ def _slsqp(system, z_start, measured, y_true, sigma, rng, args) -> dict:
 
     vs = np.asarray(system.scales()[0], dtype=float).copy()
     vs[measured] = sigma
-    times, ok = [], 0
+    times, ok, errors = [], 0, []
     for _ in range(max(1, args.slsqp_runs)):
         y = y_true + sigma * rng.standard_normal(sigma.size)
 
@@ -171,12 +171,15 @@ def _slsqp(system, z_start, measured, y_true, sigma, rng, args) -> dict:
             return J * vs / system.scales()[1][:, None]
 
         t0 = time.perf_counter()
-        res = optimize.minimize(obj, z_start / vs, jac=jac, method="SLSQP",
-                                constraints=[{"type": "eq", "fun": cfun, "jac": cjac}],
-                                options={"ftol": 1e-10, "maxiter": 5 if args.quick else 300})
+        try:
+            res = optimize.minimize(obj, z_start / vs, jac=jac, method="SLSQP",
+                                    constraints=[{"type": "eq", "fun": cfun, "jac": cjac}],
+                                    options={"ftol": 1e-10, "maxiter": 5 if args.quick else 300})
+            ok += bool(res.success)
+        except ValueError as exc:  # SLSQP cannot back off from an out-of-range model state
+            errors.append(str(exc)[:120])
         times.append(time.perf_counter() - t0)
-        ok += bool(res.success)
-    return {**_stats_ms(times), "converged": ok}
+    return {**_stats_ms(times), "converged": ok, "model_errors": errors}
 
 
 def _synthetic(args) -> dict:
