@@ -180,6 +180,7 @@ def read_secret(
 _RECV_BLOCK = 65536
 _TOPIC_CACHE = 4096  # decoded topic names kept; cleared when full
 _PUBACK = 0x40
+_DISCONNECT = 0xE0
 # paho internals the batching client relies on (checked once; absent = plain paho).
 _PAHO_INTERNALS = (
     "_sock_recv",
@@ -240,18 +241,23 @@ class _BatchingClient(paho.Client):
         if sock is None or sock is not self._acks_sock:  # acks of a closed connection
             acks.clear()
             return
-        self._out_packet.append(
-            {
-                "command": _PUBACK,
-                "mid": 0,
-                "qos": 0,
-                "pos": 0,
-                "to_process": len(acks),
-                "packet": bytes(acks),
-                "info": None,
-            }
-        )
+        packet = {
+            "command": _PUBACK,
+            "mid": 0,
+            "qos": 0,
+            "pos": 0,
+            "to_process": len(acks),
+            "packet": bytes(acks),
+            "info": None,
+        }
         acks.clear()
+        queue = self._out_packet
+        if queue and queue[-1]["command"] & 0xF0 == _DISCONNECT:
+            # stop() queued a DISCONNECT from another thread: acknowledge first,
+            # or the broker would deliver these messages again
+            queue.insert(len(queue) - 1, packet)  # type: ignore[arg-type]
+        else:
+            queue.append(packet)  # type: ignore[arg-type]
         # Errors stay for paho's next read or write to find; a partial write
         # leaves the rest queued and the loop's select waits for writability.
         self._packet_write()
