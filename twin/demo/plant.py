@@ -104,7 +104,7 @@ def sensor_truth(
     for s in config.sensors:
         q = s.quantity
         if q == "mass_flow":
-            v = ctx.m(s.stream)
+            v = max(ctx.m(s.stream), 0.0)  # a zero flow solves to ±1e-14; transmitters read ≥ 0
         elif q == "pressure":
             v = ctx.p(s.stream)
         elif q == "temperature":

@@ -59,6 +59,7 @@ class ClosedHeater(Equipment):
         if name not in skip:
             dp = self.params["tube_pressure_drop"]
             rows.add(name, PERFORMANCE, ctx.p(to) - ctx.p(ti) + dp, {lay.p(to): 1.0, lay.p(ti): -1.0}, SCALE_PRESSURE)
+        k = ctx.constants.get(self.id, {})  # off-design overrides of TTD/DCA
         name = self.relation("ttd")
         if name not in skip:
             sat = ctx.sat(ctx.p(st_in))
@@ -66,7 +67,7 @@ class ClosedHeater(Equipment):
             rows.add(
                 name,
                 PERFORMANCE,
-                sat.T - so.T - self.params["ttd"],
+                sat.T - so.T - k.get("ttd", self.params["ttd"]),
                 {lay.p(st_in): sat.dT_dp, lay.p(to): -so.dT_dp, lay.h(to): -so.dT_dh},
                 SCALE_TEMPERATURE,
             )
@@ -76,7 +77,7 @@ class ClosedHeater(Equipment):
             rows.add(
                 name,
                 PERFORMANCE,
-                sd.T - si.T - self.params["dca"],
+                sd.T - si.T - k.get("dca", self.params["dca"]),
                 {lay.p(do): sd.dT_dp, lay.h(do): sd.dT_dh, lay.p(ti): -si.dT_dp, lay.h(ti): -si.dT_dh},
                 SCALE_TEMPERATURE,
             )
@@ -163,6 +164,7 @@ class Condenser(Equipment):
     Balances: mass; hotwell at the exhaust pressure; hotwell saturated liquid.
     Performance off design (``cooling``): with the cooling-water flow and UA
     of the design point held, Tsat(p) = T_cw,in + Q / (m_cw c_p (1 − exp(−UA/(m_cw c_p)))).
+    ``constants[id]["cw_inlet"]`` overrides the configured inlet temperature [K].
     """
 
     kind = "condenser"
@@ -201,7 +203,7 @@ class Condenser(Equipment):
             grad[lay.h(s)] = grad.get(lay.h(s), 0.0) - f * ctx.m(s)
         grad[lay.m(out)] = grad.get(lay.m(out), 0.0) + f * ctx.h(out)
         grad[lay.h(out)] = grad.get(lay.h(out), 0.0) + f * ctx.m(out)
-        r = sat.T - self.params["cooling_water_inlet_temperature"] - f * self.duty(ctx)
+        r = sat.T - k.get("cw_inlet", self.params["cooling_water_inlet_temperature"]) - f * self.duty(ctx)
         rows.add(name, PERFORMANCE, r, grad, SCALE_TEMPERATURE)
 
     def calibrate(self, ctx: Context) -> dict[str, float]:

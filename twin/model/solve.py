@@ -187,31 +187,66 @@ def solve_design(fs: Flowsheet, op: Operation) -> HeatBalance:
     return HeatBalance(fs, z, calibrate(fs, z), 1.0, "design", info)
 
 
+def _apply_overrides(specs: list[Spec], overrides: dict[tuple[str, str], float] | None) -> list[Spec]:
+    if not overrides:
+        return specs
+    out = [s for s in specs if (s.stream, s.quantity) not in overrides]
+    return out + [Spec(stream, q, float(v)) for (stream, q), v in overrides.items()]
+
+
+def merge_constants(base: dict, extra: dict | None) -> dict:
+    """Design constants with per-equipment overrides (efficiency factors, TTD/DCA, cooling-water inlet)."""
+    out = {k: dict(v) for k, v in base.items()}
+    for k, v in (extra or {}).items():
+        out.setdefault(k, {}).update(v)
+    return out
+
+
 def solve_off_design(
     fs: Flowsheet, op: Operation, design: HeatBalance, load: float, pressure_mode: str = "sliding",
-    z0: np.ndarray | None = None,
+    z0: np.ndarray | None = None, *, overrides: dict[tuple[str, str], float] | None = None,
+    skip: frozenset[str] = frozenset(), constants: dict | None = None,
 ) -> HeatBalance:
     """Solve the unit at ``load`` (main-steam flow / design flow) [-].
 
     Starts from ``z0`` (for example the previous solution) or the design
     point; if Newton fails from there it walks the load down in steps
     (continuation).
+
+    Parameters
+    ----------
+    overrides : dict, optional
+        ``{(stream, quantity): value}`` specs that replace or add to the held
+        values (SI), e.g. the actual main-steam temperature or, with
+        ``skip={"condenser.cooling"}``, the actual back-pressure.
+    skip : frozenset of str
+        Further relations to leave out.
+    constants : dict, optional
+        Per-equipment overrides merged into the design constants
+        (``efficiency_factor``, ``ttd``, ``dca``, ``cw_inlet``).
     """
     if not 0.2 <= load <= 1.2:
         raise ValueError(f"load fraction {load}; expected 0.2 to 1.2 of the design main-steam flow")
-    skip = frozenset({fs.by_id[op.throttle_valve].relation("open")}) if pressure_mode == "fixed" else frozenset()
+    skip_all = frozenset(skip) | (
+        frozenset({fs.by_id[op.throttle_valve].relation("open")}) if pressure_mode == "fixed" else frozenset()
+    )
+    consts = merge_constants(design.constants, constants)
+
+    def specs_at(lf: float) -> list[Spec]:
+        return _apply_overrides(off_design_specs(fs, op, lf, pressure_mode), overrides)
+
     start = design.z if z0 is None else z0
     try:
-        z, info = newton(fs, start, specs=off_design_specs(fs, op, load, pressure_mode), skip=skip, constants=design.constants)
+        z, info = newton(fs, start, specs=specs_at(load), skip=skip_all, constants=consts)
         if info.converged:
-            return HeatBalance(fs, z, design.constants, load, pressure_mode, info)
+            return HeatBalance(fs, z, consts, load, pressure_mode, info)
     except SolveError:
         pass
     # continuation from the design point in small load steps
     z = design.z
     steps = np.linspace(1.0, load, max(2, int(abs(1.0 - load) / 0.05) + 2))[1:]
     for step in steps:
-        z, info = newton(fs, z, specs=off_design_specs(fs, op, float(step), pressure_mode), skip=skip, constants=design.constants)
+        z, info = newton(fs, z, specs=specs_at(float(step)), skip=skip_all, constants=consts)
     if not info.converged:
         raise SolveError(f"off-design point at load {load} did not converge (worst residual {info.worst})", z, info.worst)
-    return HeatBalance(fs, z, design.constants, load, pressure_mode, info)
+    return HeatBalance(fs, z, consts, load, pressure_mode, info)

@@ -63,8 +63,9 @@ class TurbineGroup(Equipment):
             ps = ctx.ps(pb, si.s)
             # reconciliation may scale the dry efficiency by a factor shared along an
             # expansion line (the line keeps its design shape, its level floats)
-            eff_col = ctx.constants.get(self.id, {}).get("efficiency_factor_column")
-            eta_design = self.params["efficiency"]
+            k = ctx.constants.get(self.id, {})
+            eff_col = k.get("efficiency_factor_column")
+            eta_design = self.params["efficiency"] * k.get("efficiency_factor", 1.0)
             eta_dry = eta_design * float(ctx.z[eff_col]) if eff_col is not None else eta_design
             alpha = self.params["baumann_factor"]
             y_in, dyi_dp, dyi_dh = _moisture(si)

@@ -354,7 +354,7 @@ def kpi_definitions(
             if cw is not None:
                 return float(c.z[cw[0]]), float(c.z[cw[1]])
             k = c.constants.get(e.id, {})
-            t_in = e.params["cooling_water_inlet_temperature"]
+            t_in = k.get("cw_inlet", e.params["cooling_water_inlet_temperature"])
             if "cw_flow" in k:
                 return t_in, t_in + e.duty(c) / (k["cw_flow"] * e.params["cooling_water_cp"])
             return t_in, t_in + e.params["cooling_water_rise"]

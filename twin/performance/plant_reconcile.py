@@ -108,8 +108,16 @@ class PlantReconciler:
 
     # ------------------------------------------------------------------ helpers
     def sigma(self, tag: str, value_si: float) -> float:
-        """Standard uncertainty (1 σ) of a sensor's reading [SI]."""
-        return float(self.sensor_configs[tag].sigma_si(value_si))
+        """Standard uncertainty (1 σ) of a sensor's reading [SI].
+
+        A percent-of-reading uncertainty vanishes at a zero reading; the floor is
+        0.1 % of the sensor's valid range (95 %), so a zero flow still has a variance.
+        """
+        s = self.sensor_configs[tag]
+        sig = float(s.sigma_si(value_si))
+        rng = s.range_si
+        floor = 0.001 * abs(rng[1] - rng[0]) / 1.96 if rng is not None else 1e-9
+        return sig if math.isfinite(sig) and sig >= floor else max(floor, 1e-9)
 
     def start_point(self, load: float | None = None) -> np.ndarray:
         """Starting state: the forward model at ``load`` (or the design point)."""
