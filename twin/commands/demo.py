@@ -1,0 +1,157 @@
+"""``twin demo``: the live twin of the invented unit demo-u1, self-contained.
+
+Starts an embedded MQTT broker (or uses ``--broker HOST:PORT``), a simulated
+plant publishing its instruments (slow load changes, one transmitter that
+develops a bias, a slow HP efficiency loss, an episode of cold cooling water
+that lowers the back-pressure and wets the LP exhaust), the daemon and its
+metrics endpoint, and prints a summary line per cycle.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import math
+import os
+import sys
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+DEFAULT_CONFIG = Path(__file__).resolve().parents[2] / "configs" / "demo-u1.toml"
+
+CAUTION = """\
+CAUTION: twin is advisory monitoring only. It never trips, interlocks or operates equipment.
+The default exhaust-moisture limits (10 % warning, 12 % alarm) are common practice, not
+manufacturer limits. Defer to plant procedures, manufacturers' limits, local codes and
+licensed engineers. demo-u1 is an invented unit; its data are simulated.
+"""
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--config", default=str(DEFAULT_CONFIG), help="plant file (default: configs/demo-u1.toml)")
+    parser.add_argument("--duration", type=float, default=None,
+                        help="stop after this many wall-clock seconds (default: the whole scenario)")
+    parser.add_argument("--speed", type=float, default=20.0, help="simulated seconds per real second (default 20)")
+    parser.add_argument("--broker", default=None, metavar="HOST:PORT",
+                        help="use an existing MQTT broker instead of the embedded one")
+    parser.add_argument("--metrics-port", type=int, default=None, help="metrics port (default: config; 0 = any free)")
+    parser.add_argument("--sample-interval", type=float, default=5.0,
+                        help="simulated seconds between instrument readings (default 5)")
+    parser.add_argument("--seed", type=int, default=1, help="noise seed (default 1)")
+    parser.add_argument("--log-level", default="WARNING", choices=("DEBUG", "INFO", "WARNING", "ERROR"))
+
+
+def _fmt(result: Any, sim_start: float) -> str:
+    def k(name: str, scale: float = 100.0, fmt: str = "5.2f") -> str:
+        e = result.kpis.get(name)
+        if e is None or not e.available:
+            return "  n/a"
+        return format(e.value * scale, fmt)
+
+    minute = (result.window_end - sim_start) / 60.0
+    dev = result.heat_rate_deviation * 3600.0 if math.isfinite(result.heat_rate_deviation) else math.nan
+    hr = result.kpis.get("turbine_heat_rate")
+    hr_s = f"{hr.value * 3600:6.0f}" if hr is not None and hr.available else "   n/a"
+    alarms = [f"{a.name}:{a.severity or a.state}" for a in result.alarms.values() if a.active]
+    suspects = [t for t, r in result.tags.items() if r.suspect]
+    return (
+        f"t={minute:5.1f} min {'steady ' if result.steady else 'transient'} load {k('load_fraction', 100, '5.1f')} % "
+        f"| gross {k('gross_power', 1e-6, '6.1f')} MW eff {k('gross_efficiency')} % HR {hr_s} kJ/kWh "
+        f"(dev {dev:+5.0f}) | HP {k('section_efficiency.HP', 100, '4.1f')} IP {k('section_efficiency.IP', 100, '4.1f')} "
+        f"LP {k('section_efficiency.LP', 100, '4.1f')} % | exhaust moisture {k('exhaust_moisture_elep', 100, '4.1f')} % "
+        f"| suspects {','.join(suspects) or '-'} | alarms {','.join(alarms) or '-'}"
+    )
+
+
+def run(args: argparse.Namespace) -> int:
+    os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    logging.basicConfig(level=getattr(logging, args.log_level), stream=sys.stderr,
+                        format="%(asctime)s %(levelname)s %(name)s %(message)s")
+    print(CAUTION, flush=True)
+    if not args.speed > 0:
+        print(f"twin demo: --speed {args.speed}: expected a positive factor", file=sys.stderr)
+        return 2
+    from twin.commands.run import install_stop_handlers
+    from twin.config import ConfigError, load_config
+
+    try:
+        config = load_config(args.config)
+    except FileNotFoundError:
+        print(f"twin demo: {args.config}: no such file", file=sys.stderr)
+        return 2
+    except ConfigError as exc:
+        print(str(exc), file=sys.stderr)
+        return 1
+    if args.metrics_port is not None:
+        config.metrics.port = args.metrics_port
+    from twin.daemon import Daemon, DaemonOptions, ScaledClock, mqtt_settings_from_config
+    from twin.demo.broker import BrokerStartError, EmbeddedBroker
+    from twin.demo.simulator import Simulator
+
+    stop = threading.Event()
+    install_stop_handlers(stop)
+    broker = None
+    if args.broker:
+        host, _, port = args.broker.rpartition(":")
+        if not host or not port.isdigit():
+            print(f"twin demo: --broker {args.broker!r}: expected HOST:PORT", file=sys.stderr)
+            return 2
+    else:
+        broker = EmbeddedBroker()
+        try:
+            broker.start()
+        except BrokerStartError as exc:
+            print(f"twin demo: {exc}", file=sys.stderr)
+            return 1
+        host, port = "127.0.0.1", str(broker.port)
+        print(f"embedded MQTT broker on {host}:{port} (MQTT 3.1.1)")
+    base = mqtt_settings_from_config(config, {})
+    from dataclasses import replace
+
+    settings = replace(base, host=host, port=int(port), protocol="3.1.1")
+    sim_settings = replace(settings, client_id=f"{settings.client_id}-simulator")
+    start = time.time()
+    print("building the model of demo-u1 (design point, reconciliation problem)...", flush=True)
+    try:
+        daemon = Daemon(config, clock=ScaledClock(start, args.speed), mqtt_settings=settings,
+                        options=DaemonOptions(grace_seconds=config.monitoring.cycle / 2))
+        simulator = Simulator(config, client=sim_settings, speed=args.speed, rng_seed=args.seed,
+                              sample_interval=args.sample_interval)
+    except (ValueError, OSError) as exc:
+        print(f"twin demo: {exc}", file=sys.stderr)
+        if broker:
+            broker.stop()
+        return 1
+    sim_start = simulator.start_time
+    daemon.clock = ScaledClock(sim_start, args.speed)
+    try:
+        daemon.start()
+    except OSError as exc:  # metrics port taken: fall back to any free port
+        print(f"twin demo: metrics port {config.metrics.port} unavailable ({exc}); using a free port", file=sys.stderr)
+        config.metrics.port = 0
+        daemon.start()
+    if daemon.metrics is not None:
+        print(f"metrics: http://{config.metrics.address}:{daemon.metrics.port}/metrics")
+    scenario = simulator.scenario
+    print(f"scenario: {scenario.duration / 60:.0f} simulated minutes at ×{args.speed:g} "
+          f"({scenario.duration / args.speed / 60:.1f} real minutes); Ctrl-C stops\n", flush=True)
+    sim_thread = threading.Thread(target=simulator.run, args=(scenario.duration, stop), daemon=True)
+    sim_thread.start()
+    deadline = time.monotonic() + (args.duration if args.duration else scenario.duration / args.speed + 5)
+    watchdog = threading.Thread(target=lambda: (stop.wait(max(deadline - time.monotonic(), 0)), stop.set()),
+                                daemon=True)
+    watchdog.start()
+    try:
+        daemon.run(stop, on_result=lambda r: print(_fmt(r, sim_start), flush=True))
+    finally:
+        stop.set()
+        daemon.stop()
+        sim_thread.join(timeout=5)
+        if broker:
+            broker.stop()
+    print(f"\nsimulator published {simulator.stats.published} messages ({simulator.stats.dropped} dropped); "
+          f"daemon received {daemon.ingestor.messages}")
+    print(CAUTION)
+    return 0
