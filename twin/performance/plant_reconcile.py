@@ -18,7 +18,7 @@ Gross Error Detection*, Gulf (2000), ch. 7–8 (measurement test, serial elimina
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -155,7 +155,8 @@ class PlantReconciler:
 
     # ------------------------------------------------------------------ main
     def reconcile(self, values: Mapping[str, float], *, excluded: Mapping[str, str] | None = None,
-                  z0: np.ndarray | None = None) -> PlantReconciliation:
+                  z0: np.ndarray | None = None, kpis: Sequence[str] | None = None,
+                  pseudo: Mapping[str, float] | None = None) -> PlantReconciliation:
         """Reconcile one window.
 
         Parameters
@@ -167,6 +168,12 @@ class PlantReconciler:
         z0 : ndarray, optional
             Starting point; default the previous solution, else the forward model at the
             measured load.
+        kpis : sequence of str, optional
+            Evaluate only these KPIs (default all; the uncertainty propagation is the
+            costly part).
+        pseudo : mapping, optional
+            Values of the soft relations' pseudo-measurements by relation name (default 0,
+            i.e. the model relation holds); Monte Carlo studies draw them.
         """
         excluded = dict(excluded or {})
         sysm = self.system
@@ -187,7 +194,8 @@ class PlantReconciler:
         y_s = np.array([values[t] for t in valid], dtype=float)
         sig_s = np.array([self.sigma(t, values[t]) for t in valid])
         measured = np.concatenate([cols, self._soft_cols])
-        y = np.concatenate([y_s, np.zeros(self._soft_cols.size)])
+        y_soft = np.array([float((pseudo or {}).get(r.name, 0.0)) for r in sysm.soft])
+        y = np.concatenate([y_s, y_soft])
         sig = np.concatenate([sig_s, [r.sigma for r in sysm.soft]])
         V = sig**2
         if z0 is None:
@@ -253,7 +261,7 @@ class PlantReconciler:
         # ---- states, KPIs
         z_hat, cov = res.z_hat, res.cov_z
         streams = self._streams(z_hat)
-        kpis = self._kpis(z_hat, cov)
+        kpis = self._kpis(z_hat, cov, kpis)
         unmeasured = self._unmeasured(z_hat, cov)
         from scipy.stats import chi2
 
@@ -302,8 +310,9 @@ class PlantReconciler:
             return Estimate()
         return Estimate(value, K95 * math.sqrt(max(var, 0.0)), True)
 
-    def _kpis(self, z: np.ndarray, cov: np.ndarray) -> dict[str, Estimate]:
-        return {d.name: self._kpi_estimate(d, z, cov) for d in self.kpi_defs}
+    def _kpis(self, z: np.ndarray, cov: np.ndarray, names: Sequence[str] | None = None) -> dict[str, Estimate]:
+        wanted = None if names is None else set(names)
+        return {d.name: self._kpi_estimate(d, z, cov) for d in self.kpi_defs if wanted is None or d.name in wanted}
 
     def _unmeasured(self, z: np.ndarray, cov: np.ndarray) -> dict[str, Estimate]:
         """Unmeasured quantities worth reporting: LP exhaust enthalpies, line factors."""
