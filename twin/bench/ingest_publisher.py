@@ -142,9 +142,10 @@ class BulkPublisher:
         t0 = time.perf_counter()
         buf = bytearray()
         total = len(messages)
+        goal = self.acknowledged + total  # the counters run over every call
         i = 0
         t_sent = t0
-        while self.acknowledged < total:
+        while self.acknowledged < goal:
             room = self.window - (self.sent - self.acknowledged)
             if i < total and room > 0:
                 parts: list[bytes] = []
@@ -166,6 +167,8 @@ class BulkPublisher:
                 self._read_acks(False, buf)
             else:
                 self._read_acks(True, buf)
+        if buf:
+            raise PublishError(f"a partial packet {bytes(buf).hex()} after the last PUBACK")
         return {"publish_seconds": t_sent - t0, "acked_seconds": time.perf_counter() - t0}
 
     def close(self) -> None:
