@@ -187,6 +187,7 @@ def _synthetic(args) -> dict:
 
     sizes = (100, 200) if args.quick else (100, 200, 500, 1000, 2000)
     out: dict = {}
+    failures: list[str] = []
     for kind in ("linear", "bilinear"):
         rows = {}
         for cov in ("full", "none"):
@@ -197,13 +198,16 @@ def _synthetic(args) -> dict:
                 net = synthetic_network(n, seed=args.seed, kind=kind)
                 first = reconcile(net.system, net.z0, net.measured, net.y, net.V)
                 cls = first.classification
+                start = first.z_warm if first.converged else net.z0
+                if not first.converged:
+                    failures.append(f"{kind} n={n}: {first.status}")
                 rng = np.random.default_rng(args.seed)
                 sd = np.sqrt(np.diag(net.V))
                 times = []
                 for _ in range(max(1, args.repeat)):
                     y = net.z_true[net.measured] + sd * rng.standard_normal(sd.size)
                     t0 = time.perf_counter()
-                    reconcile(net.system, first.z_warm, net.measured, y, net.V,
+                    reconcile(net.system, start, net.measured, y, net.V,
                               classification=cls, options=SolveOptions(covariance=cov))
                     times.append(time.perf_counter() - t0)
                 med.append(float(np.median(times)))
@@ -213,6 +217,7 @@ def _synthetic(args) -> dict:
                 "loglog_slope": round(slope, 2),
             }
         out[kind] = rows
+    out["failures"] = sorted(set(failures))
     return out
 
 
