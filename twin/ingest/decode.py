@@ -41,6 +41,7 @@ import math
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
+from json.scanner import make_scanner
 from typing import Any, NamedTuple
 
 REJECT_REASONS: tuple[str, ...] = (
@@ -307,6 +308,9 @@ class _Compiled:
 
 
 _JSON = json.JSONDecoder()
+# (document, end index) or StopIteration; unlike json.loads it skips no whitespace
+_SCAN = make_scanner(_JSON)  # type: ignore[arg-type]
+_TS_CODES = {"epoch_s": 0, "epoch_ms": 1, "rfc3339": 2, "auto": 3}
 _DEFAULT_BATCH_GOOD: frozenset[str | int | bool] = frozenset({True, "good"})
 
 
@@ -349,6 +353,29 @@ class TopicMap:
                     f"topic {topic!r}: a 'number' payload carries one tag, but "
                     f"{sorted(c.binding.tag for c in cs)} are bound to it"
                 )
+        # topics whose messages decode_one() may take: one number/json binding,
+        # value and timestamp as top-level keys, no quality field
+        self._simple: dict[str, tuple[Any, ...]] = {}
+        for topic, cs in self._by_topic.items():
+            c = cs[0]
+            f = c.binding.fmt
+            if len(cs) != 1 or f.kind == "batch" or c.quality is not None:
+                continue
+            if f.kind == "json" and (
+                len(c.value) != 1 or (c.timestamp is not None and len(c.timestamp) != 1)
+            ):
+                continue
+            b = c.binding
+            self._simple[topic] = (
+                b.tag,
+                c.value[0] if f.kind == "json" else None,
+                c.timestamp[0] if c.timestamp is not None else None,
+                _TS_CODES[f.timestamp_format],
+                b.scale,
+                b.offset,
+                b.valid_min_si,
+                b.valid_max_si,
+            )
 
     @staticmethod
     def _compile(b: TagBinding) -> _Compiled:
@@ -410,6 +437,61 @@ class TopicMap:
             for c in compiled:
                 self._decode_json(c, doc, now, out)
         return out
+
+    def decode_one(
+        self, topic: str, payload: bytes, now: float
+    ) -> tuple[str, float, float, bool] | None:
+        """The fast path for the common message: ``(tag, time, value, quality_ok)``.
+
+        Taken for a topic with one ``number`` or ``json`` binding whose value
+        and timestamp are top-level keys and which has no quality field, when
+        the message is valid. ``None`` means "not decided here": call
+        :meth:`decode`, which gives the same sample for any message this
+        method accepts, and the rejections for the rest.
+
+        Parameters
+        ----------
+        topic : str
+            The message topic.
+        payload : bytes
+            The raw payload.
+        now : float
+            Receive time [s since the epoch].
+        """
+        plan = self._simple.get(topic)
+        if plan is None or len(payload) > self.max_payload_bytes:
+            return None
+        tag, key, ts_key, ts_code, scale, offset, lo, hi = plan
+        try:
+            if key is None:
+                raw = float(payload)
+                t = now
+            else:
+                text = payload.decode("utf-8")
+                doc, end = _SCAN(text, 0)
+                if end != len(text) or type(doc) is not dict:
+                    return None
+                x = doc.get(key)
+                if type(x) is not float and type(x) is not int:
+                    return None  # also bool, str, null, missing: decode() judges
+                raw = float(x)
+                tr = doc.get(ts_key) if ts_key is not None else None
+                if tr is None:
+                    t = now
+                elif (type(tr) is float or type(tr) is int) and ts_code != 2:
+                    t = float(tr)
+                    if ts_code == 1 or (ts_code == 3 and abs(t) > _MAX_EPOCH_S):
+                        t /= 1000.0
+                    if not 0.0 <= t < _MAX_EPOCH_S:  # NaN fails too
+                        return None
+                else:
+                    return None
+        except (ValueError, TypeError, StopIteration, OverflowError, RecursionError):
+            return None
+        v = raw * scale + offset
+        if v - v != 0.0 or v < lo or v > hi:  # not finite, or out of range (NaN limits: no limit)
+            return None
+        return tag, t, v, True
 
     # ------------------------------------------------------------- kinds ---
 

@@ -116,10 +116,18 @@ class Ingestor:
         self.on_reject = on_reject
         self.limiter = limiter if limiter is not None else LogRateLimiter()
         self.rejects = RejectCounter()
+        self._decode_one = topic_map.decode_one
+        self._add = store.add
         self.messages = 0
         self.samples = 0
 
     def __call__(self, topic: str, payload: bytes, now: float) -> None:
+        one = self._decode_one(topic, payload, now)
+        if one is not None:  # the common case: one valid sample
+            self._add(*one)
+            self.messages += 1
+            self.samples += 1
+            return
         out = self.topic_map.decode(topic, payload, now)
         if out.samples:
             self.store.add_many(out.samples)
