@@ -42,3 +42,16 @@ def test_bench_small_run_loses_nothing(mode, monkeypatch):
         assert figures["mosquitto_sub_complete"] is True
         assert figures["twin_to_mosquitto_sub_ratio"] > 0
     assert figures["cycle"] == {"hooked": True} and seen["tags"] == 15
+    # every configuration read the same stream without loss, each with its own figures
+    assert set(figures["configurations"]) == set(bench.CONFIGURATIONS)
+    for name, summary in figures["configurations"].items():
+        assert summary["lost"] == 0, name
+        (r,) = summary["runs"]
+        assert r["twin_received"] == n and r["twin_samples_stored"] == n, name
+        assert r["twin_callback_errors"] == 0 and r["twin_messages_per_second"] > 0, name
+    assert figures["reported_configuration"] == bench.DEFAULT_CONFIGURATION
+
+
+def test_bench_rejects_unknown_configuration():
+    with pytest.raises(SystemExit, match="unknown configurations"):
+        bench.run(_args("--configs", "batched,fastest"))

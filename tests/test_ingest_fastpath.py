@@ -83,9 +83,17 @@ def test_fast_path_taken_for_plain_messages_only():
     assert tm.decode_one("u/n", b"160.5", NOW) == ("n", NOW, 160.5e5, True)
     # 1 bar = 1e5 Pa, 0 degC = 273.15 K (SI brochure)
     assert tm.decode_one("u/j", b'{"v": 20.0, "ts": 1700000001.5}', NOW) == (
-        "j", 1700000001.5, 293.15, True
+        "j",
+        1700000001.5,
+        293.15,
+        True,
     )
-    assert tm.decode_one("u/ms", b'{"v":1,"ts":1700000001500}', NOW) == ("ms", 1700000001.5, 1.0, True)
+    assert tm.decode_one("u/ms", b'{"v":1,"ts":1700000001500}', NOW) == (
+        "ms",
+        1700000001.5,
+        1.0,
+        True,
+    )
     assert tm.decode_one("u/nots", b'{"v":2}', NOW) == ("nots", NOW, 2.0, True)
     for topic, payload in [
         ("u/deep", b'{"d":{"v":1}}'),  # nested pointer: general decoder

@@ -134,8 +134,26 @@ def test_mixed_qos_large_payloads_and_v5_properties(mosquitto_factory, wait_for,
             expected.append(payload)
         # a message carrying MQTT 5 properties (the fast path leaves it to paho)
         subprocess.run(
-            ["mosquitto_pub", "-h", broker.host, "-p", str(broker.port), "-V", "5", "-q", "1",
-             "-t", "m/x", "-m", "with-props", "-D", "publish", "user-property", "k", "v"],
+            [
+                "mosquitto_pub",
+                "-h",
+                broker.host,
+                "-p",
+                str(broker.port),
+                "-V",
+                "5",
+                "-q",
+                "1",
+                "-t",
+                "m/x",
+                "-m",
+                "with-props",
+                "-D",
+                "publish",
+                "user-property",
+                "k",
+                "v",
+            ],
             check=True,
             timeout=30,
         )

@@ -308,7 +308,6 @@ class _BatchingClient(paho.Client):
         finally:
             self._flush_acks()
 
-
     def _fast_publishes(self) -> int:
         """Deliver the complete QoS 0/1 PUBLISH packets at the head of the buffer."""
         buf, pos, end = self._rbuf, self._rpos, len(self._rbuf)

@@ -2,19 +2,32 @@
 
 A private Mosquitto is started on a free port of 127.0.0.1 with its queues
 sized for the run (the broker's default per-client queue of 1 000 QoS 1
-messages drops silently as soon as a subscriber lags that far behind). Two
+messages drops silently as soon as a subscriber lags that far behind). The
 subscribers read the same stream of N small JSON messages spread over T
 topics at QoS 1:
 
-* the twin ingest path: :class:`twin.mqtt.MqttClient` → decode → SI
-  conversion → :class:`twin.ingest.TagStore`;
-* ``mosquitto_sub -C N -q 1`` (the C client, as a yardstick).
+* the twin ingest path in each configuration of :data:`CONFIGURATIONS`:
+  :class:`twin.mqtt.MqttClient` → decode → SI conversion →
+  :class:`twin.ingest.TagStore` (``batched``, the default: block reads,
+  batched PUBACKs and the decode fast path; ``paho``: paho's own per-packet
+  receive path, for comparison);
+* ``mosquitto_sub -q 1`` (the C client, as a yardstick).
 
-A separate publisher process (also :class:`twin.mqtt.MqttClient`) sends the
-messages with a bounded in-flight window and checks every return code (a full
-queue is retried, never ignored). The figures: messages/s for each subscriber
-from the publisher's start to its own last message, their ratio, the
-publisher's own rate, loss counts, and the decode+store rate with no network.
+The load comes from P publisher processes, each a
+:class:`twin.bench.ingest_publisher.BulkPublisher` (pre-encoded QoS 1
+packets, a bounded in-flight window, every PUBACK checked), so the
+publishers are not what is measured.
+
+Modes: ``backlog`` (default) registers a persistent session for every
+subscriber, publishes the whole stream into them, then lets each subscriber
+drain its copy alone, one after the other: the subscriber's own speed, no
+publisher limit, the same stream for all. ``live`` runs one pass per
+configuration with the twin and ``mosquitto_sub`` reading while the
+publishers send. Rates are N divided by the time from the subscriber's start
+(backlog) or the publishers' start (live) to its N-th message; CPU seconds
+are reported beside them because the machine may be shared. ``--repeat``
+repeats everything on a fresh broker; each configuration reports its runs,
+the best and the median.
 
 Cycle latency (window close → published result) needs the daemon: set
 :data:`CYCLE_HOOK` to a callable ``hook(store, topic_map, args) -> dict`` and
@@ -26,8 +39,10 @@ from __future__ import annotations
 import argparse
 import multiprocessing as mp
 import os
+import resource
 import shutil
 import socket
+import statistics
 import subprocess
 import tempfile
 import threading
@@ -36,6 +51,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from twin.bench.ingest_publisher import BulkPublisher
 from twin.ingest import Ingestor, PayloadFormat, TagBinding, TagStore, TopicMap
 from twin.mqtt import MqttClient, MqttSettings
 
@@ -44,11 +60,25 @@ CYCLE_HOOK: Callable[[TagStore, TopicMap, argparse.Namespace], dict[str, Any]] |
 
 GOAL_MESSAGES_PER_SECOND = 20_000.0
 
+# name -> MqttSettings overrides; the first is the default the daemon uses.
+CONFIGURATIONS: dict[str, dict[str, Any]] = {
+    "batched": {"batch_receive": True},
+    "paho": {"batch_receive": False},
+}
+DEFAULT_CONFIGURATION = "batched"
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--messages", type=int, default=200_000, help="messages to send (N)")
     parser.add_argument("--topics", type=int, default=100, help="distinct topics (one tag each)")
-    parser.add_argument("--qos", type=int, default=1, choices=(0, 1, 2))
+    parser.add_argument(
+        "--qos",
+        type=int,
+        default=1,
+        choices=(0, 1),
+        help="subscription QoS (messages are always published at QoS 1)",
+    )
+    parser.add_argument("--protocol", choices=("3.1.1", "5"), default="3.1.1")
     parser.add_argument(
         "--broker-queue",
         type=int,
@@ -57,22 +87,27 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "by the whole run without loss)",
     )
     parser.add_argument(
-        "--inflight", type=int, default=1000, help="publisher's in-flight QoS 1 window"
+        "--inflight", type=int, default=1000, help="each publisher's in-flight QoS 1 window"
     )
     parser.add_argument(
         "--publishers",
         type=int,
         default=2,
-        help="publisher processes (each owns every P-th topic); one Python client tops out "
-        "well below the subscriber on small machines",
+        help="publisher processes (each owns every P-th message)",
     )
+    parser.add_argument(
+        "--configs",
+        default=",".join(CONFIGURATIONS),
+        help=f"twin configurations to measure, comma-separated, from {sorted(CONFIGURATIONS)}",
+    )
+    parser.add_argument("--repeat", type=int, default=1, help="runs, each on a fresh broker")
     parser.add_argument(
         "--mode",
         choices=("backlog", "live"),
         default="backlog",
         help="backlog: publish everything into persistent sessions first, then time each "
-        "subscriber draining it alone (subscriber speed, no publisher limit); live: both "
-        "subscribers read while the publishers send (bounded by the publishers)",
+        "subscriber draining it alone (subscriber speed, no publisher limit); live: the twin "
+        "and mosquitto_sub read while the publishers send (one pass per configuration)",
     )
     parser.add_argument("--timeout", type=float, default=300.0, help="give up after [s]")
     parser.add_argument(
@@ -95,59 +130,25 @@ def _topic(k: int, n_topics: int) -> str:
 
 
 def _publisher(
-    port: int,
-    index: int,
-    count: int,
-    n: int,
-    n_topics: int,
-    qos: int,
-    inflight: int,
-    go: Any,
-    out: Any,
+    port: int, index: int, count: int, n: int, n_topics: int, window: int, go: Any, out: Any
 ) -> None:
-    """Publisher ``index`` of ``count``: sends messages k = index, index + count, ... < n.
-
-    Bounded window (``inflight`` sent unacknowledged, twice that queued); every
-    return code is checked and a full queue is retried after a short pause.
-    """
-    settings = MqttSettings(
-        port=port,
-        qos=qos,
-        max_inflight=inflight,
-        max_queued=2 * inflight,
-        client_id=f"bench-pub{index}",
-    )
-    client = MqttClient(settings, lambda *a: None)
-    client.start()
-    if not client.wait_connected(30):
-        out.put({"error": client.last_error or "publisher could not connect"})
+    """Publisher ``index`` of ``count``: sends messages k = index, index + count, ... < n."""
+    try:
+        now = time.time()
+        messages = [(_topic(k, n_topics), _payload(k, now)) for k in range(index, n, count)]
+        pub = BulkPublisher("127.0.0.1", port, f"bench-pub{index}", window=window)
+    except Exception as exc:
+        out.put({"error": f"publisher {index}: {exc}"})
         return
-    topics = [_topic(k, n_topics) for k in range(n_topics)]
     out.put({"ready": True})
     go.wait()
-    t0 = time.perf_counter()
-    retries = 0
-    now = time.time()
-    for k in range(index, n, count):
-        payload = _payload(k, now)
-        topic = topics[k % n_topics]
-        while not client.publish(topic, payload, qos=qos):
-            retries += 1
-            time.sleep(0.001)
-    t_sent = time.perf_counter()
-    while client.stats().pending > 0 and time.perf_counter() - t_sent < 60:
-        time.sleep(0.001)
-    t_acked = time.perf_counter()
-    stats = client.stats()
-    client.stop()
-    out.put(
-        {
-            "publish_seconds": t_sent - t0,
-            "acked_seconds": t_acked - t0,
-            "queue_full_retries": retries,
-            "unacknowledged": stats.pending,
-        }
-    )
+    try:
+        res = pub.publish_all(messages)
+        pub.close()
+    except Exception as exc:
+        out.put({"error": f"publisher {index}: {exc}"})
+        return
+    out.put({**res, "acknowledged": len(messages)})
 
 
 def _wait_log(log: Path, needle: str, proc: subprocess.Popen[bytes] | None, timeout: float) -> None:
@@ -225,7 +226,7 @@ class _Counting:
             self.done.set()
 
 
-def _sub_cmd(port: int, qos: int, *extra: str) -> list[str]:
+def _sub_cmd(port: int, qos: int, client_id: str, protocol: str, *extra: str) -> list[str]:
     return [
         "mosquitto_sub",
         "-h",
@@ -237,174 +238,315 @@ def _sub_cmd(port: int, qos: int, *extra: str) -> list[str]:
         "-t",
         "bench/#",
         "-i",
-        "bench-sub",
+        client_id,
+        "-V",
+        "5" if protocol == "5" else "311",
         *extra,
     ]
 
 
-def _publish_all(
-    port: int, args: argparse.Namespace, n: int, n_topics: int, qos: int, procs: list[Any]
-) -> tuple[float, Callable[[], list[dict[str, Any]]]]:
-    """Start the publisher processes, release them together; (start time, results)."""
-    ctx = mp.get_context("spawn")
-    go, out = ctx.Event(), ctx.Queue()
-    n_pub = max(1, int(args.publishers))
-    pubs = [
-        ctx.Process(
-            target=_publisher, args=(port, i, n_pub, n, n_topics, qos, args.inflight, go, out)
+def _children_cpu() -> float:
+    ru = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return ru.ru_utime + ru.ru_stime
+
+
+def _run_sub(cmd: list[str], t0: float | None, timeout: float) -> dict[str, Any]:
+    """Run ``mosquitto_sub`` to completion; rate from ``t0`` (default: its start)."""
+    c0 = _children_cpu()
+    t_start = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL)
+    try:
+        proc.wait(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait()
+        return {"complete": False}
+    seconds = time.perf_counter() - (t_start if t0 is None else t0)
+    return {
+        "complete": proc.returncode == 0,
+        "seconds": seconds,
+        "cpu_seconds": _children_cpu() - c0,
+    }
+
+
+class _Bench:
+    """One broker, its topic map and the helpers shared by both modes."""
+
+    def __init__(self, args: argparse.Namespace, port: int, log: Path, broker: Any) -> None:
+        self.args, self.port, self.log, self.broker = args, port, log, broker
+        self.n, self.n_topics, self.qos = int(args.messages), int(args.topics), int(args.qos)
+        self.bindings = [
+            TagBinding(
+                f"tag{k:03d}",
+                _topic(k, self.n_topics),
+                PayloadFormat("json", "/v", "/ts"),
+                scale=1e5,
+            )
+            for k in range(self.n_topics)
+        ]
+        self.topic_map = TopicMap(self.bindings)
+        self.store = TagStore([b.tag for b in self.bindings], capacity=4096)
+
+    def settings(self, config: str, client_id: str, persistent: bool) -> MqttSettings:
+        return MqttSettings(
+            port=self.port,
+            protocol=self.args.protocol,
+            qos=self.qos,
+            client_id=client_id,
+            max_inflight=1000,
+            clean_session=not persistent,
+            **CONFIGURATIONS[config],
         )
-        for i in range(n_pub)
-    ]
-    for pub in pubs:
-        pub.start()
-        procs.append(pub)
-    for _ in pubs:
-        ready = out.get(timeout=60)
-        if "error" in ready:
-            raise RuntimeError(f"publisher: {ready['error']}")
-    t0 = time.perf_counter()
-    go.set()
 
-    def results() -> list[dict[str, Any]]:
-        res = [out.get(timeout=args.timeout) for _ in pubs]
+    def register(self, settings: MqttSettings) -> None:
+        """Connect, subscribe and leave: the broker now queues for the session."""
+        client = MqttClient(settings, lambda *a: None)
+        client.subscribe({"bench/#": self.qos})
+        client.start()
+        try:
+            _wait_log(self.log, settings.client_id, self.broker, 30)
+        finally:
+            client.stop()
+
+    def publish(self) -> tuple[float, Callable[[], list[dict[str, Any]]]]:
+        """Start the publishers, release them together; (start time, results)."""
+        ctx = mp.get_context("spawn")
+        go, out = ctx.Event(), ctx.Queue()
+        n_pub = max(1, int(self.args.publishers))
+        pubs = [
+            ctx.Process(
+                target=_publisher,
+                args=(self.port, i, n_pub, self.n, self.n_topics, self.args.inflight, go, out),
+            )
+            for i in range(n_pub)
+        ]
         for pub in pubs:
-            pub.join(timeout=30)
-        return res
+            pub.start()
+        try:
+            for _ in pubs:
+                ready = out.get(timeout=120)
+                if "error" in ready:
+                    raise RuntimeError(ready["error"])
+        except BaseException:
+            for pub in pubs:
+                pub.kill()
+            raise
+        t0 = time.perf_counter()
+        go.set()
 
-    return t0, results
+        def results() -> list[dict[str, Any]]:
+            try:
+                res = [out.get(timeout=self.args.timeout) for _ in pubs]
+            finally:
+                for pub in pubs:
+                    pub.join(timeout=30)
+                    if pub.is_alive():
+                        pub.kill()
+            errors = [r["error"] for r in res if "error" in r]
+            if errors:
+                raise RuntimeError("; ".join(errors))
+            return res
+
+        return t0, results
+
+    def twin(
+        self,
+        settings: MqttSettings,
+        t0: list[float] | None = None,
+        ready: threading.Event | None = None,
+    ) -> dict[str, Any]:
+        """Receive the stream through the twin path.
+
+        The rate counts from ``t0[0]`` when given (filled in by the caller
+        before the stream can end: the publishers' start), else from the
+        client's start; ``ready`` is set once the subscription is in force.
+        """
+        store = TagStore(self.store.tags, capacity=self.store.capacity)
+        ingest = Ingestor(self.topic_map, store)
+        counting = _Counting(ingest, self.n)
+        client = MqttClient(settings, counting)
+        client.subscribe({"bench/#": self.qos})
+        c0 = time.process_time()
+        t_start = time.perf_counter()
+        client.start()
+        try:
+            if ready is not None:
+                _wait_log(self.log, settings.client_id, self.broker, 30)
+                ready.set()
+            done = counting.done.wait(timeout=self.args.timeout)
+            cpu = time.process_time() - c0
+            time.sleep(0.2)  # let any duplicate or surplus delivery show up in the count
+        finally:
+            client.stop()
+        self.store = store
+        seconds = counting.t_done - (t0[0] if t0 else t_start) if done else None
+        return {
+            "twin_received": ingest.messages,
+            "twin_lost": max(0, self.n - ingest.messages),
+            "twin_samples_stored": ingest.samples,
+            "twin_rejections": ingest.rejects.total,
+            "twin_seconds": seconds,
+            "twin_messages_per_second": self.n / seconds if seconds else None,
+            "twin_cpu_seconds": cpu,
+            "twin_callback_errors": client.stats().callback_errors,
+        }
+
+
+def _merge_sub(run: dict[str, Any], sub: dict[str, Any] | None, n: int) -> dict[str, Any]:
+    if sub is not None:
+        s = sub.get("seconds") if sub.get("complete") else None
+        run["mosquitto_sub_complete"] = bool(sub.get("complete"))
+        run["mosquitto_sub_seconds"] = s
+        run["mosquitto_sub_messages_per_second"] = n / s if s else None
+        run["mosquitto_sub_cpu_seconds"] = sub.get("cpu_seconds")
+        if s and run["twin_seconds"]:
+            run["twin_to_mosquitto_sub_ratio"] = s / run["twin_seconds"]
+    return run
+
+
+def _one_run(
+    b: _Bench, configs: list[str], use_sub: bool
+) -> tuple[dict[str, dict[str, Any]], list[dict[str, Any]]]:
+    """One run on broker ``b``: {config: figures}, publisher results."""
+    n, a = b.n, b.args
+    out: dict[str, dict[str, Any]] = {}
+    pub_results: list[dict[str, Any]] = []
+    if a.mode == "backlog":
+        for cfg in configs:
+            b.register(b.settings(cfg, f"bench-{cfg}", persistent=True))
+        sub_id = "bench-sub"
+        if use_sub:
+            _run_sub(_sub_cmd(b.port, b.qos, sub_id, a.protocol, "-c", "-E"), None, 30)
+        _, results = b.publish()
+        pub_results = results()
+        sub = None
+        if use_sub:
+            sub = _run_sub(
+                _sub_cmd(b.port, b.qos, sub_id, a.protocol, "-c", "-C", str(n)), None, a.timeout
+            )
+        for cfg in configs:
+            out[cfg] = _merge_sub(b.twin(b.settings(cfg, f"bench-{cfg}", persistent=True)), sub, n)
+        return out, pub_results
+    for k, cfg in enumerate(configs):  # live: one pass per configuration
+        sub_id = f"bench-sub{k}"
+        sub_proc = None
+        if use_sub:
+            sub_proc = subprocess.Popen(
+                _sub_cmd(b.port, b.qos, sub_id, a.protocol, "-C", str(n)), stdout=subprocess.DEVNULL
+            )
+            _wait_log(b.log, sub_id, b.broker, 30)
+        ready = threading.Event()
+        box: dict[str, Any] = {}
+        t0_box: list[float] = []
+        c0 = _children_cpu()
+        settings = b.settings(cfg, f"bench-{cfg}{k}", persistent=False)
+        th = threading.Thread(
+            target=lambda s=settings, bx=box, t=t0_box, r=ready: bx.update(b.twin(s, t, r))
+        )
+        th.start()
+        if not ready.wait(60):
+            raise RuntimeError("the twin subscriber did not subscribe")
+        t0, results = b.publish()
+        t0_box.append(t0)
+        sub = None
+        if sub_proc is not None:
+            try:
+                sub_proc.wait(timeout=a.timeout)
+                sub = {
+                    "complete": sub_proc.returncode == 0,
+                    "seconds": time.perf_counter() - t0,
+                    "cpu_seconds": _children_cpu() - c0,
+                }
+            except subprocess.TimeoutExpired:
+                sub_proc.kill()
+                sub_proc.wait()
+                sub = {"complete": False}
+        th.join()
+        pub_results = results()
+        out[cfg] = _merge_sub(box, sub, n)
+    return out, pub_results
+
+
+def _summary(runs: list[dict[str, Any]], n: int) -> dict[str, Any]:
+    rates = [r["twin_messages_per_second"] or 0.0 for r in runs]
+    subs = [r.get("mosquitto_sub_messages_per_second") or 0.0 for r in runs]
+    ratios = [
+        r["twin_to_mosquitto_sub_ratio"] for r in runs if r.get("twin_to_mosquitto_sub_ratio")
+    ]
+    lost = sum(r["twin_lost"] for r in runs)
+    cpu = [r["twin_cpu_seconds"] for r in runs if r["twin_cpu_seconds"]]
+    median = statistics.median(rates)
+    return {
+        "twin_messages_per_second_best": max(rates),
+        "twin_messages_per_second_median": median,
+        "twin_messages_per_cpu_second_best": n / min(cpu) if cpu else None,
+        "mosquitto_sub_messages_per_second_best": max(subs) or None,
+        "twin_to_mosquitto_sub_ratio_median": statistics.median(ratios) if ratios else None,
+        "lost": lost,
+        "meets_goal": median >= GOAL_MESSAGES_PER_SECOND and lost == 0,
+        "runs": runs,
+    }
 
 
 def run(args: argparse.Namespace) -> dict[str, Any]:
-    n, n_topics, qos = int(args.messages), int(args.topics), int(args.qos)
+    n = int(args.messages)
+    configs = [c.strip() for c in str(args.configs).split(",") if c.strip()]
+    unknown = sorted(set(configs) - set(CONFIGURATIONS))
+    if unknown or not configs:
+        raise SystemExit(
+            f"twin bench ingest: unknown configurations {unknown or configs!r}; "
+            f"choose from {sorted(CONFIGURATIONS)}"
+        )
+    if args.mode == "backlog" and args.qos == 0:
+        raise SystemExit(
+            "twin bench ingest: backlog mode needs qos 1 (the broker queues only QoS 1/2)"
+        )
     use_sub = not args.no_mosquitto_sub and shutil.which("mosquitto_sub") is not None
     queue = n if args.broker_queue is None else int(args.broker_queue)
-    backlog = args.mode == "backlog"
-    if backlog and qos == 0:
-        raise SystemExit(
-            "twin bench ingest: backlog mode needs qos 1 or 2 (the broker queues only those)"
-        )
-    bindings = [
-        TagBinding(
-            f"tag{k:03d}", _topic(k, n_topics), PayloadFormat("json", "/v", "/ts"), scale=1e5
-        )
-        for k in range(n_topics)
-    ]
-    topic_map = TopicMap(bindings)
-    store = TagStore([b.tag for b in bindings], capacity=4096)
-    ingest = Ingestor(topic_map, store)
-    counting = _Counting(ingest, n)
     figures: dict[str, Any] = {
         "mode": args.mode,
         "messages": n,
-        "topics": n_topics,
-        "qos": qos,
+        "topics": int(args.topics),
+        "qos": int(args.qos),
+        "protocol": args.protocol,
         "broker_max_queued_messages": queue,
         "publisher_inflight": args.inflight,
         "publishers": max(1, int(args.publishers)),
+        "repeat": max(1, int(args.repeat)),
         "goal_messages_per_second": GOAL_MESSAGES_PER_SECOND,
+        "default_configuration": DEFAULT_CONFIGURATION,
     }
-    with tempfile.TemporaryDirectory(prefix="twin-bench-") as tmp:
-        broker, port, log = _start_broker(Path(tmp), queue)
-        twin_settings = MqttSettings(
-            port=port,
-            qos=qos,
-            client_id="bench-twin",
-            max_inflight=1000,
-            clean_session=not backlog,
-        )
-        procs: list[Any] = []
-        clients: list[MqttClient] = []
-        try:
-            twin_sub = MqttClient(twin_settings, counting)
-            clients.append(twin_sub)
-            twin_sub.subscribe({"bench/#": qos})
-            twin_sub.start()
-            _wait_log(log, "bench-twin", broker, 30)
-            sub = None
-            if use_sub:
-                extra = ("-c", "-E") if backlog else ("-C", str(n))
-                sub = subprocess.Popen(_sub_cmd(port, qos, *extra), stdout=subprocess.DEVNULL)
-                procs.append(sub)
-                _wait_log(log, "bench-sub", broker, 30)
-                if backlog:
-                    sub.wait(timeout=30)  # -E: registered the persistent session and left
-            if backlog:
-                twin_sub.stop()  # the broker now queues for both sessions
-                clients.remove(twin_sub)
-            t0, results = _publish_all(port, args, n, n_topics, qos, procs)
-            sub_seconds = twin_seconds = None
-            if backlog:
-                pub_results = results()
-                t_sent = time.perf_counter()
-                if sub is not None:  # each subscriber drains the backlog alone, one after the other
-                    t1 = time.perf_counter()
-                    sub = subprocess.Popen(
-                        _sub_cmd(port, qos, "-c", "-C", str(n)), stdout=subprocess.DEVNULL
-                    )
-                    procs.append(sub)
-                    try:
-                        sub.wait(timeout=args.timeout)
-                        sub_seconds = time.perf_counter() - t1
-                    except subprocess.TimeoutExpired:
-                        sub.kill()
-                t1 = time.perf_counter()
-                twin_sub = MqttClient(twin_settings, counting)
-                clients.append(twin_sub)
-                twin_sub.start()
-                if counting.done.wait(timeout=args.timeout):
-                    twin_seconds = counting.t_done - t1
-                figures["publish_seconds"] = t_sent - t0
-            else:
-                if sub is not None:
-                    try:
-                        sub.wait(timeout=args.timeout)
-                        sub_seconds = time.perf_counter() - t0
-                    except subprocess.TimeoutExpired:
-                        sub.kill()
-                if counting.done.wait(timeout=args.timeout):
-                    twin_seconds = counting.t_done - t0
-                pub_results = results()
-            time.sleep(0.2)  # let any duplicate or surplus delivery show up in the count
-            figures.update(
-                {
-                    "publisher_messages_per_second": n
-                    / max(r["publish_seconds"] for r in pub_results),
-                    "publisher_queue_full_retries": sum(
-                        r["queue_full_retries"] for r in pub_results
-                    ),
-                    "publisher_unacknowledged": sum(r["unacknowledged"] for r in pub_results),
-                    "twin_received": ingest.messages,
-                    "twin_lost": n - ingest.messages,
-                    "twin_samples_stored": ingest.samples,
-                    "twin_rejections": ingest.rejects.total,
-                    "twin_seconds": twin_seconds,
-                    "twin_messages_per_second": n / twin_seconds if twin_seconds else None,
-                    "mosquitto_sub_seconds": sub_seconds,
-                    "mosquitto_sub_messages_per_second": n / sub_seconds if sub_seconds else None,
-                    "mosquitto_sub_complete": (sub_seconds is not None) if use_sub else None,
-                }
-            )
-            if twin_seconds and sub_seconds:
-                figures["twin_to_mosquitto_sub_ratio"] = sub_seconds / twin_seconds
-            if twin_seconds:
-                figures["meets_goal"] = n / twin_seconds >= GOAL_MESSAGES_PER_SECOND and (
-                    ingest.messages == n
-                )
-        finally:
-            for c in clients:
-                c.stop()
-            for p in procs:
-                if isinstance(p, subprocess.Popen):
-                    if p.poll() is None:
-                        p.kill()
-                        p.wait()
-                elif p.is_alive():
-                    p.kill()
-                    p.join()
-            broker.kill()
-            broker.wait()
+    per_config: dict[str, list[dict[str, Any]]] = {c: [] for c in configs}
+    pub_rates: list[float] = []
+    unacked = 0
+    bench: _Bench | None = None
+    for _ in range(max(1, int(args.repeat))):
+        with tempfile.TemporaryDirectory(prefix="twin-bench-") as tmp:
+            broker, port, log = _start_broker(Path(tmp), queue)
+            try:
+                bench = _Bench(args, port, log, broker)
+                runs, pubs = _one_run(bench, configs, use_sub)
+            finally:
+                broker.kill()
+                broker.wait()
+        for c, r in runs.items():
+            per_config[c].append(r)
+        pub_rates.append(n / max(p["publish_seconds"] for p in pubs))
+        unacked += n - sum(p["acknowledged"] for p in pubs)
+    assert bench is not None
+    figures["configurations"] = {c: _summary(rs, n) for c, rs in per_config.items()}
+    figures["publisher_messages_per_second"] = max(pub_rates)
+    figures["publisher_unacknowledged"] = unacked
+    # top-level figures: the first configuration measured, its best run
+    main = configs[0]
+    best = max(per_config[main], key=lambda r: r["twin_messages_per_second"] or 0.0)
+    figures["reported_configuration"] = main
+    figures.update(best)
+    figures["meets_goal"] = figures["configurations"][main]["meets_goal"]
     figures["decode_store_messages_per_second"] = _decode_store_rate(
-        topic_map, TagStore(store.tags), min(n, 100_000), n_topics
+        bench.topic_map, TagStore(bench.store.tags), min(n, 100_000), int(args.topics)
     )
-    figures["cycle"] = CYCLE_HOOK(store, topic_map, args) if CYCLE_HOOK is not None else None
+    figures["cycle"] = (
+        CYCLE_HOOK(bench.store, bench.topic_map, args) if CYCLE_HOOK is not None else None
+    )
     return figures

@@ -124,7 +124,9 @@ class BulkPublisher:
         n = len(buf) // 4
         for i in range(0, 4 * n, 4):
             if buf[i] != _PUBACK or buf[i + 1] != 2:
-                raise PublishError(f"unexpected packet {bytes(buf[i : i + 4]).hex()} (not a PUBACK)")
+                raise PublishError(
+                    f"unexpected packet {bytes(buf[i : i + 4]).hex()} (not a PUBACK)"
+                )
             mid = (buf[i + 2] << 8) | buf[i + 3]
             if not self._inflight[mid]:
                 raise PublishError(f"PUBACK for message id {mid}, which is not in flight")
