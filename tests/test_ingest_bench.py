@@ -55,3 +55,24 @@ def test_bench_small_run_loses_nothing(mode, monkeypatch):
 def test_bench_rejects_unknown_configuration():
     with pytest.raises(SystemExit, match="unknown configurations"):
         bench.run(_args("--configs", "batched,fastest"))
+
+
+def test_bench_cycle_latency_through_a_daemon():
+    """The cycle half: a daemon closes windows of simulated readings fed through Mosquitto."""
+    if shutil.which("mosquitto") is None and shutil.which("/usr/sbin/mosquitto") is None:
+        pytest.skip("mosquitto is not installed (apt-get install mosquitto mosquitto-clients)")
+    figures = bench.run(
+        _args(
+            "--messages", "500", "--topics", "5", "--configs", "batched",
+            "--no-mosquitto-sub", "--cycles", "2",
+        )
+    )  # fmt: skip
+    cycle = figures["cycle"]
+    assert cycle["cycles"] == 2 and len(cycle["per_cycle"]) == 2
+    for row in cycle["per_cycle"]:
+        # every reading of the window reached the daemon, and the cycle republished results
+        assert row["messages_in_window"] > 0 and row["messages_published"] > 0
+        # causality: published after computing began, the last no earlier than the first
+        assert 0 < row["compute_seconds"] <= row["run_cycle_seconds"]
+        assert 0 < row["first_published_seconds"] <= row["last_published_seconds"]
+    assert cycle["last_published_seconds_max"] >= cycle["last_published_seconds_median"]

@@ -29,9 +29,11 @@ are reported beside them because the machine may be shared. ``--repeat``
 repeats everything on a fresh broker; each configuration reports its runs,
 the best and the median.
 
-Cycle latency (window close → published result) needs the daemon: set
-:data:`CYCLE_HOOK` to a callable ``hook(store, topic_map, args) -> dict`` and
-its figures are merged into the output under ``"cycle"``.
+Cycle latency (window close → published result), under ``"cycle"``: a
+:class:`twin.daemon.Daemon` on the plant file closes ``--cycles`` windows of
+simulated readings fed through a fresh broker (see
+:mod:`twin.bench.ingest_cycle`). :data:`CYCLE_HOOK`, when set to a callable
+``hook(store, topic_map, args) -> dict``, replaces that half.
 """
 
 from __future__ import annotations
@@ -112,6 +114,17 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--timeout", type=float, default=300.0, help="give up after [s]")
     parser.add_argument(
         "--no-mosquitto-sub", action="store_true", help="skip the mosquitto_sub comparison"
+    )
+    parser.add_argument(
+        "--cycles",
+        type=int,
+        default=3,
+        help="cycle-latency half: windows closed by a daemon on the plant file (0 = skip)",
+    )
+    parser.add_argument(
+        "--config",
+        default=None,
+        help="plant file for the cycle-latency half (default: configs/demo-u1.toml)",
     )
 
 
@@ -546,7 +559,24 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
     figures["decode_store_messages_per_second"] = _decode_store_rate(
         bench.topic_map, TagStore(bench.store.tags), min(n, 100_000), int(args.topics)
     )
-    figures["cycle"] = (
-        CYCLE_HOOK(bench.store, bench.topic_map, args) if CYCLE_HOOK is not None else None
-    )
+    figures["cycle"] = _cycle_figures(bench, args, queue)
     return figures
+
+
+def _cycle_figures(bench: _Bench, args: argparse.Namespace, queue: int) -> dict[str, Any] | None:
+    """The cycle-latency half: the hook if one is set, else a daemon on a fresh broker."""
+    if CYCLE_HOOK is not None:
+        return CYCLE_HOOK(bench.store, bench.topic_map, args)
+    if int(args.cycles) <= 0:
+        return None
+    from twin.bench.ingest_cycle import DEFAULT_CONFIG, cycle_latency
+
+    with tempfile.TemporaryDirectory(prefix="twin-bench-") as tmp:
+        broker, port, _ = _start_broker(Path(tmp), max(queue, 10_000))
+        try:
+            return cycle_latency(
+                port, int(args.cycles), args.config or DEFAULT_CONFIG, float(args.timeout)
+            )
+        finally:
+            broker.kill()
+            broker.wait()
