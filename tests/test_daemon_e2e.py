@@ -111,8 +111,7 @@ class PlantFeed:
         self.config = daemon.config
         self.clock = daemon.clock
         self.rng = np.random.default_rng(seed)
-        self.client = MqttClient(replace(settings, client_id=f"{settings.client_id}-feed"),
-                                 lambda topic, payload, now: None)
+        self.client = MqttClient(client_settings(settings, "feed"), lambda topic, payload, now: None)
         self.client.start()
         assert self.client.wait_connected(10), self.client.last_error
 
@@ -192,21 +191,58 @@ def scrape(daemon: Daemon) -> Scrape:
         return Scrape(resp.read().decode("utf-8"))
 
 
-def broker_settings(config: Any, broker: Any, **changes: Any) -> MqttSettings:
-    """The config's broker settings pointed at a test broker."""
-    return replace(mqtt_settings_from_config(config, {}), host=broker.host, port=broker.port,
-                   reconnect_min_delay=0.2, reconnect_max_delay=1.0, **changes)
+def broker_settings(config: Any, broker: Any) -> MqttSettings:
+    """The config's broker settings (production reconnect delays) pointed at a test broker."""
+    return replace(mqtt_settings_from_config(config, {}), host=broker.host, port=broker.port)
 
 
-def start_daemon(config: Any, settings: MqttSettings, clock: ManualClock | None = None) -> Daemon:
-    """A started daemon on a manual clock, sharing the test run's reconciler; connected."""
+def client_settings(settings: MqttSettings, name: str) -> MqttSettings:
+    """Settings for a test's own client next to the daemon: own client id, quick reconnects."""
+    return replace(settings, client_id=f"{settings.client_id}-{name}", reconnect_min_delay=0.1,
+                   reconnect_max_delay=0.5)
+
+
+def replace_section(text: str, section: str, body: str) -> str:
+    """TOML ``text`` with the body of ``[section]`` (up to the next header or rule) replaced."""
+    lines = text.splitlines()
+    start = lines.index(f"[{section}]")
+    end = start + 1
+    while end < len(lines) and not lines[end].startswith(("[", "# ---")):
+        end += 1
+    return "\n".join([*lines[: start + 1], body.strip(), "", *lines[end:]]) + "\n"
+
+
+def demo_config_text(broker: str, metrics: str | None = None, **monitoring: str) -> str:
+    """configs/demo-u1.toml with a new ``[broker]`` (and ``[metrics]``) body and changed
+    ``[monitoring]`` keys (TOML values as text, e.g. ``cycle='"2 s"'``).
+
+    The config schema takes metrics ports 1..65535 only (no 0 for "any free port").
+    """
+    text = DEMO_CONFIG.read_text(encoding="utf-8")
+    text = replace_section(text, "broker", broker)
+    if metrics is not None:
+        text = replace_section(text, "metrics", metrics)
+    for key, value in monitoring.items():
+        text, n = re.subn(rf"(?m)^{key} = .*$", f"{key} = {value}", text, count=1)
+        assert n == 1, key
+    return text
+
+
+def start_daemon(config: Any, settings: MqttSettings | None = None, clock: ManualClock | None = None,
+                 connected: bool = True) -> Daemon:
+    """A started daemon on a manual clock, sharing the test run's reconciler.
+
+    ``settings`` None takes the broker from the config (with its password file);
+    ``connected`` waits for the connection.
+    """
     reconciler = shared_reconciler()
     reconciler.reset()
     daemon = Daemon(config, clock=clock or ManualClock(T0), mqtt_settings=settings,
                     options=DaemonOptions(grace_seconds=0.0), reconciler=reconciler)
     daemon.start()
     assert daemon.mqtt is not None
-    assert daemon.mqtt.wait_connected(10), daemon.mqtt.last_error
+    if connected:
+        assert daemon.mqtt.wait_connected(10), daemon.mqtt.last_error
     return daemon
 
 
@@ -215,7 +251,7 @@ class EventLog:
 
     def __init__(self, settings: MqttSettings, topic: str) -> None:
         self.events: list[dict] = []
-        self.client = MqttClient(replace(settings, client_id=f"{settings.client_id}-events"),
+        self.client = MqttClient(client_settings(settings, "events"),
                                  lambda t, payload, now: self.events.append(json.loads(payload)))
         self.client.subscribe([topic], qos=1)
         self.client.start()
