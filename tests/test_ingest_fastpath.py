@@ -65,7 +65,7 @@ def _same(a: float, b: float) -> bool:
     return a == b or (math.isnan(a) and math.isnan(b))
 
 
-@settings(max_examples=800, deadline=None)
+@settings(max_examples=500, deadline=None)
 @given(topic=st.sampled_from(TOPICS), payload=payloads)
 def test_decode_one_matches_decode(topic, payload):
     tm = TopicMap(BINDINGS)

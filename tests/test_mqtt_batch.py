@@ -79,7 +79,7 @@ def test_qos1_stream_exactly_once_in_order_and_all_acknowledged(
     mosquitto_factory, wait_for, batch, protocol
 ):
     broker = mosquitto_factory(extra=BIG_QUEUE)
-    n, n_topics = 20_000, 7
+    n, n_topics = 10_000, 7
     got = Collect()
     settings = _settings(broker, batch, protocol, client_id="sub-b", clean_session=False)
     sub = MqttClient(settings, got)
@@ -174,7 +174,7 @@ def test_mixed_qos_large_payloads_and_v5_properties(mosquitto_factory, wait_for,
 def test_stream_survives_subscriber_restart_without_loss(mosquitto_factory, wait_for, batch):
     """Stop the subscriber mid-stream and resume its session: at-least-once, nothing lost."""
     broker = mosquitto_factory(extra=BIG_QUEUE)
-    n = 20_000
+    n = 10_000
     got = Collect()
     settings = _settings(broker, batch, client_id="sub-r", clean_session=False)
     sub = MqttClient(settings, got)

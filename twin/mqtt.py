@@ -221,6 +221,13 @@ class _BatchingClient(paho.Client):
     Only for the threaded loop (``loop_start``) and automatic acknowledgement;
     everything else (connect, keep-alive, reconnect, TLS, QoS 2, publishing)
     is paho's own code.
+
+    Measured with ``twin bench ingest`` (200 000 QoS 1 JSON messages drained
+    from Mosquitto 2.0.11, paho 2.2, a shared 2-core machine, 3 runs): the
+    whole ingest path (receive, decode, convert, store) at 41 000–66 000
+    messages/s and ~150 000 per CPU second, ``mosquitto_sub`` at
+    34 000–57 000 on the same stream; paho's own receive path at
+    8 000–11 000 (~11 000 per CPU second).
     """
 
     def __init__(
