@@ -163,10 +163,6 @@ def test_daemon_reports_a_refused_connection_and_keeps_running(
         daemon.stop()
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "Daemon._window_values tests `count == 0` (no_data) before `stale`, and with the demo's "
-    "window (30 s) equal to max_age (30 s) a window holding samples is never stale: a gap in "
-    "the readings shows as no_data and twin_stale_tags stays 0"))
 def test_readings_that_stop_are_reported_stale(mosquitto: Any) -> None:
     config = demo_config()
     settings = broker_settings(config, mosquitto)

@@ -189,9 +189,6 @@ def test_twin_demo_runs_with_the_embedded_broker() -> None:
     print(f"demo: {len(cycles)} cycle lines; {m.group(0)}")
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "twin.daemon.log_event formats every float with '.6g', so window_end and time fields "
-    "(Unix seconds, ~1.7e9) are logged as 1.7e+09 for every window"))
 def test_logged_window_end_identifies_the_window(caplog: pytest.LogCaptureFixture) -> None:
     from tests.test_daemon_e2e import T0, ManualClock, shared_reconciler
     from twin.daemon import Daemon, DaemonOptions

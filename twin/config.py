@@ -332,7 +332,7 @@ class MetricsConfig(_Model):
     """``[metrics]``: the Prometheus exposition endpoint."""
 
     address: str = "127.0.0.1"
-    port: int = Field(default=9108, ge=1, le=65535)
+    port: int = Field(default=9108, ge=0, le=65535, description="0 = any free port")
 
 
 class DriftConfig(_Model):

@@ -60,7 +60,7 @@ def log_event(severity: int, event: str, /, **fields: Any) -> None:
     parts = [f"event={event}"]
     for k, v in fields.items():
         if isinstance(v, float):
-            v = f"{v:.6g}"
+            v = repr(v) if abs(v) >= 1e6 else f"{v:.6g}"  # times keep full precision
         s = str(v)
         parts.append(f"{k}={json.dumps(s) if (' ' in s or '=' in s) else s}")
     log.log(severity, " ".join(parts))
@@ -268,8 +268,8 @@ class Daemon:
             try:
                 result = self.run_cycle(next_t)
             except Exception as exc:  # a bad cycle must never stop the daemon
-                log.exception("cycle failed")
                 log_event(logging.ERROR, "cycle_failed", window_end=next_t, error=f"{type(exc).__name__}: {exc}")
+                log.debug("cycle failed", exc_info=True)
             else:
                 if on_result is not None:
                     on_result(result)
@@ -283,10 +283,12 @@ class Daemon:
         excluded: dict[str, str] = {}
         for s in self.config.sensors:
             w = stats.get(s.tag)
-            if w is None or w.count == 0 or w.count == w.n_bad:
-                excluded[s.tag] = "no_data" if w is None or w.count == 0 else "bad_quality"
+            if w is None or (w.count == 0 and not math.isfinite(w.last_time)):
+                excluded[s.tag] = "no_data"  # never heard from
             elif w.stale:
-                excluded[s.tag] = "stale"
+                excluded[s.tag] = "stale"  # heard from before, nothing recent enough
+            elif w.count == 0:
+                excluded[s.tag] = "no_data" if w.n_bad == 0 else "bad_quality"
             elif not math.isfinite(w.mean):
                 excluded[s.tag] = "not_finite"
             else:

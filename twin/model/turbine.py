@@ -16,12 +16,29 @@ from twin.model.core import (
 )
 from twin.properties import PHState
 
+#: Width of the smoothing of the moisture max(0, 1 − x) at the dew line [-].
+MOISTURE_SMOOTHING = 0.002
+
 
 def _moisture(st: PHState) -> tuple[float, float, float]:
-    """Moisture y = max(0, 1 − x) [-] and its derivatives d/dp, d/dh at const h, p."""
-    if st.x != st.x or st.x >= 1.0:
+    """Moisture y ≈ max(0, 1 − x) [-] and its derivatives d/dp, d/dh at const h, p.
+
+    The corner at x = 1 is rounded, y = ε ln(1 + exp((1 − x)/ε)) with
+    ε = MOISTURE_SMOOTHING, so that Newton and Gauss-Newton do not stall on a stage
+    group whose end point sits on the dew line; it adds at most ε ln 2 ≈ 0.14 % moisture
+    there and nothing measurable a few ε away.
+    """
+    if st.x != st.x:
         return 0.0, 0.0, 0.0
-    return 1.0 - st.x, -st.dx_dp, -st.dx_dh
+    eps = MOISTURE_SMOOTHING
+    u = (1.0 - st.x) / eps
+    if u > 30.0:
+        return 1.0 - st.x, -st.dx_dp, -st.dx_dh
+    if u < -30.0:
+        return 0.0, 0.0, 0.0
+    y = eps * math.log1p(math.exp(u))
+    dy_du = 1.0 / (1.0 + math.exp(-u))  # dy/d(1 − x)
+    return y, -dy_du * st.dx_dp, -dy_du * st.dx_dh
 
 
 class TurbineGroup(Equipment):

@@ -32,6 +32,7 @@ their uncertainties by correction calculation for operation and acceptance tests
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -119,6 +120,53 @@ def soft_relation_sigmas(fs: Flowsheet, design: HeatBalance) -> dict[str, tuple[
             out[e.relation("efficiency")] = (0.05 / e.params["efficiency"] * dh / K95, "J/kg")
             out[e.relation("discharge")] = (0.02 * ctx.p(b) / K95, "Pa")
     return out
+
+
+#: Width of the enthalpy band below the dew line over which a thermometer's reading
+#: is blended from T_sat into the superheated branch [J/kg].
+DEW_BAND = 10000.0
+
+
+def sensor_temperature(ctx: Any, stream: str) -> tuple[float, float, float]:
+    """Temperature a thermometer in the stream reads [K], with d/dp [K/Pa] and d/dh [K/(J/kg)].
+
+    T(p, h) has a kink at the dew line (slope 0 in the wet region, 1/c_p when
+    superheated); a least-squares solve that must place a near-saturated
+    extraction on one side or the other then stalls. In the last DEW_BAND of the
+    wet region below h_g the reading is a C¹ cubic Hermite blend from T_sat
+    (slope 0) to the dew point (value T_sat, slope 1/c_p of the saturated vapour);
+    it departs from T_sat by at most 4/27 · DEW_BAND / c_p ≈ 0.15 K, in wet steam only.
+    The bubble line has the same kink (saturated drains, hotwell, deaerator outlet sit on
+    it): the first DEW_BAND above h_f blends from the liquid slope to T_sat (departure
+    at most 4/27 · DEW_BAND / c_p,liquid ≈ 0.07 K). Superheated and liquid states read
+    T(p, h) exactly.
+    """
+    st = ctx.ph(stream)
+    if math.isnan(st.x) or not st.two_phase:  # single phase or supercritical: exact
+        return st.T, st.dT_dp, st.dT_dh
+    p, h = ctx.p(stream), ctx.h(stream)
+    sat = ctx.sat(p)
+    if st.x < 0.5:  # just above the bubble line (saturated drains, hotwell, deaerator outlet)
+        ul = h - sat.h_f
+        if ul >= DEW_BAND:
+            return sat.T, sat.dT_dp, 0.0
+        liq = ctx.water.ph(p, sat.h_f - 0.01 * DEW_BAND)  # just subcooled (IF97 region 1): liquid slope 1/c_p
+        t = ul / DEW_BAND
+        h10, d10 = t**3 - 2 * t**2 + t, 3 * t**2 - 4 * t + 1
+        dT_dh = d10 * liq.dT_dh
+        return (sat.T + h10 * DEW_BAND * liq.dT_dh, sat.dT_dp - dT_dh * sat.dh_f_dp, dT_dh)
+    u = h - sat.h_g
+    if u <= -DEW_BAND:
+        return sat.T, sat.dT_dp, 0.0
+    dew = ctx.water.ph(p, sat.h_g + 0.01 * DEW_BAND)  # just superheated (IF97 region 2): vapour slope 1/c_p
+    slope = dew.dT_dh
+    w = DEW_BAND
+    t = (u + DEW_BAND) / w
+    h11, d11 = t**3 - t**2, 3 * t**2 - 2 * t
+    T = sat.T + h11 * w * slope
+    dT_dh = d11 * slope
+    dT_dp = sat.dT_dp - dT_dh * sat.dh_g_dp
+    return T, dT_dp, dT_dh
 
 
 class PlantSystem:
@@ -242,7 +290,7 @@ class PlantSystem:
 
     def _model_value(self, b: SensorBinding, z: np.ndarray, ctx: Any) -> float:
         if b.kind == "T":
-            return ctx.ph(b.target).T
+            return sensor_temperature(ctx, b.target)[0]
         return float(z[b.target_column])
 
     # ------------------------------------------------------------ equations
@@ -268,9 +316,9 @@ class PlantSystem:
             scales.append(1e5)
         for b in self.sensors:
             if b.kind == "T":
-                st = ctx.ph(b.target)
-                rows.add(f"sensor.{b.tag}", "sensor", z[b.column] - st.T,
-                         {b.column: 1.0, lay.p(b.target): -st.dT_dp, lay.h(b.target): -st.dT_dh}, 10.0)
+                T, dT_dp, dT_dh = sensor_temperature(ctx, b.target)
+                rows.add(f"sensor.{b.tag}", "sensor", z[b.column] - T,
+                         {b.column: 1.0, lay.p(b.target): -dT_dp, lay.h(b.target): -dT_dh}, 10.0)
             else:
                 scale = max(abs(float(self.design.z[b.target_column])) if b.target_column < self.n_model else 300.0, 1.0)
                 rows.add(f"sensor.{b.tag}", "sensor", z[b.column] - z[b.target_column],

@@ -18,6 +18,7 @@ Gross Error Detection*, Gulf (2000), ch. 7–8 (measurement test, serial elimina
 from __future__ import annotations
 
 import math
+import time
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -41,7 +42,7 @@ from twin.result import Estimate, StreamState, TagResult
 #: KPIs whose observability serial elimination must never break.
 PROTECTED_KPIS = ("gross_efficiency", "turbine_heat_rate", "exhaust_quality_ueep")
 
-DEFAULT_OPTIONS = SolveOptions(max_iter=40, step_tol=1e-7, residual_tol=1e-7, objective_tol=1e-9)
+DEFAULT_OPTIONS = SolveOptions(max_iter=40, step_tol=1e-6, residual_tol=1e-6, objective_tol=1e-9)
 
 
 @dataclass(frozen=True)
@@ -83,10 +84,15 @@ class PlantReconciler:
     max_eliminations : int
         Bound on serially eliminated suspects per window (0 disables elimination).
     options : SolveOptions, optional
+    time_budget : float
+        Seconds after which no further restart or elimination is started in a window [s]
+        (a solve under way finishes; the window then reports what it has).
     """
 
     def __init__(self, config: Any, *, flowsheet: Flowsheet | None = None, design: HeatBalance | None = None,
-                 alpha: float = 0.05, max_eliminations: int = 3, options: SolveOptions | None = None) -> None:
+                 alpha: float = 0.05, max_eliminations: int = 3, options: SolveOptions | None = None,
+                 time_budget: float = 5.0) -> None:
+        self.time_budget = float(time_budget)
         self.config = config
         self.fs = flowsheet or Flowsheet.from_config(config)
         self.op = Operation.from_config(config)
@@ -157,6 +163,19 @@ class PlantReconciler:
     def reconcile(self, values: Mapping[str, float], *, excluded: Mapping[str, str] | None = None,
                   z0: np.ndarray | None = None, kpis: Sequence[str] | None = None,
                   pseudo: Mapping[str, float] | None = None) -> PlantReconciliation:
+        """Reconcile one window; see :meth:`_reconcile`. Never raises for bad data or model trouble."""
+        try:
+            return self._reconcile(values, excluded=excluded, z0=z0, kpis=kpis, pseudo=pseudo)
+        except (ValueError, ArithmeticError, SolveError) as exc:  # property range, singular system...
+            self._z_warm = None
+            tags = {t: TagResult(t, b.quantity, measured=float(values.get(t, math.nan)),
+                                 valid=t in values, reason=(excluded or {}).get(t, ""))
+                    for t, b in self.system.sensor_by_tag.items()}
+            return PlantReconciliation("model_error", f"{type(exc).__name__}: {exc}", tags=tags)
+
+    def _reconcile(self, values: Mapping[str, float], *, excluded: Mapping[str, str] | None = None,
+                   z0: np.ndarray | None = None, kpis: Sequence[str] | None = None,
+                   pseudo: Mapping[str, float] | None = None) -> PlantReconciliation:
         """Reconcile one window.
 
         Parameters
@@ -200,10 +219,18 @@ class PlantReconciler:
         V = sig**2
         if z0 is None:
             z0 = self._z_warm if self._z_warm is not None else self.start_point(self._estimate_load(values))
+        started = time.perf_counter()
         res = reconcile(sysm, z0, measured, y, V, options=self.options)
-        if not res.converged and self._z_warm is not None:
-            # a stale warm start (after a load change): restart from the forward model
-            res = reconcile(sysm, self.start_point(self._estimate_load(values)), measured, y, V, options=self.options)
+        fresh = self.start_point(self._estimate_load(values))
+        if not res.converged and time.perf_counter() - started < self.time_budget:
+            # a stale warm start (after a load change): restart from the forward model,
+            # and from the design point as a last resort
+            for start in (fresh, self.system.initial_point(self.design.z)):
+                if start is z0:
+                    continue
+                res = reconcile(sysm, start, measured, y, V, options=self.options)
+                if res.converged or time.perf_counter() - started > self.time_budget:
+                    break
         if not res.converged:
             status = "model_error" if res.status == "model_error" else "not_converged"
             return PlantReconciliation(status, res.message, res.iterations, tags=tags_out)
@@ -211,7 +238,7 @@ class PlantReconciler:
         n_s = len(valid)
         flagged = measurement_test(first.z, self.alpha).flagged_sidak
         eliminated: dict[int, Any] = {}
-        if self.max_eliminations > 0 and np.any(flagged[:n_s]):
+        if self.max_eliminations > 0 and np.any(flagged[:n_s]) and time.perf_counter() - started < self.time_budget:
             soft = set(self._soft_cols.tolist())
             protected = self._protected_cols
 
@@ -221,7 +248,8 @@ class PlantReconciler:
                 return bool(np.all(cls.determined[protected])) if protected.size else True
 
             elim = eliminate_suspects(sysm, first.z_warm, measured, y, V, max_eliminations=self.max_eliminations,
-                                      alpha=self.alpha, criterion="sidak", protected=keep_ok, options=self.options)
+                                      alpha=self.alpha, criterion="sidak", protected=keep_ok, options=self.options,
+                                      restart=fresh)
             if elim.result.converged:
                 res = elim.result
                 eliminated = {e.position: e for e in elim.eliminated}

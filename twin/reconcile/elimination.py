@@ -88,13 +88,17 @@ def _protection_check(protected: Protected) -> Callable[[Classification], bool]:
 def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
                        max_eliminations: int = 3, alpha: float = 0.05,
                        criterion: str = "sidak", protected: Protected = None,
-                       options: SolveOptions | None = None) -> Elimination:
+                       options: SolveOptions | None = None,
+                       restart: np.ndarray | None = None) -> Elimination:
     """Serially eliminate suspect measurements (bounded count, protected observability).
 
     Parameters
     ----------
     system, z0, measured, y, V, options
         As for :func:`twin.reconcile.nonlinear.reconcile`.
+    restart : ndarray, optional
+        A fresh starting point for the re-solves (tried before the previous solution,
+        which the gross error may have pulled far from the consistent state).
     max_eliminations : int
         Upper bound on the number of measurements removed.
     alpha : float
@@ -162,10 +166,15 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
             reason = "every flagged measurement is needed for a protected quantity"
             break
         log.append((int(keep[chosen]), float(res.z[chosen]), float(bias[chosen])))
-        z_start = res.z_warm
+        # the previous solution was pulled by the gross error: a given fresh start point
+        # is tried first, the previous solution second
+        starts = [res.z_warm] if restart is None else [restart, res.z_warm]
         keep = np.delete(keep, chosen)
-        res = reconcile(system, z_start, measured[keep], y[keep], V[np.ix_(keep, keep)],
-                        options=options)
+        for z_start in starts:
+            res = reconcile(system, z_start, measured[keep], y[keep], V[np.ix_(keep, keep)],
+                            options=options)
+            if res.converged:
+                break
     out = []
     for pos, zj, bj in log:
         v = int(measured[pos])

@@ -117,6 +117,13 @@ class SolveOptions:
         How each Gauss-Newton step is solved: a sparse LU of the augmented (KKT)
         system (:mod:`twin.reconcile.kkt`), or the dense projection by pivoted QR of
         the unmeasured block (:mod:`twin.reconcile.linear`), kept as a reference.
+    noise_tol : float
+        A model evaluated through iterative property routines has a residual floor;
+        when the line search can no longer make progress (it fails, or only a step
+        shorter than 1e-3 of the full step is accepted) with the scaled residual below
+        ``noise_tol``, a remaining Gauss-Newton step under 1 % of every measurement's σ
+        and the objective unchanged to ``1e-6`` relative, the iterate is accepted as
+        converged at that floor (the message says so).
     covariance : {"full", "measured", "none"}
         Which covariances the result carries: all of ``cov_z``; only the measured
         block of ``cov_z`` and ``cov_a`` (unmeasured rows/columns NaN); or none
@@ -134,6 +141,7 @@ class SolveOptions:
     rank_tol: float | None = None
     method: str = "sparse"
     covariance: str = "full"
+    noise_tol: float = 1e-4
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
@@ -419,10 +427,22 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
                 accepted = True
                 break
             alpha *= opts.backtrack
+        # at the floor: constraints met to noise_tol and the remaining Gauss-Newton step moves
+        # no measured value by more than 1 % of its σ (statistically negligible)
+        at_floor = (np.max(np.abs(fs)) <= opts.noise_tol
+                    and np.max(np.abs(d[measured]) / vs[measured]) <= 0.01)
         if not accepted:
+            if at_floor:
+                status, message = "converged", f"converged in {it} iterations (at the model's noise floor)"
+                break
             status = "line_search_failed"
             message = "line search failed to reduce the merit function" + (
                 f" (last model error: {last_err})" if last_err else "")
+            break
+        if (alpha < 1e-3 and at_floor and np.max(np.abs(ft / rs)) <= opts.noise_tol
+                and abs(objt - obj) <= 1e-6 * max(1.0, obj)):
+            z, f, J, obj, a = zt, ft, Jt, objt, at
+            status, message = "converged", f"converged in {it} iterations (at the model's noise floor)"
             break
         obj_change = abs(objt - obj)
         small_step = np.max(np.abs(d[tested]) / vs[tested]) <= 100.0 * opts.step_tol
