@@ -22,7 +22,7 @@ def test_check_demo_exits_zero_with_summary(capsys):
     assert "unit: demo-u1" in out
     assert "streams: 52" in out  # 52 [[streams]] tables in configs/demo-u1.toml
     assert "closed_heater 6" in out and "turbine_group 8" in out
-    assert "sensors: 92 (" in out and "power 4" in out
+    assert "sensors: 91 (" in out and "power 4" in out
     assert "broker: 127.0.0.1:1883 MQTT 3.1.1" in out
     assert "metrics: http://127.0.0.1:9108/metrics" in out
 
@@ -60,7 +60,7 @@ def test_report_sections_can_be_appended(monkeypatch, capsys):
     # another report (e.g. redundancy) is one function appended to check.REPORTS
     monkeypatch.setattr(check, "REPORTS", [*check.REPORTS, lambda cfg: [f"extra: {len(cfg.sensors)}"]])
     assert main(["check", str(DEMO)]) == 0
-    assert capsys.readouterr().out.rstrip().endswith("extra: 92")
+    assert capsys.readouterr().out.rstrip().endswith("extra: 91")
 
 
 def test_schema_prints_valid_json(capsys):

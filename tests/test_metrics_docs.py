@@ -9,6 +9,7 @@ from tests.test_deploy import populated_result
 from twin.metrics import MetricsServer
 
 DOC = Path(__file__).resolve().parent.parent / "docs" / "metrics.md"
+README = Path(__file__).resolve().parent.parent / "README.md"
 ROW = re.compile(r"^\| `(twin_[a-z0-9_]+)` \| ([a-z ()]+) \| ([^|]*) \| (.+) \| ([^|]+) \|$")
 UNITS = {
     "_kilograms_per_second": "kg/s",
@@ -22,9 +23,9 @@ UNITS = {
 }
 
 
-def documented() -> dict[str, tuple[str, set[str], str]]:
+def documented(path: Path = DOC) -> dict[str, tuple[str, set[str], str]]:
     rows = {}
-    for line in DOC.read_text().splitlines():
+    for line in path.read_text().splitlines():
         m = ROW.match(line)
         if m:
             labels = set(re.findall(r"`([a-z_]+)`", m.group(3)))
@@ -59,3 +60,8 @@ def test_documented_type_labels_and_unit_match() -> None:
         want = next((u for suffix, u in UNITS.items() if base.endswith(suffix)), None)
         if want is not None:
             assert doc_unit == want, name
+
+
+def test_readme_table_lists_the_same_metrics() -> None:
+    """The README's metric table is the same table (every metric with its meaning)."""
+    assert documented(README) == documented(DOC)
