@@ -116,7 +116,7 @@ def run(args: argparse.Namespace) -> int:
     print("building the model of demo-u1 (design point, reconciliation problem)...", flush=True)
     try:
         daemon = Daemon(config, clock=ScaledClock(start, args.speed), mqtt_settings=settings,
-                        options=DaemonOptions(grace_seconds=config.monitoring.cycle / 2))
+                        options=DaemonOptions(grace_seconds=config.monitoring.cycle))
         simulator = Simulator(config, client=sim_settings, speed=args.speed, rng_seed=args.seed,
                               sample_interval=args.sample_interval)
     except (ValueError, OSError) as exc:
