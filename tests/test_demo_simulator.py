@@ -52,7 +52,7 @@ def test_publishes_every_tag_decodable_to_the_truth_within_noise(mosquitto, wait
     try:
         assert sub.wait_connected(10) and wait_for(lambda: sub.stats().connects == 1)
         # start late in the scenario: the FW-F1 bias is at its full +3 %
-        t0 = 66 * 60.0
+        t0 = 69 * 60.0
         sim = Simulator(
             config, DemoScenario.default(config),
             MqttSettings(port=mosquitto.port, client_id="demo-test-sim", qos=1),
@@ -85,7 +85,7 @@ def test_publishes_every_tag_decodable_to_the_truth_within_noise(mosquitto, wait
             expected = truth.sensors[tag] * (1.0 + truth.state.relative_bias.get(tag, 0.0))
             sigma = sensors[tag].sigma_si(truth.sensors[tag])
             # 5σ: with ~550 Gaussian draws the chance of a false failure is ~3e-4 (normal tail)
-            assert abs(smp.value - expected) < 5 * sigma + 1e-6 * abs(expected), tag
+            assert abs(smp.value - expected) <= 5 * sigma + 1e-6 * abs(expected), tag  # σ = 0 at zero flow
     # the drifting transmitter reads about 3 % above its healthy twin FW-F2 (σ 0.36 %)
     mean = lambda tag: sum(s.value for s in by_tag[tag]) / steps  # noqa: E731
     assert mean("FW-F1") / mean("FW-F2") == pytest.approx(1.03, abs=0.006)

@@ -9,14 +9,14 @@ last value after the final knot.
 The default timeline (:meth:`DemoScenario.default`), simulated minutes:
 
 * 0-10 full load; 10-15 ramp to 75 %; 15-25 plateau; 25-30 ramp back to 100 %.
-* 32-37 the cooling water cools from 20 °C to 6 °C (cold-water episode: the
+* 30-33 the cooling water cools from 20 °C to 6 °C (cold-water episode: the
   back-pressure falls to about 2.8 kPa and the LP exhaust gets wetter, the
-  expansion-line end point passing the 10 % moisture warning), held to 47,
-  back to 20 °C by 52.
-* 55-65 the final feedwater flow transmitter ``FW-F1`` drifts to +3 % of
+  expansion-line end point passing the 10 % moisture warning), held to 55,
+  back to 20 °C by 58.
+* 60-68 the final feedwater flow transmitter ``FW-F1`` drifts to +3 % of
   reading and stays there (a redundant measurement: FW-F2, the main-steam,
   feed-pump suction and condensate flows and the balances all cross-check it).
-* 0-70 the HP group's dry efficiency falls by 2 points (0.860 → 0.840).
+* 0-80 the HP group's dry efficiency falls by 2 points (0.860 → 0.840).
 
 Note that a *high* back-pressure makes the exhaust drier, not wetter; the
 moisture warning is reached with *cold* cooling water (low back-pressure).
@@ -167,7 +167,7 @@ class DemoScenario:
         cold_water_temperature : float
             Cooling-water inlet temperature during the episode [K].
         efficiency_drop : float
-            Fall of the HP dry efficiency over 70 minutes [-].
+            Fall of the HP dry efficiency over 80 minutes [-].
         """
         eq = config.equipment_by_id
         if "hp" not in eq or "condenser" not in eq:
@@ -177,14 +177,16 @@ class DemoScenario:
         eta = float(eq["hp"].params["efficiency"])
         cw = float(eq["condenser"].params["cooling_water_inlet_temperature"])
         m = 60.0
-        episode = (32 * m, 37 * m, 47 * m, 52 * m)
+        # the cold spell is held long enough for the steady-state gate to reopen after its
+        # ramp (generator output follows the back-pressure, so the ramp is a transient)
+        episode = (30 * m, 33 * m, 55 * m, 58 * m)
         return cls(
             load=((0.0, 1.0), (10 * m, 1.0), (15 * m, 0.75), (25 * m, 0.75), (30 * m, 1.0)),
-            hp_efficiency=((0.0, eta), (70 * m, eta - efficiency_drop)),
+            hp_efficiency=((0.0, eta), (80 * m, eta - efficiency_drop)),
             cooling_water_inlet_temperature=(
                 (0.0, cw), (episode[0], cw), (episode[1], cold_water_temperature),
                 (episode[2], cold_water_temperature), (episode[3], cw),
             ),
-            bias={bias_tag: ((0.0, 0.0), (55 * m, 0.0), (65 * m, bias_fraction))},
+            bias={bias_tag: ((0.0, 0.0), (60 * m, 0.0), (68 * m, bias_fraction), (80 * m, bias_fraction))},
             cold_water_episode=episode,
         )
