@@ -19,7 +19,6 @@ from __future__ import annotations
 import functools
 import json
 import re
-import threading
 import urllib.request
 from collections.abc import Iterator, Mapping
 from dataclasses import replace
@@ -31,7 +30,7 @@ import pytest
 
 from tests.conftest import wait_for
 from twin.config import load_config
-from twin.daemon import Daemon, DaemonOptions, mqtt_settings_from_config
+from twin.daemon import Daemon, DaemonOptions, ManualClock, mqtt_settings_from_config
 from twin.demo.plant import noisy_readings, to_engineering
 from twin.demo.scenario import DemoScenario
 from twin.demo.simulator import Truth, TruthModel, encode_messages
@@ -78,19 +77,6 @@ def plant_truth(cw_inlet: float = 20.0 + C0, load: float = 1.0) -> Truth:
     model.scenario = _constant_scenario(cw_inlet, load)
     truth, _ = model.exact(0.0)
     return truth
-
-
-class ManualClock:
-    """The daemon's clock, moved by the test; payload times and window ends share it."""
-
-    def __init__(self, t: float) -> None:
-        self.t = float(t)
-
-    def now(self) -> float:
-        return self.t
-
-    def sleep(self, seconds: float, stop: threading.Event) -> None:
-        stop.wait(0.005)
 
 
 class PlantFeed:

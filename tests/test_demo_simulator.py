@@ -9,33 +9,20 @@ from pathlib import Path
 import pytest
 
 from twin.config import load_config
+from twin.daemon import bindings_from_config
 from twin.demo.scenario import DemoScenario
 from twin.demo.simulator import Simulator
-from twin.ingest.decode import PayloadFormat, TagBinding, TopicMap
+from twin.ingest.decode import TopicMap
 from twin.mqtt import MqttClient, MqttSettings
 
 CONFIG = Path(__file__).resolve().parents[1] / "configs" / "demo-u1.toml"
 START = 1_700_000_000.0  # simulated epoch of scenario time 0
 
 
-def _bindings(config):
-    out = []
-    for s in config.sensors:
-        p = s.payload
-        if p.format == "number":
-            fmt = PayloadFormat("number")
-        else:
-            fmt = PayloadFormat(p.format, p.value, p.timestamp, p.timestamp_format, p.quality,
-                                frozenset(p.good_quality) if p.quality else None)
-        c = s.conversion
-        out.append(TagBinding(s.tag, s.topic, fmt, c.scale, c.offset))
-    return out
-
-
 @pytest.mark.broker
 def test_publishes_every_tag_decodable_to_the_truth_within_noise(mosquitto, wait_for):
     config = load_config(CONFIG)
-    topic_map = TopicMap(_bindings(config))
+    topic_map = TopicMap(bindings_from_config(config))
     samples = []
     lock = threading.Lock()
 

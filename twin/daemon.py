@@ -77,6 +77,19 @@ class SystemClock:
         stop.wait(max(seconds, 0.0))
 
 
+class ManualClock:
+    """A clock moved by its owner (tests, benchmarks): ``now`` returns ``t``; ``sleep`` barely waits."""
+
+    def __init__(self, t: float) -> None:
+        self.t = float(t)
+
+    def now(self) -> float:
+        return self.t
+
+    def sleep(self, seconds: float, stop: threading.Event) -> None:
+        stop.wait(0.005)
+
+
 class ScaledClock:
     """Simulated time running ``speed`` times faster than the wall clock (for the demo)."""
 

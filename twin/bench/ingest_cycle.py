@@ -27,19 +27,6 @@ DEFAULT_CONFIG = Path(__file__).resolve().parents[2] / "configs" / "demo-u1.toml
 T0 = 1_700_000_000.0  # simulated epoch of the first window [s]
 
 
-class _ManualClock:
-    """The daemon's clock, moved by the benchmark (payload times share it)."""
-
-    def __init__(self, t: float) -> None:
-        self.t = float(t)
-
-    def now(self) -> float:
-        return self.t
-
-    def sleep(self, seconds: float, stop: threading.Event) -> None:
-        stop.wait(0.005)
-
-
 class _Arrivals:
     def __init__(self) -> None:
         self.times: list[float] = []
@@ -71,7 +58,7 @@ def cycle_latency(
     """Run ``cycles`` windows through a daemon on the broker at 127.0.0.1:``port``."""
     # the daemon and the plant model are imported here: only this half needs them
     from twin.config import load_config
-    from twin.daemon import Daemon, DaemonOptions, mqtt_settings_from_config
+    from twin.daemon import Daemon, DaemonOptions, ManualClock, mqtt_settings_from_config
     from twin.demo.simulator import Simulator
 
     config = load_config(config_path)
@@ -89,7 +76,7 @@ def cycle_latency(
         password=None,
         client_id="bench-daemon",
     )
-    clock = _ManualClock(T0)
+    clock = ManualClock(T0)
     daemon = Daemon(
         config,
         clock=clock,
