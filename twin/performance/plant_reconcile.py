@@ -217,17 +217,23 @@ class PlantReconciler:
         y = np.concatenate([y_s, y_soft])
         sig = np.concatenate([sig_s, [r.sigma for r in sysm.soft]])
         V = sig**2
+        fresh_cache: list[np.ndarray] = []
+
+        def fresh() -> np.ndarray:
+            """The forward model at the measured load: solved only when a start is needed."""
+            if not fresh_cache:
+                fresh_cache.append(self.start_point(self._estimate_load(values)))
+            return fresh_cache[0]
+
         if z0 is None:
-            z0 = self._z_warm if self._z_warm is not None else self.start_point(self._estimate_load(values))
+            z0 = self._z_warm if self._z_warm is not None else fresh()
         started = time.perf_counter()
         res = reconcile(sysm, z0, measured, y, V, options=self.options)
-        fresh = self.start_point(self._estimate_load(values))
         if not res.converged and time.perf_counter() - started < self.time_budget:
             # a stale warm start (after a load change): restart from the forward model,
             # and from the design point as a last resort
-            for start in (fresh, self.system.initial_point(self.design.z)):
-                if start is z0:
-                    continue
+            starts = ([] if fresh_cache and z0 is fresh_cache[0] else [fresh()])
+            for start in [*starts, self.system.initial_point(self.design.z)]:
                 res = reconcile(sysm, start, measured, y, V, options=self.options)
                 if res.converged or time.perf_counter() - started > self.time_budget:
                     break
@@ -249,7 +255,7 @@ class PlantReconciler:
 
             elim = eliminate_suspects(sysm, first.z_warm, measured, y, V, max_eliminations=self.max_eliminations,
                                       alpha=self.alpha, criterion="sidak", protected=keep_ok, options=self.options,
-                                      restart=fresh)
+                                      restart=fresh())
             if elim.result.converged:
                 res = elim.result
                 eliminated = {e.position: e for e in elim.eliminated}
