@@ -1,0 +1,287 @@
+"""Cross-reference checks of a plant file, run once shapes and types pass.
+
+Ports against the equipment kinds, stream connectivity, sensor targets and
+conversions, performance and monitoring settings; SI conversion of design
+values and parameters. Each problem is a ``(key.path, message)`` pair.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any
+
+from twin import kinds
+from twin.config.types import _to_si
+from twin.units import STANDARD_ATMOSPHERE, Conversion, conversion
+
+if TYPE_CHECKING:
+    from twin.config.schema import EquipmentConfig, PlantConfig
+
+def _ids(items: list[Any], attr: str, section: str, add: Any) -> set[str]:
+    seen: set[str] = set()
+    for item in items:
+        key = getattr(item, attr)
+        if key in seen:
+            add(f"{section}[{key}].{attr}", f"duplicate {attr} {key!r}; expected each {attr} once")
+        seen.add(key)
+    return seen
+
+
+def check_plant(cfg: PlantConfig) -> list[tuple[str, str]]:
+    problems: list[tuple[str, str]] = []
+
+    def add(path: str, msg: str) -> None:
+        problems.append((path, msg))
+
+    u = cfg.unit
+    if u.barometric_pressure is None and u.barometric_tag is not None:
+        u.barometric_pressure = STANDARD_ATMOSPHERE  # fallback while the barometer is stale
+    if not u.name:
+        u.name = u.id
+    baro = u.barometric_pressure
+    streams = _ids(cfg.streams, "id", "streams", add)
+    _ids(cfg.equipment, "id", "equipment", add)
+    for s in cfg.streams:
+        where = f"streams[{s.id}]"
+        design: dict[str, Any] = {}
+        for key, value in s.design.items():
+            if key not in kinds.STREAM_DESIGN_QUANTITIES:
+                add(f"{where}.design.{key}", "unknown design quantity; expected one of "
+                    + ", ".join(kinds.STREAM_DESIGN_QUANTITIES))
+                continue
+            try:
+                design[key] = _to_si(value, kinds.STREAM_DESIGN_QUANTITIES[key], baro)
+            except ValueError as exc:
+                add(f"{where}.design.{key}", str(exc))
+        s.design = design
+        for key in s.held:
+            if key not in s.design:
+                add(f"{where}.held", f"{key!r} has no design value; expected one of the design keys "
+                    f"({', '.join(s.design) or 'none given'})")
+    producers: dict[str, list[str]] = {sid: [] for sid in streams}
+    consumers: dict[str, list[str]] = {sid: [] for sid in streams}
+    for e in cfg.equipment:
+        _check_equipment(e, streams, producers, consumers, baro, add)
+    by_id = cfg.equipment_by_id
+    for e in cfg.equipment:
+        where = f"equipment[{e.id}].params"
+        if e.kind == "pump" and "discharge_pressure" in e.params:
+            fixed = e.params["discharge_pressure"] > 0
+            ref = e.params.get("discharge_reference")
+            if fixed == bool(ref):
+                add(where, "pump needs exactly one of discharge_pressure > 0 or discharge_reference; "
+                    "expected one, got " + ("both" if fixed else "neither"))
+            elif ref and ref not in streams:
+                add(f"{where}.discharge_reference", f"unknown stream {ref!r}; expected a stream id")
+        if e.kind == "generator" and isinstance(e.params.get("turbines"), list):
+            for t in e.params["turbines"]:
+                if by_id.get(t) is None or by_id[t].kind not in ("turbine_group", "exhaust_loss"):
+                    add(f"{where}.turbines", f"{t!r} is not turbine_group or exhaust_loss equipment; "
+                        "expected ids of turbine_group/exhaust_loss equipment")
+    for sid in streams:
+        p, c = producers[sid], consumers[sid]
+        if len(p) != 1 or len(c) != 1:
+            where = f"streams[{sid}]"
+            if not p:
+                add(where, "dangling stream: no outlet port produces it; expected exactly one producer")
+            elif len(p) > 1:
+                add(where, f"produced by {len(p)} outlet ports ({', '.join(p)}); expected exactly one")
+            if not c:
+                add(where, "dangling stream: no inlet port consumes it; expected exactly one consumer")
+            elif len(c) > 1:
+                add(where, f"consumed by {len(c)} inlet ports ({', '.join(c)}); expected exactly one")
+    _check_performance(cfg, streams, add)
+    _check_sensors(cfg, streams, baro, add)
+    _check_services(cfg, add)
+    return problems
+
+
+def _check_equipment(e: EquipmentConfig, streams: set[str], producers: dict[str, list[str]],
+                     consumers: dict[str, list[str]], baro: float | None, add: Any) -> None:
+    where = f"equipment[{e.id}]"
+    kind = kinds.KINDS.get(e.kind)
+    if kind is None:
+        add(f"{where}.kind", f"unknown equipment kind {e.kind!r}; expected one of {', '.join(kinds.KINDS)}")
+        return
+    ports: dict[str, str | list[str]] = {}
+    for name, value in e.ports.items():
+        try:
+            port = kind.port(name)
+        except KeyError:
+            add(f"{where}.ports.{name}", f"unknown port for kind {kind.name}; expected one of "
+                + (", ".join(p.name for p in kind.ports) or "no ports"))
+            continue
+        if port.many:
+            ok = isinstance(value, list) and all(isinstance(v, str) for v in value)
+            expected = "a list of stream ids"
+        else:
+            ok = isinstance(value, str)
+            expected = "one stream id (a string)"
+        if not ok:
+            add(f"{where}.ports.{name}", f"wrong type {type(value).__name__} ({value!r}); expected {expected}")
+        else:
+            ports[name] = value
+        refs = [value] if isinstance(value, str) else value if isinstance(value, list) else []
+        for sid in (r for r in refs if isinstance(r, str)):  # counted anyway: no follow-on errors
+            if sid not in streams:
+                add(f"{where}.ports.{name}", f"unknown stream {sid!r}; expected a declared stream id")
+                continue
+            (producers if port.direction == "out" else consumers)[sid].append(f"{e.id}.{name}")
+    for port in kind.ports:
+        if not port.optional and port.name not in e.ports:
+            add(f"{where}.ports", f"missing port {port.name!r} of kind {kind.name}; expected "
+                + ("a list of stream ids" if port.many else "a stream id"))
+    e.ports = ports
+    params: dict[str, Any] = {}
+    for name, value in e.params.items():
+        try:
+            param = kind.param(name)
+        except KeyError:
+            add(f"{where}.params.{name}", f"unknown parameter for kind {kind.name}; expected one of "
+                + (", ".join(p.name for p in kind.params) or "no parameters"))
+            continue
+        try:
+            params[name] = _param_value(value, param.dimension, baro)
+        except ValueError as exc:
+            add(f"{where}.params.{name}", str(exc))
+    for param in kind.params:
+        if param.name in params or param.name in e.params:
+            continue
+        if param.required:
+            add(f"{where}.params", f"missing required parameter {param.name!r} of kind {kind.name}; "
+                f"expected a {param.dimension} value" + (f" ({param.doc})" if param.doc else ""))
+        else:
+            params[param.name] = param.default
+    e.params = params
+
+
+def _param_value(value: Any, dimension: str, baro: float | None) -> float | str | list[str]:
+    if dimension == "text":
+        if not isinstance(value, str):
+            raise ValueError(f"wrong type {type(value).__name__} ({value!r}); expected a string")
+        return value
+    if dimension == "text_list":
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise ValueError(f"wrong type ({value!r}); expected a list of strings")
+        return list(value)
+    return _to_si(value, dimension, baro)
+
+
+def _check_performance(cfg: PlantConfig, streams: set[str], add: Any) -> None:
+    perf = cfg.performance
+    for key in ("load_stream", "throttle_stream"):
+        sid = getattr(perf, key)
+        if sid is not None and sid not in streams:
+            add(f"performance.{key}", f"unknown stream {sid!r}; expected a stream id")
+    load = cfg.streams_by_id.get(perf.load_stream or "")
+    if load is not None and "mass_flow" not in load.design:
+        add("performance.load_stream", f"stream {load.id!r} has no design mass_flow; expected the "
+            "stream whose design flow defines full load")
+    valve = perf.throttle_valve
+    if valve is not None:
+        e = cfg.equipment_by_id.get(valve)
+        if e is None or e.kind != "throttle_valve":
+            add("performance.throttle_valve", f"{valve!r} is not throttle_valve equipment; "
+                "expected the id of throttle_valve equipment")
+    last = 0.0
+    for i, (load, eff) in enumerate(perf.boiler_efficiency):
+        if not (load > last and 0.0 < eff <= 1.0):
+            add(f"performance.boiler_efficiency[{i}]", f"[{load}, {eff}] out of order or range; expected "
+                "[load_fraction, efficiency] with load increasing and efficiency in (0, 1]")
+        last = max(last, load)
+    _ids(cfg.sections, "id", "sections", add)
+    for sec in cfg.sections:
+        for key in ("inlet", "outlet"):
+            if getattr(sec, key) not in streams:
+                add(f"sections[{sec.id}].{key}", f"unknown stream {getattr(sec, key)!r}; expected a stream id")
+
+
+_FITS = {"power": ("generator", "pump"), "cooling_water_inlet_temperature": ("condenser",),
+         "cooling_water_outlet_temperature": ("condenser",)}
+
+
+def _check_sensors(cfg: PlantConfig, streams: set[str], baro: float | None, add: Any) -> None:
+    _ids(cfg.sensors, "tag", "sensors", add)
+    by_id = cfg.equipment_by_id
+    locations: dict[tuple[str, ...], str] = {}
+    for s in cfg.sensors:
+        where = f"sensors[{s.tag}]"
+        dimension, target = kinds.MEASURED_QUANTITIES[s.quantity]
+        given = [k for k in ("stream", "equipment") if getattr(s, k) is not None]
+        if target == "unit":
+            if given:
+                add(f"{where}.{given[0]}", f"{s.quantity} belongs to the unit; expected no stream or equipment")
+        elif given != [target]:
+            add(where, f"{s.quantity} is measured on a {target}; expected exactly one key {target!r}"
+                + (f" (got {', '.join(given)})" if given else ""))
+        elif target == "stream" and s.stream not in streams:
+            add(f"{where}.stream", f"unknown stream {s.stream!r}; expected a stream id")
+        elif target == "equipment":
+            e = by_id.get(s.equipment or "")
+            if e is None:
+                add(f"{where}.equipment", f"unknown equipment {s.equipment!r}; expected an equipment id")
+            elif e.kind not in _FITS[s.quantity]:
+                add(f"{where}.equipment", f"{s.quantity} cannot be measured on {e.kind} {e.id!r}; "
+                    f"expected equipment of kind {' or '.join(_FITS[s.quantity])}")
+        try:
+            conv = conversion(s.unit, dimension, barometric_pressure=baro)
+            if s.gauge is not None and s.gauge != conv.gauge:
+                if dimension != "pressure" or conv.gauge:
+                    raise ValueError(f"gauge = {str(s.gauge).lower()} contradicts unit {s.unit!r}; "
+                                     "expected gauge only on pressures in an absolute-style unit")
+                if baro is None:
+                    raise ValueError("gauge pressure needs a barometric pressure; expected "
+                                     "[unit].barometric_pressure or barometric_tag")
+                conv = Conversion(conv.scale, baro, True)
+            s._conversion = conv
+        except ValueError as exc:
+            add(f"{where}.unit", str(exc))
+        if s.gauge is None:
+            s.gauge = s._conversion.gauge if s._conversion else False
+        for key in ("span", "range"):
+            pair = getattr(s, key)
+            if pair is not None and not pair[0] < pair[1]:
+                add(f"{where}.{key}", f"{list(pair)} is empty; expected [low, high] with low < high")
+        if s.uncertainty.kind == "percent_of_span" and s.span is None:
+            add(f"{where}.span", "missing; expected [low, high] for a percent_of_span uncertainty")
+        if not s.topic or s.topic.startswith("/") or "+" in s.topic or "#" in s.topic:
+            add(f"{where}.topic", f"{s.topic!r} is not a publishable topic; expected no leading '/' "
+                "and no wildcards")
+        loc: tuple[str, ...] = {"number": (s.topic,), "batch": (s.topic, s.tag)}.get(
+            s.payload.format, (s.topic, s.payload.value))
+        if loc in locations:
+            add(f"{where}.topic", f"{s.topic!r} {' '.join(loc[1:])} is already mapped to "
+                f"{locations[loc]!r}; expected one sensor per topic and payload location")
+        locations.setdefault(loc, s.tag)
+    tag = cfg.unit.barometric_tag
+    if tag is not None:
+        sensor = cfg.sensors_by_tag.get(tag)
+        if sensor is None or sensor.quantity != "barometric_pressure":
+            add("unit.barometric_tag", f"{tag!r} is not a barometric_pressure sensor; expected the tag "
+                "of a sensor with quantity = \"barometric_pressure\"")
+
+
+def _check_services(cfg: PlantConfig, add: Any) -> None:
+    b, m, uid = cfg.broker, cfg.monitoring, cfg.unit.id
+    if b.port is None:
+        b.port = 8883 if b.tls is not None else 1883
+    b.client_id = b.client_id or f"twin-{uid}"
+    b.republish_prefix = (b.republish_prefix or f"twin/{uid}").rstrip("/")
+    b.events_topic = b.events_topic or f"{b.republish_prefix}/events"
+    if b.password_file is not None and b.password_env is not None:
+        add("broker", "both password_file and password_env given; expected at most one")
+    if (b.password_file or b.password_env) and not b.username:
+        add("broker.username", "missing while a password is configured; expected a user name")
+    if b.tls is not None and (b.tls.cert_file is None) != (b.tls.key_file is None):
+        add("broker.tls", "cert_file and key_file must come together; expected both or neither")
+    if m.window is None:
+        m.window = m.cycle
+    tags = cfg.sensors_by_tag
+    for tag in m.steady_signals:
+        if tag not in tags:
+            add("monitoring.steady_signals", f"unknown sensor tag {tag!r}; expected a configured sensor tag")
+    if not all(0.0 < x <= 1.0 for x in m.steady_lambdas):
+        add("monitoring.steady_lambdas", f"{list(m.steady_lambdas)}; expected three filter factors in (0, 1]")
+    if not 0.0 < m.exhaust_moisture_warn < m.exhaust_moisture_alarm < 1.0:
+        add("monitoring.exhaust_moisture_alarm", "warn and alarm limits out of order; expected "
+            "0 < exhaust_moisture_warn < exhaust_moisture_alarm < 1")
+
