@@ -72,3 +72,20 @@ def test_promtool_accepts_the_live_exposition(running_daemon: Any) -> None:
     flagged = {m.group(1) for ln in problems if (m := lint.match(ln))}
     assert flagged == set(re.findall(r"^# TYPE (twin_\w+_kilograms_per_second) ", text, re.M))
     assert proc.returncode in (0, 3)  # 3: lint findings only (1 would be a parse error)
+
+
+def test_kpi_availability_stays_in_every_scrape_and_reads_zero_after_a_failed_window(
+        running_daemon: Any, prometheus_factory: Any) -> None:
+    daemon = running_daemon
+    n_kpis = len(daemon.cycle.kpi_names)
+    prom = prometheus_factory([f"127.0.0.1:{daemon.metrics.port}"])
+    ok = prom.wait_for_result('count(twin_kpi_available{job="twin"} == 1)')
+    assert int(float(ok[0]["value"][1])) == sum(e.available for e in daemon.current().kpis.values())
+    # a window far past the last reading: every tag stale, nothing to reconcile
+    failed = daemon.run_cycle(T0 + 10.0 * 3 + 3600.0)
+    assert failed.reconcile_status == "insufficient_data"
+    # the alert expression `twin_kpi_available == 0` must see every KPI, not an empty set
+    zero = prom.wait_for_result(f'count(twin_kpi_available{{job="twin"}} == 0) == {n_kpis}')
+    assert int(float(zero[0]["value"][1])) == n_kpis
+    # ... while the value itself is gone (no stale number): Prometheus marks the series stale
+    prom.wait_for_result('absent(twin_gross_efficiency_ratio{job="twin"})')

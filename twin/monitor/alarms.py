@@ -41,8 +41,9 @@ from __future__ import annotations
 import itertools
 import math
 from collections import deque
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 NORMAL = "normal"
 PENDING = "pending"
@@ -191,6 +192,20 @@ class ThresholdAlarm:
         self.since: float | None = None  # time the current state was entered
         self.missing_since: float | None = None
         self.last_time: float | None = None
+
+    def snapshot(self) -> dict[str, Any]:
+        """State and timers as a JSON-able dict (see :meth:`restore`)."""
+        return {"state": self.state, "since": self.since, "missing_since": self.missing_since,
+                "last_time": self.last_time}
+
+    def restore(self, snap: Mapping[str, Any]) -> None:
+        """Take back a :meth:`snapshot`; ValueError on an unknown state."""
+        state = snap.get("state")
+        if state not in STATES:
+            raise ValueError(f"alarm {self.name!r}: unknown state {state!r}; expected one of {', '.join(STATES)}")
+        self.state = str(state)
+        self.since, self.missing_since, self.last_time = (
+            None if snap.get(k) is None else float(snap[k]) for k in ("since", "missing_since", "last_time"))
 
     @property
     def raised(self) -> bool:
@@ -364,6 +379,18 @@ class GradedAlarm:
         for lv in self.levels.values():
             lv.reset()
 
+    def snapshot(self) -> dict[str, Any]:
+        """Every level's state and timers (JSON-able)."""
+        return {k: lv.snapshot() for k, lv in self.levels.items()}
+
+    def restore(self, snap: Mapping[str, Any]) -> None:
+        """Take back a :meth:`snapshot`; levels it does not name start normal."""
+        for k, lv in self.levels.items():
+            if k in snap:
+                lv.restore(snap[k])
+            else:
+                lv.reset()
+
 
 def exhaust_moisture_alarm(
     name: str = "exhaust_moisture",
@@ -460,6 +487,13 @@ class LevelAlarm:
     def reset(self) -> None:
         self.alarm.reset()
 
+    def snapshot(self) -> dict[str, Any]:
+        """State and timers (JSON-able)."""
+        return self.alarm.snapshot()
+
+    def restore(self, snap: Mapping[str, Any]) -> None:
+        self.alarm.restore(snap)
+
 
 class SuspectTracker:
     """Per-tag suspect-instrument alarms with persistence across steady windows.
@@ -506,6 +540,19 @@ class SuspectTracker:
         self._history: dict[str, deque[bool]] = {}
         self._clean_run: dict[str, int] = {}
         self._raised: set[str] = set()
+
+    def snapshot(self) -> dict[str, Any]:
+        """Per-tag history, clean runs and raised alarms (JSON-able)."""
+        return {"history": {t: [bool(b) for b in h] for t, h in self._history.items()},
+                "clean_run": dict(self._clean_run), "raised": sorted(self._raised)}
+
+    def restore(self, snap: Mapping[str, Any]) -> None:
+        """Take back a :meth:`snapshot`."""
+        self.reset()
+        for tag, hist in dict(snap.get("history", {})).items():
+            self._history[str(tag)] = deque((bool(b) for b in hist), maxlen=self.window)
+        self._clean_run = {str(t): int(n) for t, n in dict(snap.get("clean_run", {})).items()}
+        self._raised = {str(t) for t in snap.get("raised", [])}
 
     @property
     def raised(self) -> frozenset[str]:

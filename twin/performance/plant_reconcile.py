@@ -159,6 +159,19 @@ class PlantReconciler:
         """Forget the warm start (e.g. after a unit trip)."""
         self._z_warm = None
 
+    @property
+    def warm_start(self) -> np.ndarray | None:
+        """The last converged solution, the next window's starting point (None: none yet)."""
+        return None if self._z_warm is None else self._z_warm.copy()
+
+    @warm_start.setter
+    def warm_start(self, z: Sequence[float] | np.ndarray | None) -> None:
+        if z is None:
+            self._z_warm = None
+            return
+        arr = np.asarray(z, dtype=float)
+        self._z_warm = arr.copy() if arr.shape == (self.system.n_vars,) and np.all(np.isfinite(arr)) else None
+
     # ------------------------------------------------------------------ main
     def reconcile(self, values: Mapping[str, float], *, excluded: Mapping[str, str] | None = None,
                   z0: np.ndarray | None = None, kpis: Sequence[str] | None = None,

@@ -1,0 +1,352 @@
+"""One unit's per-window pipeline: window statistics in, one immutable result out.
+
+:class:`UnitCycle` holds everything between "a window of tag statistics" and
+"one :class:`twin.result.CycleResult`": validity of each tag, the steady-state
+gate, plant reconciliation (warm start), gross-error tests, KPIs with
+uncertainty, expected performance at the present load, heat-rate deviation by
+cause, alarms, suspect persistence and drift charts. It has no MQTT, clock,
+HTTP or files inside: the live daemon feeds it from the tag store every cycle,
+the back-fill feeds it from history files, and both get the same numbers for
+the same windows.
+
+Its state (warm start, gate, alarms, suspects, drift) is one JSON-able value,
+:meth:`UnitCycle.snapshot`, which :meth:`UnitCycle.restore` takes back, so a
+restarted daemon resumes where it stopped and a test can replay it.
+
+Right, or marked: every KPI the plant defines is present in every result; a
+window that did not converge (or had too little data) carries its status and
+no KPI value (``available`` false), never a stale number.
+
+Advisory monitoring only: nothing here trips, interlocks or operates equipment.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+from twin.config import PlantConfig
+from twin.ingest.store import WindowStats
+from twin.model.solve import Operation, SolveError, solve_design
+from twin.monitor import (
+    DriftBank,
+    DriftSettings,
+    LevelAlarm,
+    SteadyStateDetector,
+    SuspectTracker,
+    Transition,
+    exhaust_moisture_alarm,
+    suppression_reason,
+)
+from twin.performance.expected import Deviation, ExpectedModel, actual_conditions
+from twin.performance.plant_reconcile import PlantReconciler, PlantReconciliation
+from twin.result import AlarmView, CycleResult, DriftView, Estimate, InputStats, TagResult
+
+#: KPIs whose deviation from expected feeds the drift charts.
+DRIFT_KPIS = ("section_efficiency.HP", "section_efficiency.IP", "section_efficiency.LP", "turbine_heat_rate")
+
+#: Version of :meth:`UnitCycle.snapshot`'s layout; a snapshot of another version is not restored.
+SNAPSHOT_VERSION = 1
+
+
+@dataclass(frozen=True)
+class CycleOptions:
+    """Policy knobs of the per-window pipeline that are not plant configuration."""
+
+    deviation_every: int = 6  # steady windows between heat-rate deviation accounting runs
+    max_eliminations: int = 3  # bound on serially eliminated suspects per window
+    alpha: float = 0.05  # family-wise significance of the measurement test (Šidák) [-]
+    pressure_mode: str = "sliding"
+
+
+@dataclass(frozen=True)
+class WindowInput:
+    """One window, as the tag store (live) or a history reader (back-fill) sees it.
+
+    Attributes
+    ----------
+    t_end : float
+        Window end, Unix time [s].
+    window_seconds : float
+        Window length [s]; the window is ``[t_end - window_seconds, t_end)``.
+    stats : mapping of str to WindowStats
+        Statistics of every tag over the window (SI).
+    gate_stats : mapping of str to WindowStats
+        Statistics of the steady-state key signals over the last, non-overlapping
+        cycle ``[t_end - cycle, t_end)``; they feed the steady-state gate.
+    inputs : InputStats, optional
+        Cumulative input counters at window close (live only); the pipeline fills
+        in ``stale_tags`` itself.
+    """
+
+    t_end: float
+    window_seconds: float
+    stats: Mapping[str, WindowStats]
+    gate_stats: Mapping[str, WindowStats] = field(default_factory=dict)
+    inputs: InputStats | None = None
+
+
+@dataclass(frozen=True)
+class CycleOutput:
+    """What one window produced: the result, the alarm transitions, and notes for the log."""
+
+    result: CycleResult
+    transitions: list[Transition]
+    notes: list[tuple[str, dict[str, Any]]] = field(default_factory=list)  # (event, fields)
+    reconcile_seconds: float = math.nan
+
+
+def window_values(config: PlantConfig, stats: Mapping[str, WindowStats]) -> tuple[dict[str, float], dict[str, str]]:
+    """Window means of the valid tags [SI] and the reason each other tag is left out.
+
+    Reasons: ``no_data`` (never heard from, or nothing in the window), ``stale``
+    (heard from before, nothing recent enough), ``bad_quality``, ``not_finite``.
+    Gauge pressures were converted with the configured barometric pressure; when
+    the unit has a live barometer its reading replaces it.
+    """
+    values: dict[str, float] = {}
+    excluded: dict[str, str] = {}
+    for s in config.sensors:
+        w = stats.get(s.tag)
+        if w is None or (w.count == 0 and not math.isfinite(w.last_time)):
+            excluded[s.tag] = "no_data"
+        elif w.stale:
+            excluded[s.tag] = "stale"
+        elif w.count == 0:
+            excluded[s.tag] = "no_data" if w.n_bad == 0 else "bad_quality"
+        elif not math.isfinite(w.mean):
+            excluded[s.tag] = "not_finite"
+        else:
+            values[s.tag] = float(w.mean)
+    baro_tag = config.unit.barometric_tag
+    if baro_tag and baro_tag in values and config.unit.barometric_pressure is not None:
+        delta = values[baro_tag] - float(config.unit.barometric_pressure)
+        for s in config.sensors:
+            if s.tag in values and s.gauge and s.quantity == "pressure":
+                values[s.tag] += delta
+    return values, excluded
+
+
+class UnitCycle:
+    """The per-window pipeline of one unit.
+
+    Parameters
+    ----------
+    config : PlantConfig
+    reconciler : PlantReconciler, optional
+        Reuse a built reconciler (tests, benchmarks).
+    options : CycleOptions, optional
+    """
+
+    def __init__(self, config: PlantConfig, *, reconciler: PlantReconciler | None = None,
+                 options: CycleOptions | None = None) -> None:
+        from twin.model.flowsheet import Flowsheet
+
+        self.config = config
+        self.options = options or CycleOptions()
+        mon = config.monitoring
+        self.cycle_seconds = float(mon.cycle)
+        self.window_seconds = float(mon.window or mon.cycle)
+        fs = reconciler.fs if reconciler else Flowsheet.from_config(config)
+        op = Operation.from_config(config)
+        design = reconciler.design if reconciler else solve_design(fs, op)
+        self.reconciler = reconciler or PlantReconciler(config, flowsheet=fs, design=design, alpha=self.options.alpha,
+                                                        max_eliminations=self.options.max_eliminations)
+        # gross-error tests and elimination run in every window, steady or not
+        self.reconciler.max_eliminations = self.options.max_eliminations
+        self.expected_model = ExpectedModel(fs, op, design, self.reconciler.settings, self.options.pressure_mode)
+        self.fs, self.op = fs, op
+        self.kpi_names = tuple(d.name for d in self.reconciler.kpi_defs)
+        self.steady = SteadyStateDetector(mon.steady_signals, mon.steady_lambdas, mon.steady_critical_r,
+                                          hold_seconds=float(mon.steady_hold)) if mon.steady_signals else None
+        self.moisture_alarm = exhaust_moisture_alarm(
+            warning=mon.exhaust_moisture_warn, alarm=mon.exhaust_moisture_alarm, deadband=mon.alarm_deadband,
+            on_delay=mon.on_delay, off_delay=mon.off_delay, unavailable_after=10 * self.cycle_seconds)
+        self.efficiency_alarms = {
+            s.id: LevelAlarm(f"efficiency_{s.id}", mon.efficiency_margin, deadband=mon.efficiency_margin / 4,
+                             on_delay=mon.on_delay, off_delay=mon.off_delay)
+            for s in self.reconciler.settings.sections
+        }
+        self.suspects = SuspectTracker(mon.suspect_persistence)
+        self.drift = self._drift_bank()
+        self._steady_windows = 0
+        self._deviation: Deviation | None = None
+
+    # ------------------------------------------------------------------ set-up
+    def _drift_bank(self) -> DriftBank:
+        """Drift charts on actual − expected, σ from the design-point KPI uncertainty."""
+        from twin.performance.redundancy import redundancy
+
+        mon = self.config.monitoring.drift
+        try:
+            rr = redundancy(self.config, self.reconciler)
+            sig = {name: u / 1.96 for name, ok, u, _ in rr.kpis if ok and math.isfinite(u) and u > 0}
+        except (SolveError, ValueError):
+            sig = {}
+        settings = {}
+        for k in DRIFT_KPIS:
+            if k in sig:
+                settings[k] = DriftSettings(0.0, sig[k], mon.ewma_lambda, mon.ewma_L, mon.cusum_k, mon.cusum_h)
+        return DriftBank(settings)
+
+    # ------------------------------------------------------------------ one window
+    def run(self, window: WindowInput) -> CycleOutput:
+        """Process one window; never raises for bad data or model trouble."""
+        started = time.perf_counter()
+        t_end = float(window.t_end)
+        notes: list[tuple[str, dict[str, Any]]] = []
+        values, excluded = window_values(self.config, window.stats)
+        verdict = None
+        if self.steady is not None:
+            g = window.gate_stats
+            verdict = self.steady.update({t: g[t].mean if t in g and g[t].count else math.nan
+                                          for t in self.steady.signals}, t_end)
+        steady = bool(verdict.steady) if verdict is not None else True
+        t_rec = time.perf_counter()
+        rec = self.reconciler.reconcile(values, excluded=excluded)
+        t_rec = time.perf_counter() - t_rec
+        kpis = self._kpis(rec)
+        load = _value(kpis, "load_fraction")
+        expected: dict[str, float] = {}
+        deviation = None
+        if rec.converged and math.isfinite(load):
+            cw = self._cooling_water_inlet(rec)
+            try:
+                ref, expected = self.expected_model.expected(min(max(load, 0.2), 1.2), cw)
+                if steady and (self._deviation is None or self._steady_windows % self.options.deviation_every == 0):
+                    self._deviation = self.expected_model.deviation(
+                        ref, expected, actual_conditions(rec, self.fs, self.op, self.reconciler.settings), cw)
+                deviation = self._deviation
+            except (SolveError, ValueError) as exc:
+                notes.append(("expected_model_failed", {"window_end": t_end, "error": str(exc)}))
+        if steady:
+            self._steady_windows += 1
+        transitions = self._update_monitors(t_end, steady, load, rec, kpis, expected)
+        hr_dev = math.nan
+        if math.isfinite(_value(kpis, "turbine_heat_rate")) and "turbine_heat_rate" in expected:
+            hr_dev = _value(kpis, "turbine_heat_rate") - expected["turbine_heat_rate"]
+        by_cause = dict(deviation.by_cause) if deviation is not None else {}
+        result = CycleResult(
+            unit_id=self.config.unit.id, window_start=t_end - window.window_seconds, window_end=t_end,
+            steady=steady, steady_status=verdict.status if verdict is not None else "steady",
+            steady_r={k: float(v) for k, v in (verdict.r if verdict is not None else {}).items()},
+            reconcile_status=rec.status, reconcile_message=rec.message, iterations=rec.iterations,
+            global_test=rec.global_test, global_test_dof=rec.dof, global_test_p_value=rec.p_value,
+            tags=self._tags(rec, window.stats, values, excluded), streams=dict(rec.streams), kpis=kpis,
+            expected=expected, heat_rate_deviation=hr_dev, heat_rate_deviation_by_cause=by_cause,
+            alarms=self._alarm_views(), drift=self._drift_views(),
+            inputs=replace(window.inputs or InputStats(),
+                           stale_tags=tuple(sorted(t for t, r in excluded.items() if r == "stale"))),
+            depends_on=tuple(rec.depends_on), compute_seconds=time.perf_counter() - started,
+        )
+        if not rec.converged:
+            notes.append(("reconcile_failed", {"window_end": t_end, "status": rec.status, "message": rec.message}))
+        return CycleOutput(result, transitions, notes, t_rec)
+
+    def _kpis(self, rec: PlantReconciliation) -> dict[str, Estimate]:
+        """Every KPI of the plant, unavailable where the window gave no value."""
+        got = rec.kpis if rec.converged else {}
+        return {name: got.get(name, Estimate()) for name in self.kpi_names}
+
+    def _tags(self, rec: PlantReconciliation, stats: Mapping[str, WindowStats], values: Mapping[str, float],
+              excluded: Mapping[str, str]) -> dict[str, TagResult]:
+        tags = {}
+        for s in self.config.sensors:
+            w = stats.get(s.tag)
+            base = rec.tags.get(s.tag) or TagResult(s.tag, s.quantity, valid=s.tag in values,
+                                                   reason=excluded.get(s.tag, ""),
+                                                   measured=values.get(s.tag, math.nan))
+            if w is not None:
+                base = replace(base, spread=w.std, count=w.count, age_seconds=w.age,
+                               measured=values.get(s.tag, base.measured))
+            tags[s.tag] = base
+        return tags
+
+    def _cooling_water_inlet(self, rec: PlantReconciliation) -> float | None:
+        cols = self.reconciler.system.cooling_water_columns
+        if not cols or rec.z is None:
+            return None
+        v = float(rec.z[next(iter(cols.values()))[0]])
+        return v if math.isfinite(v) else None
+
+    def _update_monitors(self, t: float, steady: bool, load: float, rec: PlantReconciliation,
+                         kpis: Mapping[str, Estimate], expected: Mapping[str, float]) -> list[Transition]:
+        """Alarms, suspect persistence and drift; they act only on steady windows above the minimum load."""
+        mon = self.config.monitoring
+        suppress = suppression_reason(steady, load if math.isfinite(load) else None, mon.min_load)
+        out: list[Transition] = []
+        out += self.moisture_alarm.update(_value(kpis, "exhaust_moisture_elep"), t, suppress)
+        for sec, alarm in self.efficiency_alarms.items():
+            out += alarm.update(_value(kpis, f"section_efficiency.{sec}"),
+                                expected.get(f"section_efficiency.{sec}", math.nan), t, suppress)
+        if rec.converged:
+            tested = [tag for tag, tr in rec.tags.items() if tr.valid]
+            out += self.suspects.update(rec.suspects, t, steady=steady and suppress is None, tested=tested)
+        if len(self.drift):
+            devs = {k: _value(kpis, k) - expected.get(k, math.nan) for k in DRIFT_KPIS}
+            self.drift.update({k: v for k, v in devs.items() if k in self.drift.statuses()},
+                              steady and suppress is None, t)
+        return out
+
+    def _alarm_views(self) -> dict[str, AlarmView]:
+        views = {}
+        m = self.moisture_alarm
+        sev = m.severity or ""
+        states = m.states
+        state = states[sev] if sev else states.get("warning", "normal")
+        views[m.name] = AlarmView(m.name, state, sev, math.nan, bool(sev))
+        for sec, a in self.efficiency_alarms.items():
+            views[f"efficiency_{sec}"] = AlarmView(f"efficiency_{sec}", a.state, "warning" if a.raised else "",
+                                                   math.nan, a.raised)
+        for tag in sorted(self.suspects.raised):
+            views[f"suspect_{tag}"] = AlarmView(f"suspect_{tag}", "active", "suspect", math.nan, True)
+        return views
+
+    def _drift_views(self) -> dict[str, DriftView]:
+        return {name: DriftView(name, st.ewma, st.ewma_lower, st.ewma_upper, st.cusum_high, st.cusum_low,
+                                bool(st.alarm), st.direction)
+                for name, st in self.drift.statuses().items()}
+
+    # ------------------------------------------------------------------ state
+    def snapshot(self) -> dict[str, Any]:
+        """The pipeline's state as one JSON-able value (see :meth:`restore`)."""
+        z = self.reconciler.warm_start
+        return {
+            "version": SNAPSHOT_VERSION,
+            "unit_id": self.config.unit.id,
+            "steady_windows": self._steady_windows,
+            "warm_start": None if z is None else [float(v) if math.isfinite(v) else None for v in z],
+            "steady": self.steady.snapshot() if self.steady is not None and hasattr(self.steady, "snapshot") else None,
+            "moisture_alarm": self.moisture_alarm.snapshot(),
+            "efficiency_alarms": {k: a.snapshot() for k, a in self.efficiency_alarms.items()},
+            "suspects": self.suspects.snapshot(),
+            "drift": self.drift.snapshot() if hasattr(self.drift, "snapshot") else None,
+        }
+
+    def restore(self, snap: Mapping[str, Any]) -> None:
+        """Resume from a :meth:`snapshot`; ValueError if it is of another version or unit."""
+        if snap.get("version") != SNAPSHOT_VERSION:
+            raise ValueError(f"state snapshot version {snap.get('version')!r}; expected {SNAPSHOT_VERSION}")
+        if snap.get("unit_id") != self.config.unit.id:
+            raise ValueError(f"state snapshot of unit {snap.get('unit_id')!r}; expected {self.config.unit.id!r}")
+        self._steady_windows = int(snap.get("steady_windows", 0))
+        self._deviation = None
+        z = snap.get("warm_start")
+        self.reconciler.warm_start = None if z is None else [math.nan if v is None else float(v) for v in z]
+        if snap.get("steady") is not None and self.steady is not None and hasattr(self.steady, "restore"):
+            self.steady.restore(snap["steady"])
+        self.moisture_alarm.restore(snap["moisture_alarm"])
+        for k, a in self.efficiency_alarms.items():
+            if k in snap.get("efficiency_alarms", {}):
+                a.restore(snap["efficiency_alarms"][k])
+        self.suspects.restore(snap["suspects"])
+        if snap.get("drift") is not None and hasattr(self.drift, "restore"):
+            self.drift.restore(snap["drift"])
+
+
+def _value(kpis: Mapping[str, Estimate], name: str) -> float:
+    e = kpis.get(name)
+    return e.value if e is not None and e.available else math.nan
