@@ -122,7 +122,8 @@ def mqtt_settings_from_config(config: PlantConfig, environ: Mapping[str, str]) -
                                environ=environ)
     tls = b.tls
     return MqttSettings(
-        host=b.host, port=int(b.port), protocol=b.protocol, client_id=b.client_id, keepalive=int(b.keepalive),
+        host=b.host, port=int(b.port or (8883 if b.tls else 1883)), protocol=b.protocol,
+        client_id=b.client_id or f"twin-{config.unit.id}", keepalive=int(b.keepalive),
         tls=tls is not None,
         tls_ca=str(tls.ca_file) if tls and tls.ca_file else None,
         tls_cert=str(tls.cert_file) if tls and tls.cert_file else None,
@@ -291,7 +292,7 @@ class Daemon:
     def _publish(self, result: CycleResult, transitions: list[Transition]) -> None:
         if self.mqtt is None or not self.options.republish:
             return
-        prefix = self.config.broker.republish_prefix
+        prefix = self.config.broker.republish_prefix or f"twin/{result.unit_id}"
         ts = result.window_end
         for name, e in result.kpis.items():
             if e.available:
@@ -309,7 +310,7 @@ class Daemon:
                  "kj_per_kwh": result.heat_rate_deviation * 3600.0,
                  "by_cause": {k: v for k, v in result.heat_rate_deviation_by_cause.items() if math.isfinite(v)}}))
         for tr in transitions:
-            self.mqtt.publish(self.config.broker.events_topic, json.dumps(
+            self.mqtt.publish(self.config.broker.events_topic or f"{prefix}/events", json.dumps(
                 {"ts": tr.time, "unit_id": result.unit_id, "alarm": tr.alarm, "level": tr.level, "from": tr.old,
                  "to": tr.new, "value": tr.value if math.isfinite(tr.value) else None, "reason": tr.reason,
                  "advisory": True}))
