@@ -12,6 +12,9 @@ import importlib
 import os
 import sys
 
+from twin import __version__
+from twin.commands._text import HelpFormatter, uniform_metavars
+
 # command name -> (module, one-line help)
 COMMANDS: dict[str, tuple[str, str]] = {
     "check": ("twin.commands.check", "validate a plant config and print a summary"),
@@ -30,9 +33,10 @@ def build_parser() -> argparse.ArgumentParser:
         description="Live digital twin of a steam power plant's water-steam cycle "
         "(advisory monitoring only).",
     )
+    parser.add_argument("--version", action="version", version=f"twin {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, (module_name, help_text) in COMMANDS.items():
-        p = sub.add_parser(name, help=help_text, description=help_text)
+        p = sub.add_parser(name, help=help_text, description=help_text, formatter_class=HelpFormatter)
         try:
             module = importlib.import_module(module_name)
         except ModuleNotFoundError as exc:
@@ -41,8 +45,19 @@ def build_parser() -> argparse.ArgumentParser:
             p.set_defaults(_unavailable=name)
             continue
         module.add_arguments(p)
+        _polish(p)
         p.set_defaults(_run=module.run)
     return parser
+
+
+def _polish(parser: argparse.ArgumentParser) -> None:
+    """One help style for a command and its sub-commands: defaults shown, upper-case metavars."""
+    uniform_metavars(parser)
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for child in action.choices.values():
+                child.formatter_class = HelpFormatter
+                _polish(child)
 
 
 def main(argv: list[str] | None = None) -> int:

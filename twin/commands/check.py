@@ -15,6 +15,7 @@ import sys
 from collections import Counter
 from collections.abc import Callable
 
+from twin.commands._text import no_negative_zero
 from twin.config import ConfigError, PlantConfig, load_config
 
 Report = Callable[[PlantConfig], list[str]]
@@ -79,5 +80,5 @@ def run(args: argparse.Namespace) -> int:
     for report in REPORTS[:1] if getattr(args, "summary_only", False) else REPORTS:
         print()
         for line in report(cfg):
-            print(line)
+            print(no_negative_zero(line))
     return 0

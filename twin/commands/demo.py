@@ -40,7 +40,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--sample-interval", type=float, default=5.0,
                         help="simulated seconds between instrument readings (default 5)")
     parser.add_argument("--seed", type=int, default=1, help="noise seed (default 1)")
-    parser.add_argument("--log-level", default="WARNING", choices=("DEBUG", "INFO", "WARNING", "ERROR"))
+    parser.add_argument("--log-level", default="WARNING", choices=("DEBUG", "INFO", "WARNING", "ERROR"),
+                        help="log level of the daemon's messages on stderr")
 
 
 def _fmt(result: Any, sim_start: float) -> str:

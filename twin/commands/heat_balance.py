@@ -7,6 +7,8 @@ import json
 import sys
 from typing import TYPE_CHECKING, Any
 
+from twin.commands._text import print_text
+
 if TYPE_CHECKING:  # heavy imports (CoolProp) happen only when the command runs
     from twin.model.solve import HeatBalance
 
@@ -39,19 +41,44 @@ def solve(config: Any, load: float = 1.0, pressure_mode: str = "sliding") -> tup
     return design, result
 
 
+# JSON keys carry their unit spelled out, as the metric names do; values are SI.
+# Ratios (efficiencies, quality, moisture, load, cleanliness) have no suffix.
+_HEATER_KEYS = {"ttd": "ttd_kelvin", "dca": "dca_kelvin", "temperature_rise": "temperature_rise_kelvin",
+                "extraction_flow": "extraction_flow_kilograms_per_second"}
+_CONDENSER_KEYS = {"pressure": "pressure_pascals", "saturation_temperature": "saturation_temperature_kelvin",
+                   "itd": "itd_kelvin", "ttd": "ttd_kelvin", "lmtd": "lmtd_kelvin", "duty": "duty_watts",
+                   "ua": "ua_watts_per_kelvin", "u": "u_watts_per_square_metre_kelvin",
+                   "cleanliness": "cleanliness"}
+
+
+def _num(v: Any) -> Any:
+    """Floats without negative zero (``-0.0 + 0.0 == 0.0``); other values unchanged."""
+    return v + 0.0 if isinstance(v, float) else v
+
+
+def _renamed(d: dict[str, Any], names: dict[str, str]) -> dict[str, Any]:
+    return {names.get(k, k): _num(v) for k, v in d.items()}
+
+
 def stream_table(hb: HeatBalance) -> dict[str, dict[str, float]]:
-    """Per stream m [kg/s], p [Pa], T [K], h [J/kg], x [-] (NaN when single phase)."""
+    """Per stream mass flow [kg/s], pressure [Pa], temperature [K], enthalpy [J/kg], quality [-] (NaN single phase)."""
     ctx = hb.context()
     table = {}
     for sid in hb.flowsheet.layout.streams:
         st = ctx.ph(sid)
         x = st.x if st.two_phase else float("nan")
-        table[sid] = {"m": ctx.m(sid), "p": ctx.p(sid), "T": st.T, "h": st.h, "x": x}
+        table[sid] = {"mass_flow_kilograms_per_second": _num(ctx.m(sid)), "pressure_pascals": _num(ctx.p(sid)),
+                      "temperature_kelvin": _num(st.T), "enthalpy_joules_per_kilogram": _num(st.h),
+                      "quality": _num(x)}
     return table
 
 
-def report(config: Any, hb: HeatBalance) -> dict[str, Any]:
-    """The heat balance as one JSON-ready dict (SI units; names carry the unit where not SI-obvious)."""
+def report(config: Any, hb: HeatBalance, design: HeatBalance | None = None) -> dict[str, Any]:
+    """The heat balance as one JSON-ready dict (SI values; keys name the unit, ratios bare).
+
+    ``newton_iterations`` counts every Newton iteration spent from a cold start: the
+    design solve (when ``design`` is given) plus the solve of this operating point.
+    """
     from twin.performance.kpi import CyclePerformanceSettings, cycle_kpis
     from twin.properties import FORMULATION
 
@@ -60,39 +87,42 @@ def report(config: Any, hb: HeatBalance) -> dict[str, Any]:
     equipment: dict[str, dict[str, float]] = {}
     for e in hb.flowsheet.equipment:
         if hasattr(e, "power") and callable(e.power):
-            equipment[e.id] = {"power_watts": e.power(ctx)}
+            equipment[e.id] = {"power_watts": _num(e.power(ctx))}
         elif hasattr(e, "duty"):
-            equipment[e.id] = {"duty_watts": e.duty(ctx)}
+            equipment[e.id] = {"duty_watts": _num(e.duty(ctx))}
     for name in hb.flowsheet.layout.extras:
         eid, what = name.split(".", 1)
-        equipment.setdefault(eid, {})[f"{what}_watts"] = float(hb.z[hb.flowsheet.layout.extra(name)])
+        equipment.setdefault(eid, {})[f"{what}_watts"] = _num(float(hb.z[hb.flowsheet.layout.extra(name)]))
+    design_iterations = design.info.iterations if design is not None else 0
     return {
         "unit_id": config.unit.id,
         "formulation": FORMULATION,
         "load_fraction": hb.load,
         "pressure_mode": hb.pressure_mode,
-        "newton_iterations": hb.info.iterations,
-        "gross_power_watts": k["gross_power"],
-        "net_power_watts": k["net_power"],
-        "auxiliary_power_watts": k["auxiliary_power"],
-        "heat_input_watts": k["heat_input"],
+        "newton_iterations": design_iterations + hb.info.iterations,
+        "newton_iterations_design": design_iterations,
+        "newton_iterations_operating_point": hb.info.iterations,
+        "gross_power_watts": _num(k["gross_power"]),
+        "net_power_watts": _num(k["net_power"]),
+        "auxiliary_power_watts": _num(k["auxiliary_power"]),
+        "heat_input_watts": _num(k["heat_input"]),
         "gross_efficiency": k["gross_efficiency"],
         "net_efficiency": k["net_efficiency"],
         "turbine_heat_rate": k["turbine_heat_rate"],
-        "turbine_heat_rate_kj_per_kwh": k["turbine_heat_rate_kj_per_kwh"],
-        "turbine_heat_rate_btu_per_kwh": k["turbine_heat_rate_btu_per_kwh"],
-        "net_heat_rate_kj_per_kwh": k["net_heat_rate_kj_per_kwh"],
-        "plant_heat_rate_kj_per_kwh": k["plant_heat_rate_kj_per_kwh"],
+        "turbine_heat_rate_kilojoules_per_kilowatt_hour": k["turbine_heat_rate_kj_per_kwh"],
+        "turbine_heat_rate_btu_per_kilowatt_hour": k["turbine_heat_rate_btu_per_kwh"],
+        "net_heat_rate_kilojoules_per_kilowatt_hour": k["net_heat_rate_kj_per_kwh"],
+        "plant_heat_rate_kilojoules_per_kilowatt_hour": k["plant_heat_rate_kj_per_kwh"],
         "boiler_efficiency": k["boiler_efficiency"],
         "exhaust_moisture_elep": k.get("exhaust_moisture_elep"),
         "exhaust_quality_elep": k.get("exhaust_quality_elep"),
         "exhaust_moisture_ueep": k.get("exhaust_moisture_ueep"),
         "exhaust_quality_ueep": k.get("exhaust_quality_ueep"),
-        "exhaust_loss_joules_per_kilogram": k.get("exhaust_loss"),
+        "exhaust_loss_joules_per_kilogram": _num(k.get("exhaust_loss")),
         "section_efficiency": k["section_efficiency"],
-        "extraction_flow_kg_per_s": k["extraction_flow"],
-        "heaters": k["heaters"],
-        "condensers": k["condensers"],
+        "extraction_flow_kilograms_per_second": {h: _num(v) for h, v in k["extraction_flow"].items()},
+        "heaters": {h: _renamed(v, _HEATER_KEYS) for h, v in k["heaters"].items()},
+        "condensers": {c: _renamed(v, _CONDENSER_KEYS) for c, v in k["condensers"].items()},
         "equipment": equipment,
         "streams": stream_table(hb),
     }
@@ -104,8 +134,9 @@ def _print_text(r: dict[str, Any]) -> None:
     w(f"{CAUTION}\n\n")
     w(f"{'stream':<14} {'m kg/s':>9} {'p kPa':>10} {'T °C':>8} {'h kJ/kg':>9} {'x':>6}\n")
     for sid, s in r["streams"].items():
-        x = "" if s["x"] != s["x"] else f"{s['x']:.4f}"
-        w(f"{sid:<14} {s['m']:9.3f} {s['p'] / 1e3:10.2f} {s['T'] - 273.15:8.2f} {s['h'] / 1e3:9.2f} {x:>6}\n")
+        x = "" if s["quality"] != s["quality"] else f"{s['quality']:.4f}"
+        w(f"{sid:<14} {s['mass_flow_kilograms_per_second']:9.3f} {s['pressure_pascals'] / 1e3:10.2f} "
+          f"{s['temperature_kelvin'] - 273.15:8.2f} {s['enthalpy_joules_per_kilogram'] / 1e3:9.2f} {x:>6}\n")
     w("\nequipment\n")
     for eid, vals in r["equipment"].items():
         w(f"  {eid:<18} " + "  ".join(f"{k.removesuffix('_watts')} {v / 1e6:9.3f} MW" for k, v in vals.items()) + "\n")
@@ -114,16 +145,20 @@ def _print_text(r: dict[str, Any]) -> None:
     w(f"  net power              {r['net_power_watts'] / 1e6:9.3f} MW\n")
     w(f"  heat input             {r['heat_input_watts'] / 1e6:9.3f} MW\n")
     w(f"  gross / net efficiency {r['gross_efficiency']:.4f} / {r['net_efficiency']:.4f}\n")
-    w(f"  turbine heat rate      {r['turbine_heat_rate_kj_per_kwh']:9.1f} kJ/kWh  ({r['turbine_heat_rate_btu_per_kwh']:.1f} Btu/kWh)\n")
-    w(f"  plant heat rate (fuel) {r['plant_heat_rate_kj_per_kwh']:9.1f} kJ/kWh  (boiler efficiency {r['boiler_efficiency']:.3f})\n")
+    w(f"  turbine heat rate      {r['turbine_heat_rate_kilojoules_per_kilowatt_hour']:9.1f} kJ/kWh  "
+      f"({r['turbine_heat_rate_btu_per_kilowatt_hour']:.1f} Btu/kWh)\n")
+    w(f"  plant heat rate (fuel) {r['plant_heat_rate_kilojoules_per_kilowatt_hour']:9.1f} kJ/kWh  "
+      f"(boiler efficiency {r['boiler_efficiency']:.3f})\n")
     for sec, eta in r["section_efficiency"].items():
         w(f"  section efficiency {sec:<8} {eta:.4f}\n")
     if r["exhaust_quality_elep"] is not None:
         w(f"  exhaust quality ELEP / UEEP {r['exhaust_quality_elep']:.4f} / {r['exhaust_quality_ueep']:.4f}\n")
     for hid, h in r["heaters"].items():
-        w(f"  {hid:<6} TTD {h['ttd']:6.2f} K  DCA {h['dca']:5.2f} K  rise {h['temperature_rise']:6.2f} K  extraction {h['extraction_flow']:7.3f} kg/s\n")
+        w(f"  {hid:<6} TTD {h['ttd_kelvin']:6.2f} K  DCA {h['dca_kelvin']:5.2f} K  rise {h['temperature_rise_kelvin']:6.2f} K  "
+          f"extraction {h['extraction_flow_kilograms_per_second']:7.3f} kg/s\n")
     for cid, c in r["condensers"].items():
-        w(f"  {cid} p {c['pressure'] / 1e3:.3f} kPa  ITD {c['itd']:.2f} K  TTD {c['ttd']:.2f} K  LMTD {c['lmtd']:.2f} K  cleanliness {c['cleanliness']:.3f}\n")
+        w(f"  {cid} p {c['pressure_pascals'] / 1e3:.3f} kPa  ITD {c['itd_kelvin']:.2f} K  TTD {c['ttd_kelvin']:.2f} K  "
+          f"LMTD {c['lmtd_kelvin']:.2f} K  cleanliness {c['cleanliness']:.3f}\n")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -142,13 +177,13 @@ def run(args: argparse.Namespace) -> int:
         print(f"{args.config}: performance.load_stream: missing; expected the stream whose flow sets the load", file=sys.stderr)
         return 1
     try:
-        _, hb = solve(config, args.load, args.pressure)
+        design, hb = solve(config, args.load, args.pressure)
     except (SolveError, ValueError) as exc:
         print(f"twin heat-balance: {args.config}: {exc}", file=sys.stderr)
         return 1
-    r = report(config, hb)
+    r = report(config, hb, design)
     if args.json:
         print(json.dumps(r, indent=1, allow_nan=True))
     else:
-        _print_text(r)
+        print_text(_print_text, r)
     return 0

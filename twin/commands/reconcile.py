@@ -33,7 +33,7 @@ _KPI_DISPLAY = {
 
 
 def _num(x: float) -> float | None:
-    return float(x) if isinstance(x, float | int) and math.isfinite(x) else None
+    return float(x) + 0.0 if isinstance(x, float | int) and math.isfinite(x) else None  # + 0.0: no -0.0
 
 
 def report(config: Any, vf: Any, rec: Any, reconciler: Any) -> dict[str, Any]:
@@ -153,5 +153,7 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(r, indent=1))
     else:
-        _print_text(r)
+        from twin.commands._text import print_text
+
+        print_text(_print_text, r)
     return 0 if rec.converged else 1

@@ -66,6 +66,11 @@ def redundancy(config: Any, reconciler: PlantReconciler | None = None) -> Redund
     return RedundancyReport("converged", rec.dof, zc, tuple(tags), kpis)
 
 
+# A bias beyond this many standard uncertainties is a broken instrument (caught by the
+# valid-range check), not something the balances detect: reported as "never". [common practice]
+PRACTICAL_MDB_SIGMA = 100.0
+
+
 def report_lines(r: RedundancyReport) -> list[str]:
     """The report as text lines for ``twin check``."""
     if r.status != "converged":
@@ -75,13 +80,17 @@ def report_lines(r: RedundancyReport) -> list[str]:
         f"|z| > {r.sidak_critical:.2f} (Šidák, 5 % family-wise)",
         f"  {'tag':<12} {'unit':<7} {'redund.':>7} {'σ':>10} {'MDB90 σ':>8} {'MDB90':>10}",
     ]
+    def checkable(t: TagRedundancy) -> bool:
+        return math.isfinite(t.mdb_sigma) and t.mdb_sigma <= PRACTICAL_MDB_SIGMA
+
     for t in r.tags:
-        mdb = "never" if not math.isfinite(t.mdb) else f"{t.mdb:10.4g}"
-        mdb_s = "-" if not math.isfinite(t.mdb_sigma) else f"{t.mdb_sigma:8.2f}"
+        mdb = f"{t.mdb:10.4g}" if checkable(t) else "never"
+        mdb_s = f"{t.mdb_sigma:8.2f}" if checkable(t) else "-"
         lines.append(f"  {t.tag:<12} {t.unit:<7} {t.redundancy:7.3f} {t.sigma:10.4g} {mdb_s:>8} {mdb:>10}")
-    lonely = [t.tag for t in r.tags if t.redundancy <= 1e-6]
+    lonely = [t.tag for t in r.tags if not checkable(t)]
     if lonely:
-        lines.append(f"  not checkable by the balances (one more instrument would make them redundant): {', '.join(lonely)}")
+        lines.append(f"  not checkable by the balances (redundancy 0, or a detectable bias past {PRACTICAL_MDB_SIGMA:.0f} σ; "
+                     f"one more instrument would make them redundant): {', '.join(lonely)}")
     lines.append("expected KPI uncertainty at the design point (95 %)")
     for name, ok, u, unit in r.kpis:
         if not ok:
