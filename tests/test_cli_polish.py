@@ -13,7 +13,12 @@ import pytest
 import twin
 from twin.cli import COMMANDS, build_parser, main
 from twin.commands._text import no_negative_zero
-from twin.performance.redundancy import PRACTICAL_MDB_SIGMA, RedundancyReport, TagRedundancy, report_lines
+from twin.performance.redundancy import (
+    PRACTICAL_MDB_SIGMA,
+    RedundancyReport,
+    TagRedundancy,
+    report_lines,
+)
 
 DEMO = Path(__file__).resolve().parent.parent / "configs" / "demo-u1.toml"
 
