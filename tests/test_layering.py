@@ -41,6 +41,7 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
 SIDEWAYS_ALLOWED: dict[tuple[str, str], str] = {
     ("twin.config", "twin.units"): "the schema converts plant units to SI once, at load",
     ("twin.config", "twin.kinds"): "the schema validates equipment against the kinds table",
+    ("twin.cli", "twin.commands"): "one help style for every command (twin.commands._text)",
 }
 
 # Packages that import nothing from twin except themselves.
