@@ -91,7 +91,8 @@ def test_demo_values_in_si_and_defaults_filled():
     assert 90 <= len(cfg.sensors) <= 110
     assert cfg.unit.barometric_tag == "AMB-PB1"
     assert cfg.monitoring.min_load == pytest.approx(0.40)
-    assert cfg.monitoring.steady_hold == 120.0
+    assert cfg.monitoring.steady_hold == 20.0
+    assert cfg.monitoring.steady_lambdas == (0.5, 0.3, 0.3)
     ms = cfg.sensors_by_tag["HP-MS-P2"]
     assert ms.gauge and ms.conversion.to_si(161.0) == pytest.approx(161e5 + 101325.0)
 
@@ -123,6 +124,8 @@ def test_defaults():
     m = cfg.monitoring
     assert m.cycle == 10.0 and m.window == 10.0
     assert m.steady_lambdas == (0.2, 0.1, 0.1)  # Cao & Rhinehart (1995)
+    assert (m.steady_critical_r, m.steady_exit_r, m.steady_warmup) == (2.0, 3.0, 5)
+    assert (m.steady_frozen_fraction, m.steady_frozen_windows) == (0.01, 3)
     assert (m.exhaust_moisture_warn, m.exhaust_moisture_alarm) == (0.10, 0.12)  # common practice
     assert cfg.equipment_by_id["pump"].params["drive_efficiency"] == 1.0
     assert cfg.equipment_by_id["pump"].params["discharge_reference"] == ""
@@ -412,5 +415,7 @@ def test_monitoring_checks():
     assert "plant.toml: monitoring.steady_signals: unknown sensor tag 'XX'; expected a configured sensor tag" in lines
     assert any(x.startswith("plant.toml: monitoring.steady_lambdas:") for x in lines)
     assert any(x.startswith("plant.toml: monitoring.exhaust_moisture_alarm: warn and alarm") for x in lines)
+    data["monitoring"] = {"steady_critical_r": 2.5, "steady_exit_r": 2.0}
+    assert one(data) == "plant.toml: monitoring.steady_exit_r: 2.0; expected at least steady_critical_r (2.5)"
     data["monitoring"] = {"window": "1 min", "drift": {"ewma_lambda": 0}}
     assert re.search(r"monitoring\.drift\.ewma_lambda: wrong value 0; expected greater than 0", one(data))

@@ -39,6 +39,7 @@ from twin.monitor import (
     SuspectTracker,
     Transition,
     exhaust_moisture_alarm,
+    steady_detector,
     suppression_reason,
 )
 from twin.performance.expected import Deviation, ExpectedModel, actual_conditions
@@ -160,8 +161,7 @@ class UnitCycle:
         self.expected_model = ExpectedModel(fs, op, design, self.reconciler.settings, self.options.pressure_mode)
         self.fs, self.op = fs, op
         self.kpi_names = tuple(d.name for d in self.reconciler.kpi_defs)
-        self.steady = SteadyStateDetector(mon.steady_signals, mon.steady_lambdas, mon.steady_critical_r,
-                                          hold_seconds=float(mon.steady_hold)) if mon.steady_signals else None
+        self.steady: SteadyStateDetector | None = steady_detector(config)
         self.moisture_alarm = exhaust_moisture_alarm(
             warning=mon.exhaust_moisture_warn, alarm=mon.exhaust_moisture_alarm, deadband=mon.alarm_deadband,
             on_delay=mon.on_delay, off_delay=mon.off_delay, unavailable_after=10 * self.cycle_seconds)
@@ -203,7 +203,8 @@ class UnitCycle:
         if self.steady is not None:
             g = window.gate_stats
             verdict = self.steady.update({t: g[t].mean if t in g and g[t].count else math.nan
-                                          for t in self.steady.signals}, t_end)
+                                          for t in self.steady.signals}, t_end,
+                                         spreads={t: g[t].std for t in self.steady.signals if t in g})
         steady = bool(verdict.steady) if verdict is not None else True
         t_rec = time.perf_counter()
         rec = self.reconciler.reconcile(values, excluded=excluded)

@@ -47,6 +47,7 @@ from prometheus_client.openmetrics.exposition import generate_latest as generate
 from twin import __version__
 from twin.kinds import MEASURED_QUANTITIES
 from twin.monitor.alarms import STATES as ALARM_STATES
+from twin.monitor.steady import STEADY_STATUSES
 from twin.result import RECONCILE_STATUSES, CycleResult
 
 Provider = Callable[[], CycleResult | None]
@@ -197,7 +198,7 @@ def _window(f: _Families, r: CycleResult) -> None:
     for tag, value in r.steady_r.items():
         f.gauge("twin_steady_state_r", "Cao & Rhinehart R-statistic of a key signal (about 1 at steady state), dimensionless", value, tag=tag)
     f.enum("twin_steady_state_status", "Steady-state verdict, 1 for the current one", "status",
-           r.steady_status, ("steady", "transient", "insufficient_data"))
+           r.steady_status, STEADY_STATUSES)
     f.enum("twin_reconcile_status", "Reconciliation outcome of the latest window, 1 for the current status",
            "status", r.reconcile_status, RECONCILE_STATUSES)
     f.gauge("twin_reconcile_iterations", "Solver iterations of the latest reconciliation", r.iterations)

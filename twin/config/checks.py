@@ -281,6 +281,8 @@ def _check_services(cfg: PlantConfig, add: Any) -> None:
             add("monitoring.steady_signals", f"unknown sensor tag {tag!r}; expected a configured sensor tag")
     if not all(0.0 < x <= 1.0 for x in m.steady_lambdas):
         add("monitoring.steady_lambdas", f"{list(m.steady_lambdas)}; expected three filter factors in (0, 1]")
+    if m.steady_exit_r < m.steady_critical_r:
+        add("monitoring.steady_exit_r", f"{m.steady_exit_r}; expected at least steady_critical_r ({m.steady_critical_r})")
     if not 0.0 < m.exhaust_moisture_warn < m.exhaust_moisture_alarm < 1.0:
         add("monitoring.exhaust_moisture_alarm", "warn and alarm limits out of order; expected "
             "0 < exhaust_moisture_warn < exhaust_moisture_alarm < 1")

@@ -256,8 +256,16 @@ class MonitoringConfig(_Model):
 
     ``steady_critical_r`` defaults to 2.0, a deliberately tolerant threshold for
     the Cao & Rhinehart (1995) R statistic: simulated white noise gives critical
-    values of about 1.4 (95 %) to 1.7 (99 %); real plant signals are coloured,
-    so a stricter value flags steady periods as transient. The exhaust-moisture
+    values of about 1.4 (95 %) to 1.7 (99 %) with the default filters; real
+    plant signals are coloured, so a stricter value flags steady periods as
+    transient. A steady plant turns transient only when some R reaches
+    ``steady_exit_r`` (hysteresis). A key signal whose spread stays at or below
+    ``steady_frozen_fraction`` × its stated standard uncertainty for
+    ``steady_frozen_windows`` windows is frozen and keeps the gate closed.
+    ``steady_warmup`` is the number of windows per signal before its R counts.
+    ``steady_jump_critical`` is the step test's threshold (about the 10⁻⁴ point
+    for white noise with the default filters, Monte Carlo).
+    The exhaust-moisture
     limits (10 % warn, 12 % alarm) are common practice, not a manufacturer
     limit; plant procedures and manufacturers' limits take precedence.
     """
@@ -267,7 +275,12 @@ class MonitoringConfig(_Model):
     steady_signals: list[str] = Field(default_factory=list)
     steady_lambdas: tuple[float, float, float] = (0.2, 0.1, 0.1)
     steady_critical_r: float = Field(default=2.0, gt=1.0)
+    steady_exit_r: float = Field(default=3.0, gt=1.0, description="R at which a steady plant turns transient")
     steady_hold: Duration = 60.0
+    steady_warmup: int = Field(default=5, ge=1, description="windows before a signal's R counts")
+    steady_frozen_fraction: Ratio = Field(default=0.01, ge=0.0, description="noise floor / stated σ")
+    steady_frozen_windows: int = Field(default=3, ge=1, description="flat windows before frozen")
+    steady_jump_critical: float | None = Field(default=25.0, gt=0.0, description="step test; none = off")
     min_load: Ratio = 0.3
     exhaust_moisture_warn: Ratio = 0.10
     exhaust_moisture_alarm: Ratio = 0.12

@@ -33,18 +33,22 @@ from twin.monitor.drift import (
     ewma_step,
 )
 from twin.monitor.steady import (
+    FROZEN,
     INSUFFICIENT_DATA,
     STEADY,
+    STEADY_STATUSES,
     TRANSIENT,
     RStatistic,
     SteadyStateDetector,
     SteadyVerdict,
     r_statistic_series,
+    steady_detector,
 )
 
 __all__ = [
     "ACTIVE",
     "CLEARING",
+    "FROZEN",
     "HIGH",
     "INSUFFICIENT_DATA",
     "LOW",
@@ -52,6 +56,7 @@ __all__ = [
     "PENDING",
     "STATES",
     "STEADY",
+    "STEADY_STATUSES",
     "SUPPRESSED",
     "TRANSIENT",
     "UNAVAILABLE",
@@ -73,5 +78,6 @@ __all__ = [
     "ewma_step",
     "exhaust_moisture_alarm",
     "r_statistic_series",
+    "steady_detector",
     "suppression_reason",
 ]
