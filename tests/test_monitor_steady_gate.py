@@ -27,7 +27,7 @@ from twin.monitor.steady import (
 DEMO = Path(__file__).resolve().parents[1] / "configs" / "demo-u1.toml"
 
 # the demo's gate settings (configs/demo-u1.toml [monitoring]) and the defaults
-DEMO_GATE = {"lambdas": (0.5, 0.3, 0.3), "r_critical": 2.0, "r_exit": 3.5, "jump_critical": 55.0}
+DEMO_GATE = {"lambdas": (0.5, 0.3, 0.3), "r_critical": 2.0, "r_exit": 3.5, "jump_critical": 100.0}
 DEFAULT_GATE = {"lambdas": (0.2, 0.1, 0.1), "r_critical": 2.0, "r_exit": 3.0, "jump_critical": 25.0}
 
 
@@ -145,7 +145,7 @@ def test_hysteresis_opens_below_critical_and_closes_at_exit():
     for i in range(3000):
         v = det.update({"s": float(rng.normal())}, 10.0 * i)
         r, jump = v.r["s"], det.jump_values["s"]
-        ok = math.isfinite(r) and r < (3.5 if steady else 2.0) and not jump >= 55.0
+        ok = math.isfinite(r) and r < (3.5 if steady else 2.0) and not jump >= 100.0
         kept_between += steady and ok and r >= 2.0
         run = run + 1 if ok else 0
         steady = ok if steady else run >= 2
@@ -155,15 +155,15 @@ def test_hysteresis_opens_below_critical_and_closes_at_exit():
 
 @pytest.mark.parametrize("gate", [DEMO_GATE, DEFAULT_GATE], ids=["demo", "default"])
 def test_a_large_step_is_caught_in_its_own_window(gate):
-    # Monte Carlo truth: white noise (σ = 1 per window value), a 15σ step at
+    # Monte Carlo truth: white noise (σ = 1 per window value), a 20σ step at
     # window 60, when the gate is open.
     rng = np.random.default_rng(15)
     n, runs, k0 = 70, 200, 60
-    x = rng.normal(size=(n, runs)) + np.where(np.arange(n)[:, None] >= k0, 15.0, 0.0)
+    x = rng.normal(size=(n, runs)) + np.where(np.arange(n)[:, None] >= k0, 20.0, 0.0)
     s = _gate_series(x, **gate)
     assert s[k0 - 1].mean() > 0.95
     caught = (~s[k0]).mean()
-    print(f"\n{gate}: 15σ step caught in its window in {caught:.1%} of runs")
+    print(f"\n{gate}: 20σ step caught in its window in {caught:.1%} of runs")
     assert caught > 0.95
 
 
@@ -182,7 +182,7 @@ def test_a_ramp_closes_the_gate(gate):
 # -------------------------------------------------------------- snapshot ---
 def test_snapshot_round_trip_through_json_continues_identically():
     kw = {"lambdas": (0.5, 0.3, 0.3), "r_critical": 2.0, "hold_seconds": 20.0, "warmup": 5,
-          "r_exit": 3.5, "noise_floor": {"a": 0.01, "b": 0.01}, "jump_critical": 55.0}
+          "r_exit": 3.5, "noise_floor": {"a": 0.01, "b": 0.01}, "jump_critical": 100.0}
     rng = np.random.default_rng(9)
     x = rng.normal(size=(80, 2))
     x[50:, 1] = x[49, 1]  # b sticks: frozen counters are part of the state
