@@ -11,6 +11,13 @@ plant model needs on top of it:
   ``h_pT(p, T_ph(p, h)) == h`` to ~1e-9 relative and all derivatives are
   consistent with the functions they differentiate;
 * two-phase states from the saturation line (region 4) with the lever rule;
+* exact phase selection at the saturation lines: a (p, h) or (p, s) state whose
+  quality lies within ``X_SATURATED`` (1e-9) of [0, 1] is saturated, and every
+  single-phase temperature keeps a relative margin ``SAT_MARGIN`` (1e-12) from
+  T_sat, because CoolProp's IF97 region choice in a (p, T) update (p against its
+  p_sat(T)) matches its T_sat(p) only to ~20 ulps and can otherwise return the
+  other phase or fail with "Cannot use Region 4". Public (p, T) functions return
+  the phase of T's side of T_sat(p), the saturated liquid on the line itself;
 * partial derivatives (CoolProp has none for IF97) from exact thermodynamic
   identities plus a few central differences on cheap (p, T) updates;
 * :class:`PropertyError` naming the function and its inputs for NaN or
@@ -63,6 +70,13 @@ _DT = 0.01  # [K] temperature step of central differences
 _DP_REL = 1e-4  # [-] relative pressure step of central differences
 _TOL_T = 1e-7  # [K] accepted residual of the forward refinement (as dh/cp or ds*T/cp)
 _T_LO, _T_HI = 273.15, 1073.15  # [K] bracket of the fallback solver (regions 1-3)
+# Saturation lines. CoolProp's IF97 (p, T) update picks region 1 or 2 by comparing p with
+# its p_sat(T), which agrees with its T_sat(p) only to ~20 ulps (measured): a temperature
+# one ulp from T_sat(p) can get the other phase, or "Cannot use Region 4" on the line.
+X_SATURATED = 1e-9  # [-] |x| (or |x - 1|) up to this is read as saturated (lever rule)
+SAT_MARGIN = 1e-12  # [-] relative distance from T_sat kept by single-phase temperatures
+_T_SAT_TOP = T_CRIT * (1.0 + 2.0 * SAT_MARGIN)  # [K] no saturation line above
+_WET, _LIQ, _VAP, _NOLINE = 0, 1, 2, 3  # phase of a (p, h) or (p, s) state
 
 
 class PropertyError(ValueError):
@@ -202,14 +216,13 @@ class Water:
 
     # ------------------------------------------------------------ (p, T)
     def h_pT(self, p: float, T: float) -> float:
-        """Specific enthalpy [J/kg] at pressure p [Pa] and temperature T [K]."""
-        if not (isfinite(p) and isfinite(T)):
-            raise _error("h_pT", "input is not a finite number", p=p, T=T)
-        try:
-            self._up(_PT, p, T)
-            return self._h()
-        except (ValueError, IndexError) as exc:
-            raise _range_error("h_pT", exc, p=p, T=T) from None
+        """Specific enthalpy [J/kg] at pressure p [Pa] and temperature T [K].
+
+        On the saturation line (T == T_sat(p)) the saturated liquid, as for every
+        (p, T) function here; one ulp above T_sat(p) the saturated vapour.
+        """
+        self._pt("h_pT", p, T)
+        return self._h()
 
     def s_pT(self, p: float, T: float) -> float:
         """Specific entropy [J/(kg K)] at pressure p [Pa] and temperature T [K]."""
@@ -237,27 +250,43 @@ class Water:
         Central difference on (p, T) updates with a step of 1e-4 p; one-sided
         where the other side would cross the saturation line.
         """
-        self._pt("dh_dp_T", p, T)
+        T = self._pt("dh_dp_T", p, T)  # the temperature actually evaluated (off the line)
         lo, hi = 0.0, math.inf
         if T < T_CRIT and p < P_CRIT:
             ps = self.p_sat(T)
-            if p > ps:  # liquid: stay above p_sat(T)
+            if p >= P_TRIPLE and self.T_sat(p) >= T:  # liquid (the side _pt picks): stay above p_sat(T)
                 lo = ps
             else:  # vapour: stay below p_sat(T)
                 hi = ps
+        up, get = self._up, self._h
 
         def h(pp: float) -> float:
-            return self.h_pT(pp, T)
+            up(_PT, pp, T)
+            return get()
 
-        return _diff(h, p, _DP_REL * p, lo, hi)
+        try:
+            return _diff(h, p, _DP_REL * p, lo, hi)
+        except (ValueError, IndexError) as exc:
+            raise _range_error("dh_dp_T", exc, p=p, T=T) from None
 
-    def _pt(self, func: str, p: float, T: float) -> None:
+    def _pt(self, func: str, p: float, T: float) -> float:
+        """(p, T) update on the phase of T's side of T_sat(p) (liquid on the line).
+
+        Returns the temperature [K] evaluated: T itself, or, within SAT_MARGIN of
+        T_sat(p), the temperature SAT_MARGIN from T_sat on T's side.
+        """
         if not (isfinite(p) and isfinite(T)):
             raise _error(func, "input is not a finite number", p=p, T=T)
         try:
+            if P_TRIPLE <= p < P_CRIT and T <= _T_SAT_TOP:
+                self._up(_PQ, p, 0.0)
+                tsat = self._t()
+                if abs(T - tsat) <= SAT_MARGIN * tsat:  # CoolProp's region pick is unsure here
+                    T = tsat * (1.0 - SAT_MARGIN) if tsat >= T else tsat * (1.0 + SAT_MARGIN)
             self._up(_PT, p, T)
         except (ValueError, IndexError) as exc:
             raise _range_error(func, exc, p=p, T=T) from None
+        return T
 
     # ------------------------------------------------------- saturation
     def T_sat(self, p: float) -> float:
@@ -404,17 +433,6 @@ class Water:
         inputs = {"p": p, ("s" if by_s else "h"): target}
         raise _error(func, "no IAPWS-IF97 temperature found", **inputs)
 
-    def _bounds(self, p: float, liquid: bool) -> tuple[float, float, float]:
-        """(lo, hi, T_sat) temperature bracket [K] of one phase at pressure p [Pa]."""
-        top = 2273.15 if p <= 50e6 else _T_HI
-        if p >= P_CRIT or p < P_TRIPLE:
-            return _T_LO, top, _NAN
-        self._up(_PQ, p, 0.0)
-        tsat = self._t()
-        if liquid:
-            return _T_LO, math.nextafter(tsat, -math.inf), tsat
-        return math.nextafter(tsat, math.inf), top, tsat
-
     def _bracketed_T(self, func: str, p: float, target: float, by_s: bool) -> float:
         """Fallback where CoolProp's (p, h)/(p, s) flash fails (supercritical region 3)."""
         get = self._s if by_s else self._h
@@ -431,63 +449,113 @@ class Water:
         T0 = _T_LO + (_T_HI - _T_LO) * (target - f_lo) / (f_hi - f_lo)
         return self._solve_T(func, p, target, by_s, T0, _T_LO, _T_HI)
 
-    def _single_T(self, func: str, p: float, h: float) -> tuple[float, bool, float] | None:
-        """(T [K], liquid, T_sat [K]) at (p, h), forward-consistent; None in two-phase."""
+    def _phase(self, p: float, target: float, by_s: bool) -> tuple[int, float, float, float, float]:
+        """(phase, x, f_f, f_g, T_sat) of the state (p, h) (or (p, s) if by_s).
+
+        x = (f - f_f)/(f_g - f_f) with f = h (or s) and the saturated values f_f,
+        f_g [J/kg or J/(kg K)] at p; a state with x within X_SATURATED of [0, 1] is
+        wet. _NOLINE (x, f_f, f_g, T_sat NaN) at p >= P_CRIT or p < P_TRIPLE.
+        """
+        if not P_TRIPLE <= p < P_CRIT:
+            return _NOLINE, _NAN, _NAN, _NAN, _NAN
+        up, get = self._up, (self._s if by_s else self._h)
+        up(_PQ, p, 0.0)
+        tsat, ff = self._t(), get()
+        up(_PQ, p, 1.0)
+        fg = get()
+        x = (target - ff) / (fg - ff)
+        if -X_SATURATED <= x <= 1.0 + X_SATURATED:
+            return _WET, x, ff, fg, tsat
+        return (_LIQ if x < 0.0 else _VAP), x, ff, fg, tsat
+
+    def _single_T(self, func: str, p: float, target: float, by_s: bool, phase: int, tsat: float) -> float:
+        """Forward-consistent single-phase T [K] at (p, h) (or (p, s)); leaves the state there.
+
+        Starts from CoolProp's backward-equation flash and refines on the forward
+        equation inside the phase's bracket, which keeps SAT_MARGIN from T_sat.
+        """
+        key = "s" if by_s else "h"
+        top = 2273.15 if p <= 50e6 else _T_HI
+        if phase == _LIQ:
+            lo, hi = _T_LO, tsat * (1.0 - SAT_MARGIN)
+        elif phase == _VAP:
+            lo, hi = tsat * (1.0 + SAT_MARGIN), top
+        else:
+            lo, hi = _T_LO, top
         up = self._up
         try:
-            up(_HP, h, p)
-            q = self._q()
+            if by_s:
+                up(_PS, p, target)
+            else:
+                up(_HP, target, p)
             T0 = self._t()
         except (ValueError, IndexError) as exc:
-            if not P_CRIT <= p <= 100e6:
-                raise _range_error(func, exc, p=p, h=h) from None
-            return self._bracketed_T(func, p, h, False), True, _NAN
-        if 0.0 <= q <= 1.0:
-            return None
-        liquid = T0 <= T_CRIT and self._phase_liquid()
-        lo, hi, tsat = self._bounds(p, liquid)
-        # fast path: one Newton step from the backward-equation temperature
+            if phase == _NOLINE:
+                if not P_CRIT <= p <= 100e6:
+                    raise _range_error(func, exc, p=p, **{key: target}) from None
+                return self._bracketed_T(func, p, target, by_s)
+            T0 = self._start_in(func, p, target, by_s, lo, hi, exc)
+        if not isfinite(T0):
+            T0 = self._start_in(func, p, target, by_s, lo, hi, None)
         T = min(max(T0, lo), hi)
-        up(_PT, p, T)
-        cp0 = self._cp()
-        T1 = T + (h - self._h()) / cp0
-        if lo <= T1 <= hi:
-            up(_PT, p, T1)
-            dT = (h - self._h()) / cp0
-            if abs(dT) <= _TOL_T and lo <= T1 + dT <= hi:
-                return T1 + dT, liquid, tsat
-        T = self._solve_T(func, p, h, False, T, lo, hi)
-        return T, liquid, tsat
+        if by_s:
+            return self._solve_T(func, p, target, True, T, lo, hi)
+        # fast path: one Newton step from the backward-equation temperature
+        try:
+            up(_PT, p, T)
+            cp0 = self._cp()
+            T1 = T + (target - self._h()) / cp0
+            if lo <= T1 <= hi:
+                up(_PT, p, T1)
+                dT = (target - self._h()) / cp0
+                if abs(dT) <= _TOL_T and lo <= T1 + dT <= hi:
+                    return T1 + dT
+        except (ValueError, IndexError) as exc:
+            raise _range_error(func, exc, p=p, h=target) from None
+        return self._solve_T(func, p, target, False, T, lo, hi)
 
-    def _phase_liquid(self) -> bool:
-        ph = self._st.phase()
-        return ph == _CP.iphase_liquid or ph == _CP.iphase_supercritical_liquid
+    def _start_in(self, func: str, p: float, target: float, by_s: bool, lo: float, hi: float,
+                  exc: Exception | None) -> float:
+        """Start temperature [K] in [lo, hi] where CoolProp's flash failed; range error if outside."""
+        get = self._s if by_s else self._h
+        key = "s" if by_s else "h"
+        try:
+            self._up(_PT, p, lo)
+            f_lo = get()
+            self._up(_PT, p, hi)
+            f_hi = get()
+        except (ValueError, IndexError) as exc2:
+            raise _range_error(func, exc2, p=p, **{key: target}) from None
+        if not f_lo <= target <= f_hi:
+            raise _range_error(func, exc, p=p, **{key: target})
+        return lo if target - f_lo <= f_hi - target else hi
 
     def T_ph(self, p: float, h: float) -> float:
         """Temperature [K] at pressure p [Pa] and specific enthalpy h [J/kg]."""
         _check("T_ph", p=p, h=h)
-        single = self._single_T("T_ph", p, h)
-        return self.T_sat(p) if single is None else single[0]
+        phase, _, _, _, tsat = self._phase(p, h, False)
+        if phase == _WET:
+            return tsat
+        return self._single_T("T_ph", p, h, False, phase, tsat)
 
     def s_ph(self, p: float, h: float) -> float:
         """Specific entropy [J/(kg K)] at pressure p [Pa] and specific enthalpy h [J/kg]."""
         _check("s_ph", p=p, h=h)
-        single = self._single_T("s_ph", p, h)
-        if single is None:
-            x, _, _ = self._lever(p, h)
-            return self.s_f(p) + x * (self.s_g(p) - self.s_f(p))
-        self._up(_PT, p, single[0])
+        phase, x, _, _, tsat = self._phase(p, h, False)
+        if phase == _WET:
+            sf = self.s_f(p)
+            return sf + x * (self.s_g(p) - sf)
+        self._up(_PT, p, self._single_T("s_ph", p, h, False, phase, tsat))
         return self._s()
 
     def v_ph(self, p: float, h: float) -> float:
         """Specific volume [m3/kg] at pressure p [Pa] and specific enthalpy h [J/kg]."""
         _check("v_ph", p=p, h=h)
-        single = self._single_T("v_ph", p, h)
-        if single is None:
-            x, _, _ = self._lever(p, h)
+        phase, x, _, _, tsat = self._phase(p, h, False)
+        if phase == _WET:
             vf = self.v_f(p)
             return vf + x * (self.v_g(p) - vf)
-        self._up(_PT, p, single[0])
+        self._up(_PT, p, self._single_T("v_ph", p, h, False, phase, tsat))
         return 1.0 / self._rho()
 
     def _lever(self, p: float, h: float) -> tuple[float, float, float]:
@@ -517,7 +585,9 @@ class Water:
         dT_dh = 1/cp, dT_dp = -(∂h/∂p)_T/cp with (∂h/∂p)_T = v - T(∂v/∂T)_p,
         and central differences for (∂v/∂T)_p (±0.01 K) and (∂v/∂p)_T
         (±1e-4 p), one-sided where a step would cross the saturation line.
-        Two-phase: lever rule on the saturation line (s, v and their partials
+        Two-phase (|x| up to X_SATURATED outside [0, 1] included, so that a
+        saturated state a rounding error off the line reads as saturated): lever
+        rule on the saturation line (s, v and their partials
         differentiate the lever rule itself), dT_dh = 0,
         dT_dp = dT_sat/dp, v = v_f + x(v_g - v_f). Below the critical pressure x
         is the (extrapolated) equivalent quality, dx_dh = 1/(h_g - h_f),
@@ -534,12 +604,13 @@ class Water:
             x = (h - hf) / hfg
             dx_dh = 1.0 / hfg
             dx_dp = -(dhf * (1.0 - x) + x * dhg) / hfg
-            if 0.0 <= x <= 1.0:
+            if -X_SATURATED <= x <= 1.0 + X_SATURATED:
                 return self._ph_wet(p, h, x, dx_dp, dx_dh)
-        single = self._single_T("ph", p, h)
-        if single is None:  # CoolProp and the saturation line disagree by rounding
-            return self._ph_wet(p, h, x, dx_dp, dx_dh)
-        T, liquid, tsat = single
+            phase = _LIQ if x < 0.0 else _VAP
+        else:
+            phase, tsat = _NOLINE, _NAN
+        T = self._single_T("ph", p, h, False, phase, tsat)
+        liquid = phase == _LIQ
         up, rho = self._up, self._rho
         up(_PT, p, T)
         s, v, cp = self._s(), 1.0 / rho(), self._cp()
@@ -582,38 +653,22 @@ class Water:
                        st.dT_dp, 0.0, ds_dp, sfg * dx_dh, dv_dp, vfg * dx_dh, dx_dp, dx_dh)
 
     # ------------------------------------------------------------ (p, s)
-    def _ps_T(self, func: str, p: float, s: float, liquid: bool) -> float:
-        """Forward-consistent single-phase T [K] at (p, s); leaves the state there."""
-        try:
-            self._up(_PS, p, s)
-            T0 = self._t()
-        except (ValueError, IndexError) as exc:
-            if not P_CRIT <= p <= 100e6:
-                raise _range_error(func, exc, p=p, s=s) from None
-            return self._bracketed_T(func, p, s, True)
-        lo, hi, _ = self._bounds(p, liquid)
-        return self._solve_T(func, p, s, True, T0, lo, hi)
-
     def _ps_common(self, func: str, p: float, s: float) -> tuple[float, float, float, float, bool]:
         """(h, T, v, x, two_phase) at pressure p [Pa] and entropy s [J/(kg K)]."""
         _check(func, p=p, s=s)
-        up = self._up
-        x = _NAN
-        liquid = True
-        if P_TRIPLE <= p < P_CRIT:
+        phase, x, _, _, tsat = self._phase(p, s, True)
+        if phase == _WET:
+            up = self._up
             up(_PQ, p, 0.0)
-            tsat, hf, sf, vf = self._t(), self._h(), self._s(), 1.0 / self._rho()
+            hf, vf = self._h(), 1.0 / self._rho()
             up(_PQ, p, 1.0)
-            hg, sg, vg = self._h(), self._s(), 1.0 / self._rho()
-            if sf <= s <= sg:
-                x = (s - sf) / (sg - sf)
-                return hf + x * (hg - hf), tsat, vf + x * (vg - vf), x, True
-            liquid = s < sf
-        T = self._ps_T(func, p, s, liquid)
+            hg, vg = self._h(), 1.0 / self._rho()
+            return hf + x * (hg - hf), tsat, vf + x * (vg - vf), x, True
+        T = self._single_T(func, p, s, True, phase, tsat)
         h = self._h()
         v = 1.0 / self._rho()
-        if P_TRIPLE <= p < P_CRIT:
-            x = (h - hf) / (hg - hf)
+        if phase != _NOLINE:
+            x = (h - self.h_f(p)) / (self.h_g(p) - self.h_f(p))
         return h, T, v, x, False
 
     def h_ps(self, p: float, s: float) -> float:
