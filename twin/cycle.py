@@ -42,7 +42,7 @@ from twin.monitor import (
     steady_detector,
     suppression_reason,
 )
-from twin.performance.expected import Deviation, ExpectedModel, actual_conditions
+from twin.performance.expected import ExpectedModel, WindowDeviation, window_deviation
 from twin.performance.plant_reconcile import PlantReconciler, PlantReconciliation
 from twin.result import AlarmView, CycleResult, DriftView, Estimate, InputStats, TagResult
 
@@ -57,10 +57,8 @@ SNAPSHOT_VERSION = 1
 class CycleOptions:
     """Policy knobs of the per-window pipeline that are not plant configuration."""
 
-    deviation_every: int = 6  # steady windows between heat-rate deviation accounting runs
     max_eliminations: int = 3  # bound on serially eliminated suspects per window
     alpha: float = 0.05  # family-wise significance of the measurement test (Šidák) [-]
-    pressure_mode: str = "sliding"
 
 
 @dataclass(frozen=True)
@@ -158,7 +156,8 @@ class UnitCycle:
                                                         max_eliminations=self.options.max_eliminations)
         # gross-error tests and elimination run in every window, steady or not
         self.reconciler.max_eliminations = self.options.max_eliminations
-        self.expected_model = ExpectedModel(fs, op, design, self.reconciler.settings, self.options.pressure_mode)
+        # the throttle-pressure operation (sliding, fixed, schedule) and fuel price come from the plant file
+        self.expected_model = ExpectedModel.from_config(config, fs, op, design, self.reconciler.settings)
         self.fs, self.op = fs, op
         self.kpi_names = tuple(d.name for d in self.reconciler.kpi_defs)
         self.steady: SteadyStateDetector | None = steady_detector(config)
@@ -173,7 +172,6 @@ class UnitCycle:
         self.suspects = SuspectTracker(mon.suspect_persistence)
         self.drift = self._drift_bank()
         self._steady_windows = 0
-        self._deviation: Deviation | None = None
 
     # ------------------------------------------------------------------ set-up
     def _drift_bank(self) -> DriftBank:
@@ -211,25 +209,14 @@ class UnitCycle:
         t_rec = time.perf_counter() - t_rec
         kpis = self._kpis(rec)
         load = _value(kpis, "load_fraction")
-        expected: dict[str, float] = {}
-        deviation = None
-        if rec.converged and math.isfinite(load):
-            cw = self._cooling_water_inlet(rec)
-            try:
-                ref, expected = self.expected_model.expected(min(max(load, 0.2), 1.2), cw)
-                if steady and (self._deviation is None or self._steady_windows % self.options.deviation_every == 0):
-                    self._deviation = self.expected_model.deviation(
-                        ref, expected, actual_conditions(rec, self.fs, self.op, self.reconciler.settings), cw)
-                deviation = self._deviation
-            except (SolveError, ValueError) as exc:
-                notes.append(("expected_model_failed", {"window_end": t_end, "error": str(exc)}))
+        # total and split from this window's own reconciliation (split on steady windows only)
+        dev = self.deviation(rec, steady)
+        if dev.status.startswith(("unavailable: expected", "partial")):
+            notes.append(("heat_rate_deviation", {"window_end": t_end, "status": dev.status}))
+        expected = dict(dev.expected)
         if steady:
             self._steady_windows += 1
         transitions = self._update_monitors(t_end, steady, load, rec, kpis, expected)
-        hr_dev = math.nan
-        if math.isfinite(_value(kpis, "turbine_heat_rate")) and "turbine_heat_rate" in expected:
-            hr_dev = _value(kpis, "turbine_heat_rate") - expected["turbine_heat_rate"]
-        by_cause = dict(deviation.by_cause) if deviation is not None else {}
         result = CycleResult(
             unit_id=self.config.unit.id, window_start=t_end - window.window_seconds, window_end=t_end,
             steady=steady, steady_status=verdict.status if verdict is not None else "steady",
@@ -237,7 +224,11 @@ class UnitCycle:
             reconcile_status=rec.status, reconcile_message=rec.message, iterations=rec.iterations,
             global_test=rec.global_test, global_test_dof=rec.dof, global_test_p_value=rec.p_value,
             tags=self._tags(rec, window.stats, values, excluded), streams=dict(rec.streams), kpis=kpis,
-            expected=expected, heat_rate_deviation=hr_dev, heat_rate_deviation_by_cause=by_cause,
+            expected=expected, heat_rate_deviation=dev.total, heat_rate_deviation_by_cause=dict(dev.by_cause),
+            heat_rate_deviation_status=dev.status,
+            heat_rate_deviation_fuel_power_by_cause=dict(dev.fuel_power_by_cause),
+            heat_rate_deviation_cost_by_cause=dict(dev.cost_per_hour_by_cause),
+            currency=self.config.performance.currency,
             alarms=self._alarm_views(), drift=self._drift_views(),
             inputs=replace(window.inputs or InputStats(),
                            stale_tags=tuple(sorted(t for t, r in excluded.items() if r == "stale"))),
@@ -265,6 +256,14 @@ class UnitCycle:
                                measured=values.get(s.tag, base.measured))
             tags[s.tag] = base
         return tags
+
+    def deviation(self, rec: PlantReconciliation, steady: bool) -> WindowDeviation:
+        """Expected values and heat-rate deviation of one window, split into causes when steady.
+
+        Every steady window is split afresh (no cached sensitivities), so the split
+        and the total always come from the same reconciled state.
+        """
+        return window_deviation(self.expected_model, rec, self._cooling_water_inlet(rec), causes=steady)
 
     def _cooling_water_inlet(self, rec: PlantReconciliation) -> float | None:
         cols = self.reconciler.system.cooling_water_columns
@@ -334,7 +333,6 @@ class UnitCycle:
         if snap.get("unit_id") != self.config.unit.id:
             raise ValueError(f"state snapshot of unit {snap.get('unit_id')!r}; expected {self.config.unit.id!r}")
         self._steady_windows = int(snap.get("steady_windows", 0))
-        self._deviation = None
         z = snap.get("warm_start")
         self.reconciler.warm_start = None if z is None else [math.nan if v is None else float(v) for v in z]
         if snap.get("steady") is not None and self.steady is not None and hasattr(self.steady, "restore"):

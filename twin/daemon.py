@@ -137,18 +137,15 @@ def mqtt_settings_from_config(config: PlantConfig, environ: Mapping[str, str]) -
 class DaemonOptions:
     """Policy knobs of the daemon that are not plant configuration."""
 
-    deviation_every: int = 6  # steady windows between heat-rate deviation accounting runs
     max_eliminations: int = 3
     alpha: float = 0.05
-    pressure_mode: str = "sliding"
     republish: bool = True
     store_capacity: int = 2048
     metrics: bool = True
     grace_seconds: float = 1.0  # clock seconds to wait after a window ends for late messages
 
     def cycle_options(self) -> CycleOptions:
-        return CycleOptions(deviation_every=self.deviation_every, max_eliminations=self.max_eliminations,
-                            alpha=self.alpha, pressure_mode=self.pressure_mode)
+        return CycleOptions(max_eliminations=self.max_eliminations, alpha=self.alpha)
 
 
 class Daemon:
@@ -308,7 +305,8 @@ class Daemon:
             self.mqtt.publish(f"{prefix}/heat_rate_deviation", json.dumps(
                 {"ts": ts, "value": result.heat_rate_deviation, "unit": "1",
                  "kj_per_kwh": result.heat_rate_deviation * 3600.0,
-                 "by_cause": {k: v for k, v in result.heat_rate_deviation_by_cause.items() if math.isfinite(v)}}))
+                 "by_cause": {k: v for k, v in result.heat_rate_deviation_by_cause.items() if math.isfinite(v)},
+                 "status": result.heat_rate_deviation_status}))
         for tr in transitions:
             self.mqtt.publish(self.config.broker.events_topic or f"{prefix}/events", json.dumps(
                 {"ts": tr.time, "unit_id": result.unit_id, "alarm": tr.alarm, "level": tr.level, "from": tr.old,

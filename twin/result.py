@@ -151,6 +151,10 @@ class CycleResult:
     expected: Mapping[str, float] = field(default_factory=dict)
     heat_rate_deviation: float = NAN  # actual − expected turbine heat rate [ratio]
     heat_rate_deviation_by_cause: Mapping[str, float] = field(default_factory=dict)  # [ratio], incl. "unaccounted"
+    heat_rate_deviation_status: str = ""  # "complete", "partial: <causes>", "not split: ...", "unavailable: ..."
+    heat_rate_deviation_fuel_power_by_cause: Mapping[str, float] = field(default_factory=dict)  # [W] fuel basis
+    heat_rate_deviation_cost_by_cause: Mapping[str, float] = field(default_factory=dict)  # [currency/h]
+    currency: str = ""  # label of the cost figures
     alarms: Mapping[str, AlarmView] = field(default_factory=dict)
     drift: Mapping[str, DriftView] = field(default_factory=dict)
     inputs: InputStats = field(default_factory=InputStats)

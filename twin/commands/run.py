@@ -14,8 +14,6 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("config", help="plant configuration file (TOML)")
     parser.add_argument("--log-level", default="INFO", choices=("DEBUG", "INFO", "WARNING", "ERROR"),
                         help="log level (default INFO)")
-    parser.add_argument("--pressure", choices=("sliding", "fixed"), default="sliding",
-                        help="how the unit runs off design, for the expected model (default sliding)")
     parser.add_argument("--no-republish", action="store_true", help="do not publish reconciled values on MQTT")
 
 
@@ -53,7 +51,7 @@ def run(args: argparse.Namespace) -> int:
     install_stop_handlers(stop)
     try:
         daemon = Daemon(config, environ=os.environ,
-                        options=DaemonOptions(pressure_mode=args.pressure, republish=not args.no_republish))
+                        options=DaemonOptions(republish=not args.no_republish))
         daemon.start()
     except (ValueError, OSError) as exc:
         print(f"twin run: {args.config}: {exc}", file=sys.stderr)

@@ -172,9 +172,9 @@ def _check_performance(cfg: PlantConfig, streams: set[str], add: Any) -> None:
         sid = getattr(perf, key)
         if sid is not None and sid not in streams:
             add(f"performance.{key}", f"unknown stream {sid!r}; expected a stream id")
-    load = cfg.streams_by_id.get(perf.load_stream or "")
-    if load is not None and "mass_flow" not in load.design:
-        add("performance.load_stream", f"stream {load.id!r} has no design mass_flow; expected the "
+    load_cfg = cfg.streams_by_id.get(perf.load_stream or "")
+    if load_cfg is not None and "mass_flow" not in load_cfg.design:
+        add("performance.load_stream", f"stream {load_cfg.id!r} has no design mass_flow; expected the "
             "stream whose design flow defines full load")
     valve = perf.throttle_valve
     if valve is not None:
@@ -187,6 +187,19 @@ def _check_performance(cfg: PlantConfig, streams: set[str], add: Any) -> None:
         if not (load > last and 0.0 < eff <= 1.0):
             add(f"performance.boiler_efficiency[{i}]", f"[{load}, {eff}] out of order or range; expected "
                 "[load_fraction, efficiency] with load increasing and efficiency in (0, 1]")
+        last = max(last, load)
+    sched = perf.pressure_schedule
+    if perf.pressure_control == "schedule" and len(sched) < 2:
+        add("performance.pressure_schedule", f"{len(sched)} rows; expected at least two [load_fraction, "
+            "pressure] rows with pressure_control = 'schedule'")
+    if sched and perf.pressure_control != "schedule":
+        add("performance.pressure_control", f"{perf.pressure_control!r} with a pressure_schedule; expected "
+            "'schedule' (or remove the schedule)")
+    last = 0.0
+    for i, (load, pres) in enumerate(sched):
+        if not (load > last and load <= 1.2 and pres > 0.0):
+            add(f"performance.pressure_schedule[{i}]", f"[{load}, {pres}] out of order or range; expected "
+                "[load_fraction, pressure] with load increasing up to 1.2 and a positive pressure")
         last = max(last, load)
     _ids(cfg.sections, "id", "sections", add)
     for sec in cfg.sections:

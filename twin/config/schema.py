@@ -72,6 +72,21 @@ class PerformanceConfig(_Model):
     boiler_efficiency: list[Pair] = Field(
         default_factory=list, description="[load_fraction, efficiency] pairs, sorted by load"
     )
+    pressure_control: Literal["sliding", "fixed", "schedule"] = Field(
+        default="sliding",
+        description="how the throttle pressure follows load off design: 'sliding' (valves wide open, "
+        "pressure from the HP swallowing capacity), 'fixed' (design pressure, valves throttle) or "
+        "'schedule' (pressure_schedule, valves throttle down to the HP inlet pressure)",
+    )
+    pressure_schedule: list[tuple[Ratio, Pressure]] = Field(
+        default_factory=list,
+        description="[load_fraction, throttle pressure] rows, load increasing (pressure_control = 'schedule')",
+    )
+    fuel_price: float | None = Field(
+        default=None, ge=0.0,
+        description="fuel price in currency per GJ of fuel heat (on fuel_basis), for the cost of each loss",
+    )
+    currency: str = Field(default="", description="currency label of fuel_price, e.g. 'EUR'")
 
 
 class SectionConfig(_Model):

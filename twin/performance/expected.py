@@ -2,16 +2,37 @@
 
 The expected model is the forward heat balance at the present main-steam
 flow with design component performance (stage-group efficiencies, heater
-TTD/DCA, Stodola constants, condenser UA) and the present cooling-water
-inlet temperature, which the operators do not control. The deviation of the
-actual turbine heat rate from it is split into causes by re-running the model
-with the actual value of one parameter at a time, so that
-``Σ causes + unaccounted = total`` (a model-based form of the correction-curve
-accounting of ASME PTC 6; the causes interact, and what the one-at-a-time
-runs do not explain is reported as ``unaccounted``).
+TTD/DCA, Stodola constants, condenser UA), the present cooling-water inlet
+temperature (which the operators do not control) and the unit's own
+throttle-pressure operation from the plant file (``[performance]
+pressure_control``: sliding, fixed or a load → pressure schedule).
 
-Causes: main-steam temperature and pressure, hot-reheat temperature,
-condenser back-pressure, HP/IP/LP section efficiency, feedwater heaters.
+The deviation of the actual turbine-cycle gross heat rate from it is split
+into causes by re-running the model with the actual value of one parameter at
+a time, so that ``Σ causes + unaccounted = total`` (a model-based form of the
+correction-curve accounting of ASME PTC 6; the causes interact, and what the
+one-at-a-time runs do not explain is ``unaccounted``). Each cause inverts the
+model at the actual boundary conditions:
+
+- section efficiencies: the factor on the section's stage-group (dry)
+  efficiencies that reproduces the actual section outlet enthalpy from the
+  actual inlet state and the actual stage pressures (Baumann correction
+  included), so a wet LP loss is not mis-scaled; the HP section is compared
+  from the first group's inlet, after the control valves;
+- ``main_steam_pressure``: the throttle pressure against the one expected at
+  the actual conditions (the HP swallowing-capacity pressure when sliding, the
+  design or scheduled pressure otherwise), valves as expected;
+  ``throttling``: the control-valve pressure ratio against the expected one;
+- ``condenser_pressure``: the condenser UA that gives the actual back-pressure
+  at the *actual* condenser duty and cooling-water inlet, with the design
+  cooling-water flow (extra duty from a turbine loss stays with that loss);
+- ``main_steam_temperature``, ``reheat_temperature``, ``feedwater_heaters``
+  (actual TTD and DCA of every closed heater).
+
+A cause run that fails is left out of ``by_cause``; then ``unaccounted`` is
+left out too and ``status`` names the failed causes (nothing is folded into
+``unaccounted`` silently). Every window is recomputed (no cached
+sensitivities): the split and the total always come from the same window.
 """
 
 from __future__ import annotations
@@ -22,17 +43,26 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from scipy.optimize import brentq
 
-from twin.model.flow import Reheater
+from twin.model.core import Context
+from twin.model.flow import Reheater, ThrottleValve
 from twin.model.flowsheet import Flowsheet
 from twin.model.heat_exchange import ClosedHeater, Condenser
 from twin.model.solve import HeatBalance, Operation, SolveError, solve_off_design
-from twin.model.turbine import TurbineGroup
-from twin.performance.kpi import CyclePerformanceSettings, evaluate_kpis, kpi_definitions
+from twin.model.turbine import TurbineGroup, _moisture
+from twin.performance.kpi import (
+    CyclePerformanceSettings,
+    evaluate_kpis,
+    interpolate_boiler_efficiency,
+    kpi_definitions,
+)
+from twin.properties import PropertyError
 
 CAUSES = (
     "main_steam_temperature",
     "main_steam_pressure",
+    "throttling",
     "reheat_temperature",
     "condenser_pressure",
     "hp_efficiency",
@@ -41,30 +71,90 @@ CAUSES = (
     "feedwater_heaters",
 )
 
+PRESSURE_CONTROLS = ("sliding", "fixed", "schedule")
 
-@dataclass(frozen=True)
-class ActualConditions:
-    """What the reconciled plant shows, in the terms the causes need (SI)."""
-
-    load: float  # main-steam flow / design [-]
-    heat_rate: float  # actual turbine heat rate [-]
-    main_steam_temperature: float = math.nan  # [K]
-    main_steam_pressure: float = math.nan  # [Pa]
-    reheat_temperature: float = math.nan  # [K]
-    condenser_pressure: float = math.nan  # [Pa]
-    section_efficiency: Mapping[str, float] = field(default_factory=dict)  # by section id [-]
-    heater_ttd: Mapping[str, float] = field(default_factory=dict)  # [K]
-    heater_dca: Mapping[str, float] = field(default_factory=dict)  # [K]
+#: Changes below these are treated as none (the cause is exactly 0, no model run).
+_PRESSURE_TOL = 1.0  # [Pa]
+_RATIO_TOL = 1e-6  # [-]
+_FACTOR_TOL = 1e-7  # [-]
+_TEMPERATURE_TOL = 1e-4  # [K]
 
 
 @dataclass(frozen=True)
-class Deviation:
-    """Actual − expected turbine heat rate [-] and its split by cause [-]."""
+class PressureControl:
+    """How the throttle pressure follows load off design (``[performance]`` of the plant file).
 
-    expected_heat_rate: float
-    actual_heat_rate: float
+    Attributes
+    ----------
+    mode : {"sliding", "fixed", "schedule"}
+    design_pressure : float
+        Design throttle pressure [Pa] (held in fixed-pressure operation).
+    schedule : tuple of (float, float)
+        (load fraction [-], throttle pressure [Pa]) rows, load increasing (mode "schedule").
+    """
+
+    mode: str
+    design_pressure: float
+    schedule: tuple[tuple[float, float], ...] = ()
+
+    def __post_init__(self) -> None:
+        if self.mode not in PRESSURE_CONTROLS:
+            raise ValueError(f"pressure_control {self.mode!r}; expected one of {PRESSURE_CONTROLS}")
+        if self.mode == "schedule" and len(self.schedule) < 2:
+            raise ValueError("pressure_control 'schedule' needs at least two [load, pressure] rows")
+
+    @classmethod
+    def from_config(cls, config: Any, fs: Flowsheet, op: Operation) -> PressureControl:
+        perf = config.performance
+        return cls(str(perf.pressure_control),
+                   float(fs.stream_configs[op.throttle_stream].design["pressure"]),
+                   tuple((float(a), float(b)) for a, b in perf.pressure_schedule))
+
+    def throttle_pressure(self, load: float) -> float:
+        """Set throttle pressure [Pa] at ``load`` [-]; NaN when sliding (it follows the HP inlet)."""
+        if self.mode == "fixed":
+            return self.design_pressure
+        if self.mode == "schedule":
+            xs, ys = zip(*self.schedule, strict=True)
+            return float(np.interp(load, xs, ys))
+        return math.nan
+
+
+@dataclass(frozen=True)
+class WindowDeviation:
+    """One window's heat-rate deviation, all from the same reconciled state.
+
+    Attributes
+    ----------
+    total : float
+        Actual − expected turbine-cycle gross heat rate [-] (×3600 = kJ/kWh).
+    by_cause : mapping
+        Cause → heat-rate deviation [-]; includes ``"unaccounted"`` when every cause ran.
+    status : str
+        ``"complete"``, ``"partial: <cause> (<reason>), ..."`` or ``"unavailable: <reason>"``.
+    expected : mapping
+        Expected KPIs [SI], same names as the reconciled ``kpis``; section
+        efficiencies at the actual boundary conditions (for alarms and drift).
+    fuel_power_by_cause : mapping
+        Cause → extra fuel power [W] on the configured fuel basis (ΔHR · P_gen / η_boiler).
+    cost_per_hour_by_cause : mapping
+        Cause → fuel cost per hour [currency/h] at the configured fuel price (empty without one).
+    """
+
     total: float
-    by_cause: Mapping[str, float]  # includes "unaccounted"
+    by_cause: Mapping[str, float]
+    status: str
+    expected: Mapping[str, float] = field(default_factory=dict)
+    fuel_power_by_cause: Mapping[str, float] = field(default_factory=dict)
+    cost_per_hour_by_cause: Mapping[str, float] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class _SectionPath:
+    id: str
+    inlet: str
+    outlet: str
+    groups: tuple[TurbineGroup, ...]
 
 
 class ExpectedModel:
@@ -75,27 +165,61 @@ class ExpectedModel:
     fs, op, design
         Flowsheet, operation streams and the solved design point.
     settings : CyclePerformanceSettings
-    pressure_mode : {"sliding", "fixed"}
-        How the unit runs off design.
+    control : PressureControl
+        The unit's throttle-pressure operation (from the plant file).
+    fuel_price : float, optional
+        Fuel price per joule of fuel heat [currency/J] for the cost of each cause.
     """
 
     def __init__(self, fs: Flowsheet, op: Operation, design: HeatBalance, settings: CyclePerformanceSettings,
-                 pressure_mode: str = "sliding") -> None:
+                 control: PressureControl, fuel_price: float | None = None) -> None:
         self.fs, self.op, self.design, self.settings = fs, op, design, settings
-        self.pressure_mode = pressure_mode
+        self.control = control
+        self.fuel_price = fuel_price
         self.kpi_defs = kpi_definitions(fs, settings)
+        self._hr_def = [d for d in self.kpi_defs if d.name == "turbine_heat_rate"]
         self._z: np.ndarray | None = None
-        self.condensers = [e.id for e in fs.of_kind(Condenser)]
+        self.condensers = [e for e in fs.of_kind(Condenser) if isinstance(e, Condenser)]
         self.reheat_stream = next((e.port("outlet") for e in fs.of_kind(Reheater)), None)
-        self.groups_by_section: dict[str, list[str]] = {}
-        for e in fs.of_kind(TurbineGroup):
-            self.groups_by_section.setdefault(str(e.params["section"]), []).append(e.id)
         self.heaters = [e.id for e in fs.of_kind(ClosedHeater)]
+        valve = fs.by_id.get(op.throttle_valve)
+        self.valve = valve if isinstance(valve, ThrottleValve) else None
+        groups = [e for e in fs.of_kind(TurbineGroup) if isinstance(e, TurbineGroup)]
+        self.first_hp = next((g for g in groups if self.valve and g.port("inlet") == self.valve.port("outlet")), None)
+        self.sections: dict[str, _SectionPath] = {}
+        for s in settings.sections:
+            members = tuple(g for g in groups if str(g.params.get("section")) == s.id)
+            if members:
+                self.sections[s.id] = _SectionPath(s.id, s.inlet, s.outlet, members)
 
+    @classmethod
+    def from_config(cls, config: Any, fs: Flowsheet, op: Operation, design: HeatBalance,
+                    settings: CyclePerformanceSettings | None = None) -> ExpectedModel:
+        """The expected model with the plant file's pressure control and fuel price."""
+        settings = settings or CyclePerformanceSettings.from_config(config)
+        price = config.performance.fuel_price
+        return cls(fs, op, design, settings, PressureControl.from_config(config, fs, op),
+                   None if price is None else float(price) / 1e9)
+
+    # ------------------------------------------------------------------ expected state
     def _cw(self, cw_inlet: float | None) -> dict:
         if cw_inlet is None or not math.isfinite(cw_inlet):
             return {}
-        return {c: {"cw_inlet": float(cw_inlet)} for c in self.condensers}
+        return {c.id: {"cw_inlet": float(cw_inlet)} for c in self.condensers}
+
+    def _solve(self, load: float, cw_inlet: float | None, z0: np.ndarray | None) -> HeatBalance:
+        cw = self._cw(cw_inlet)
+        if self.control.mode == "sliding":
+            return solve_off_design(self.fs, self.op, self.design, load, "sliding", z0=z0, constants=cw)
+        p_set = self.control.throttle_pressure(load)
+        hb = solve_off_design(self.fs, self.op, self.design, load, "fixed", z0=z0, constants=cw,
+                              overrides={(self.op.throttle_stream, "pressure"): p_set})
+        if self.valve is not None:
+            ctx = hb.context()
+            if ctx.p(self.valve.port("outlet")) > ctx.p(self.valve.port("inlet")):
+                # the set pressure is below what the HP group swallows: valves wide open
+                hb = solve_off_design(self.fs, self.op, self.design, load, "sliding", z0=z0, constants=cw)
+        return hb
 
     def expected(self, load: float, cw_inlet: float | None = None) -> tuple[HeatBalance, dict[str, float]]:
         """Expected state and KPIs at ``load`` [-] and cooling-water inlet temperature [K].
@@ -103,89 +227,271 @@ class ExpectedModel:
         Raises
         ------
         SolveError, ValueError
-            If the model cannot be solved there (load outside 0.2–1.2...).
+            If the model cannot be solved there (load outside 0.2–1.2 of design).
         """
-        hb = solve_off_design(self.fs, self.op, self.design, load, self.pressure_mode, z0=self._z,
-                              constants=self._cw(cw_inlet))
+        hb = self._solve(load, cw_inlet, self._z)
         self._z = hb.z
         return hb, evaluate_kpis(self.kpi_defs, hb.context())
 
     def _heat_rate(self, hb: HeatBalance) -> float:
-        return evaluate_kpis([d for d in self.kpi_defs if d.name == "turbine_heat_rate"], hb.context())["turbine_heat_rate"]
+        return evaluate_kpis(self._hr_def, hb.context())["turbine_heat_rate"]
 
-    def _cause_runs(self, ref: HeatBalance, ref_kpis: Mapping[str, float], a: ActualConditions) -> dict[str, dict[str, Any]]:
-        """Per cause, the solve arguments that put that one actual value into the model."""
-        ms = self.op.throttle_stream
+    # ------------------------------------------------------------------ section inversion
+    def _expand(self, w: Any, g: TurbineGroup, p_in: float, h_in: float, p_out: float, factor: float) -> float:
+        """Outlet enthalpy [J/kg] of stage group ``g`` with its dry efficiency × ``factor`` [-] (Baumann)."""
+        si = w.ph(p_in, h_in)
+        hs = w.h_ps(p_out, si.s)
+        eta_dry = g.params["efficiency"] * factor
+        alpha = g.params["baumann_factor"]
+        y_in = _moisture(si)[0]
+        h_out = h_in - eta_dry * (h_in - hs)
+        for _ in range(30):
+            y_out = _moisture(w.ph(p_out, h_out))[0] if alpha > 0 else 0.0
+            new = h_in - eta_dry * (1.0 - alpha * 0.5 * (y_in + y_out)) * (h_in - hs)
+            if abs(new - h_out) < 1e-6:
+                return new
+            h_out = new
+        return h_out
+
+    def _walk(self, ctx: Context, path: _SectionPath, factor: float) -> float:
+        """Section outlet enthalpy [J/kg] from the actual inlet state and stage pressures."""
+        h = ctx.h(path.inlet)
+        for g in path.groups:
+            h = self._expand(ctx.water, g, ctx.p(g.port("inlet")), h, ctx.p(g.port("outlet")), factor)
+        return h
+
+    def section_factor(self, ctx: Context, path: _SectionPath) -> float:
+        """Factor on the section's group efficiencies that reproduces the actual outlet enthalpy [-]."""
+        target = ctx.h(path.outlet)
+        f = brentq(lambda x: self._walk(ctx, path, x) - target, 0.5, 1.15, xtol=1e-10)
+        return float(f)
+
+    def expected_section_efficiency(self, ctx: Context, path: _SectionPath) -> float:
+        """Section efficiency with design group efficiencies at the actual boundary conditions [-]."""
+        si = ctx.ph(path.inlet)
+        p_out = ctx.p(path.outlet)
+        h_out = self._walk(ctx, path, 1.0)
+        return (si.h - h_out) / (si.h - ctx.water.h_ps(p_out, si.s))
+
+    # ------------------------------------------------------------------ pressure
+    def _stodola_inlet_pressure(self, ctx: Context) -> float:
+        """HP inlet pressure [Pa] the first HP group's design Stodola constant gives at the actual flow."""
+        g = self.first_hp
+        assert g is not None
+        a, b = g.port("inlet"), g.port("outlet")
+        K = self.design.constants[g.id]["stodola"]
+        m, h, pb = ctx.m(a), ctx.h(a), ctx.p(b)
+
+        def r(p: float) -> float:
+            return m - K * math.sqrt((p * p - pb * pb) / (p * ctx.water.v_ph(p, h)))
+
+        return float(brentq(r, pb * 1.0001, 4.0 * max(ctx.p(a), pb), xtol=1.0))
+
+    def _pressure_runs(self, ctx: Context, ref: HeatBalance, load: float) -> dict[str, dict[str, Any]]:
+        """The main-steam-pressure and throttling runs (see the module docstring)."""
+        if self.valve is None or self.first_hp is None:
+            return {}
+        vin, vout = self.valve.port("inlet"), self.valve.port("outlet")
+        p_ms, p_hp = ctx.p(vin), ctx.p(vout)
+        if not (math.isfinite(p_ms) and math.isfinite(p_hp) and p_ms > 0):
+            return {}
+        rctx = ref.context()
+        r_ref = rctx.p(vout) / rctx.p(vin)
+        p_stod = self._stodola_inlet_pressure(ctx)
+        p_set = self.control.throttle_pressure(load)
+        p_exp = p_stod if not math.isfinite(p_set) else max(p_set, p_stod)
+        r_exp = min(p_stod / p_exp, 1.0)
+        dp = p_ms - p_exp
+        r_act = min(p_hp / p_ms, 1.0)
+        skip = frozenset({self.valve.relation("open"), self.first_hp.relation("stodola")})
+        p_a = p_ms  # the actual throttle pressure, valves as expected
         runs: dict[str, dict[str, Any]] = {}
-        if math.isfinite(a.main_steam_temperature):
-            runs["main_steam_temperature"] = {"overrides": {(ms, "temperature"): a.main_steam_temperature}}
-        if math.isfinite(a.main_steam_pressure):
-            runs["main_steam_pressure"] = {"overrides": {(ms, "pressure"): a.main_steam_pressure}, "mode": "fixed"}
-        if self.reheat_stream and math.isfinite(a.reheat_temperature):
-            runs["reheat_temperature"] = {"overrides": {(self.reheat_stream, "temperature"): a.reheat_temperature}}
-        if self.condensers and math.isfinite(a.condenser_pressure):
-            cond = self.fs.by_id[self.condensers[0]]
-            runs["condenser_pressure"] = {
-                "overrides": {(cond.port("exhaust"), "pressure"): a.condenser_pressure},
-                "skip": frozenset(self.fs.by_id[c].relation("cooling") for c in self.condensers),
-            }
-        for sec, cause in (("HP", "hp_efficiency"), ("IP", "ip_efficiency"), ("LP", "lp_efficiency")):
-            act = a.section_efficiency.get(sec, math.nan)
-            exp = ref_kpis.get(f"section_efficiency.{sec}", math.nan)
-            if math.isfinite(act) and math.isfinite(exp) and exp > 0 and sec in self.groups_by_section:
-                factor = act / exp
-                runs[cause] = {"constants": {g: {"efficiency_factor": factor} for g in self.groups_by_section[sec]}}
-        heaters = {h: {k: v for k, v in (("ttd", a.heater_ttd.get(h)), ("dca", a.heater_dca.get(h)))
-                       if v is not None and math.isfinite(v)} for h in self.heaters}
-        heaters = {h: v for h, v in heaters.items() if v}
-        if heaters:
-            runs["feedwater_heaters"] = {"constants": heaters}
+        if abs(dp) > _PRESSURE_TOL:
+            runs["main_steam_pressure"] = {"overrides": {(vin, "pressure"): p_a, (vout, "pressure"): p_a * r_ref},
+                                           "skip": skip}
+        else:
+            runs["main_steam_pressure"] = {"zero": True}
+        if abs(r_act / r_exp - 1.0) > _RATIO_TOL:
+            runs["throttling"] = {"overrides": {(vin, "pressure"): p_a, (vout, "pressure"): p_a * r_ref * r_act / r_exp},
+                                  "skip": skip, "minus": "main_steam_pressure"}
+        else:
+            runs["throttling"] = {"zero": True}
         return runs
 
-    def deviation(self, ref: HeatBalance, ref_kpis: Mapping[str, float], actual: ActualConditions,
-                  cw_inlet: float | None = None) -> Deviation:
-        """Split actual − expected turbine heat rate into causes (one model run per cause)."""
-        hr_exp = ref_kpis.get("turbine_heat_rate", math.nan)
-        total = actual.heat_rate - hr_exp
+    # ------------------------------------------------------------------ causes
+    def _cause_runs(self, ctx: Context, ref: HeatBalance, load: float,
+                    cw_inlet: float | None) -> tuple[dict[str, dict[str, Any]], dict[str, str]]:
+        """Per cause, the solve arguments that put that one actual value into the model."""
+        rctx = ref.context()
+        runs: dict[str, dict[str, Any]] = {}
+        failed: dict[str, str] = {}
+
+        def attempt(cause: str, fn: Any) -> None:
+            try:
+                run = fn()
+            except (SolveError, ValueError, PropertyError, ArithmeticError, AssertionError) as exc:
+                failed[cause] = f"inversion failed: {type(exc).__name__}"
+                return
+            if run is not None:
+                runs.update(run if cause == "pressure" else {cause: run})
+
+        ms = self.op.throttle_stream
+
+        def temperature(stream: str) -> dict[str, Any] | None:
+            t, t_ref = ctx.ph(stream).T, rctx.ph(stream).T
+            if not math.isfinite(t):
+                raise ValueError("not observable")
+            if abs(t - t_ref) < _TEMPERATURE_TOL:
+                return {"zero": True}
+            return {"overrides": {(stream, "temperature"): t}}
+
+        attempt("main_steam_temperature", lambda: temperature(ms))
+        attempt("pressure", lambda: self._pressure_runs(ctx, ref, load))
+        if self.reheat_stream:
+            attempt("reheat_temperature", lambda: temperature(str(self.reheat_stream)))
+        if self.condensers:
+            attempt("condenser_pressure", lambda: self._condenser_run(ctx, rctx, cw_inlet))
+        for sec, cause in (("HP", "hp_efficiency"), ("IP", "ip_efficiency"), ("LP", "lp_efficiency")):
+            path = self.sections.get(sec)
+            if path is None:
+                continue
+
+            def eff(path: _SectionPath = path) -> dict[str, Any]:
+                f = self.section_factor(ctx, path)
+                if abs(f - 1.0) < _FACTOR_TOL:
+                    return {"zero": True}
+                return {"constants": {g.id: {"efficiency_factor": f} for g in path.groups}}
+
+            attempt(cause, eff)
+        kd = {d.name: d for d in self.kpi_defs}
+
+        def heaters() -> dict[str, Any]:
+            consts: dict[str, dict[str, float]] = {}
+            for h in self.heaters:
+                for k in ("ttd", "dca"):
+                    name = f"heater_{k}.{h}"
+                    v, v_ref = kd[name].func(ctx), kd[name].func(rctx)
+                    if math.isfinite(v) and abs(v - v_ref) > _TEMPERATURE_TOL:
+                        consts.setdefault(h, {})[k] = float(v)
+            return {"constants": consts} if consts else {"zero": True}
+
+        if self.heaters:
+            attempt("feedwater_heaters", heaters)
+        return runs, failed
+
+    def _condenser_run(self, ctx: Context, rctx: Context, cw_inlet: float | None) -> dict[str, Any]:
+        """The condenser at its actual performance: the UA that gives the actual back-pressure at the actual duty.
+
+        ``Tsat(p) = T_cw,in + Q / (m_cw c_p (1 − exp(−UA/(m_cw c_p))))`` with the design
+        cooling-water flow, inverted for UA at the actual duty Q and inlet temperature
+        (a lower cooling-water flow shows as a lower UA). The run keeps the cooling
+        relation, so extra duty from a turbine loss raises the back-pressure in that
+        loss's own run, not here.
+        """
+        c = self.condensers[0]
+        k = self.design.constants[c.id]
+        t_cw = cw_inlet if cw_inlet is not None and math.isfinite(cw_inlet) else c.params["cooling_water_inlet_temperature"]
+        duty = c.duty(ctx)
+        f_act = (ctx.water.T_sat(ctx.p(c.port("exhaust"))) - t_cw) / duty
+        cap = k["cw_flow"] * c.params["cooling_water_cp"]
+        if not (math.isfinite(f_act) and f_act * cap > 1.0):
+            raise ValueError("condenser duty or back-pressure not observable")
+        ua = -cap * math.log(1.0 - 1.0 / (cap * f_act))
+        if abs(ua / k["ua"] - 1.0) < _RATIO_TOL:
+            return {"zero": True}
+        return {"constants": {c.id: {"ua": ua}}}
+
+    def deviation(self, ctx: Context, actual: Mapping[str, float], cw_inlet: float | None = None, *,
+                  causes: bool = True) -> WindowDeviation:
+        """Split actual − expected turbine heat rate of one state into causes.
+
+        Parameters
+        ----------
+        ctx : Context
+            The actual (reconciled) state of the flowsheet.
+        actual : mapping
+            Actual KPIs [SI] of that state (``load_fraction``, ``turbine_heat_rate``,
+            ``gross_power``, ``section_efficiency.*``).
+        cw_inlet : float, optional
+            Cooling-water inlet temperature [K]; the configured one without it.
+        causes : bool
+            Split the total into causes (False: total and expected values only,
+            ``status = "not split: ..."``, ``by_cause`` empty).
+        """
+        load = actual.get("load_fraction", math.nan)
+        hr_act = actual.get("turbine_heat_rate", math.nan)
+        if not (math.isfinite(load) and math.isfinite(hr_act)):
+            return WindowDeviation(math.nan, {}, "unavailable: load or heat rate not available")
+        try:
+            ref, exp = self.expected(min(max(load, 0.2), 1.2), cw_inlet)
+        except (SolveError, ValueError, PropertyError) as exc:
+            return WindowDeviation(math.nan, {}, f"unavailable: expected model failed ({type(exc).__name__})")
+        for sec, path in self.sections.items():
+            try:
+                exp[f"section_efficiency.{sec}"] = self.expected_section_efficiency(ctx, path)
+            except (ValueError, PropertyError, ArithmeticError):
+                exp[f"section_efficiency.{sec}"] = math.nan
+        hr_exp = exp["turbine_heat_rate"]
+        total = hr_act - hr_exp
+        if not causes:
+            return WindowDeviation(total, {}, "not split: window not steady", exp)
+        runs, failed = self._cause_runs(ctx, ref, ref.load, cw_inlet)
         by_cause: dict[str, float] = {}
-        for cause, run in self._cause_runs(ref, ref_kpis, actual).items():
+        hr_run: dict[str, float] = {}
+        for cause, run in runs.items():
+            if run.get("zero"):
+                by_cause[cause], hr_run[cause] = 0.0, hr_exp
+                continue
             constants = self._cw(cw_inlet)
             for k, v in run.get("constants", {}).items():
                 constants.setdefault(k, {}).update(v)
             try:
-                hb = solve_off_design(self.fs, self.op, self.design, actual.load if 0.2 <= actual.load <= 1.2 else ref.load,
-                                      run.get("mode", self.pressure_mode), z0=ref.z, overrides=run.get("overrides"),
+                hb = solve_off_design(self.fs, self.op, self.design, ref.load, ref.pressure_mode, z0=ref.z,
+                                      overrides={**self._ref_overrides(ref), **run.get("overrides", {})},
                                       skip=run.get("skip", frozenset()), constants=constants)
-                by_cause[cause] = self._heat_rate(hb) - hr_exp
-            except (SolveError, ValueError):
-                by_cause[cause] = math.nan
-        known = [v for v in by_cause.values() if math.isfinite(v)]
-        by_cause["unaccounted"] = total - sum(known) if math.isfinite(total) else math.nan
-        return Deviation(hr_exp, actual.heat_rate, total, by_cause)
+                hr_run[cause] = self._heat_rate(hb)
+                base = hr_run.get(run["minus"], math.nan) if "minus" in run else hr_exp
+                by_cause[cause] = hr_run[cause] - base
+            except (SolveError, ValueError, PropertyError) as exc:
+                failed[cause] = f"model run failed: {type(exc).__name__}"
+            if "minus" in run and not math.isfinite(by_cause.get(cause, 0.0)):
+                by_cause.pop(cause, None)
+                failed[cause] = f"needs {run['minus']}"
+        if failed:
+            status = "partial: " + ", ".join(f"{c} ({r})" for c, r in sorted(failed.items()))
+        else:
+            by_cause["unaccounted"] = total - sum(by_cause.values())
+            status = "complete"
+        p_gen = actual.get("gross_power", math.nan)
+        eta_b = interpolate_boiler_efficiency(self.settings.boiler_efficiency, load)
+        fuel = {c: v * p_gen / eta_b for c, v in by_cause.items()} if math.isfinite(p_gen) and eta_b > 0 else {}
+        cost = {c: v * 3600.0 * self.fuel_price for c, v in fuel.items()} if self.fuel_price is not None else {}
+        return WindowDeviation(total, by_cause, status, exp, fuel, cost)
+
+    def _ref_overrides(self, ref: HeatBalance) -> dict[tuple[str, str], float]:
+        """The expected run's set throttle pressure (fixed or scheduled), kept in every cause run."""
+        if ref.pressure_mode != "fixed":
+            return {}
+        return {(self.op.throttle_stream, "pressure"): ref.context().p(self.op.throttle_stream)}
 
 
-def actual_conditions(rec: Any, fs: Flowsheet, op: Operation, settings: CyclePerformanceSettings) -> ActualConditions:
-    """The actual values the causes need, from a converged plant reconciliation."""
-    def kpi(name: str) -> float:
-        e = rec.kpis.get(name)
-        return e.value if e is not None and e.available else math.nan
+def window_deviation(model: ExpectedModel, rec: Any, cw_inlet: float | None = None, *,
+                     causes: bool = True) -> WindowDeviation:
+    """Total, split by cause and status of one reconciled window (the pure per-window step).
 
-    def stream(sid: str | None, q: str) -> float:
-        if sid is None or sid not in rec.streams:
-            return math.nan
-        return float(getattr(rec.streams[sid], q))
+    Parameters
+    ----------
+    model : ExpectedModel
+    rec : PlantReconciliation
+        A reconciliation (its ``z``, ``kpis``); not converged gives ``status = "unavailable: ..."``.
+    cw_inlet : float, optional
+        Reconciled cooling-water inlet temperature [K].
+    causes : bool
+        Split into causes (the daemon splits steady windows only).
+    """
+    if not getattr(rec, "converged", False) or rec.z is None:
+        return WindowDeviation(math.nan, {}, "unavailable: reconciliation did not converge")
+    ctx = model.fs.context(rec.z, model.design.constants)
+    actual = {k: (e.value if e.available else math.nan) for k, e in rec.kpis.items()}
+    return model.deviation(ctx, actual, cw_inlet, causes=causes)
 
-    reheat = next((e.port("outlet") for e in fs.of_kind(Reheater)), None)
-    cond = next((e for e in fs.of_kind(Condenser)), None)
-    heaters = [e.id for e in fs.of_kind(ClosedHeater)]
-    return ActualConditions(
-        load=kpi("load_fraction"),
-        heat_rate=kpi("turbine_heat_rate"),
-        main_steam_temperature=stream(op.throttle_stream, "temperature"),
-        main_steam_pressure=stream(op.throttle_stream, "pressure"),
-        reheat_temperature=stream(reheat, "temperature"),
-        condenser_pressure=stream(cond.port("exhaust") if cond else None, "pressure"),
-        section_efficiency={s.id: kpi(f"section_efficiency.{s.id}") for s in settings.sections},
-        heater_ttd={h: kpi(f"heater_ttd.{h}") for h in heaters},
-        heater_dca={h: kpi(f"heater_dca.{h}") for h in heaters},
-    )
