@@ -106,8 +106,8 @@ class PressureControl:
     @classmethod
     def from_config(cls, config: Any, fs: Flowsheet, op: Operation) -> PressureControl:
         perf = config.performance
-        return cls(str(perf.pressure_control),
-                   float(fs.stream_configs[op.throttle_stream].design["pressure"]),
+        design = fs.stream_configs[op.throttle_stream].design if op.throttle_stream in fs.stream_configs else {}
+        return cls(str(perf.pressure_control), float(design.get("pressure", math.nan)),
                    tuple((float(a), float(b)) for a, b in perf.pressure_schedule))
 
     def throttle_pressure(self, load: float) -> float:
