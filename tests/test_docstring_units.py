@@ -1,7 +1,7 @@
 """Every public physics function documents the unit of each physical parameter (STYLE habit 2).
 
 Scope: public functions, and public methods of public classes, in
-``twin/properties.py``, ``twin/model/*.py`` and ``twin/performance/kpi.py``.
+``twin/properties/*.py``, ``twin/model/*.py`` and ``twin/performance/kpi.py``.
 
 The rule, read from the source with :mod:`ast` (nothing is imported):
 
@@ -38,7 +38,8 @@ import twin
 
 PACKAGE_DIR = Path(twin.__file__).parent
 MODEL_FILES = sorted(str(p.relative_to(PACKAGE_DIR)) for p in (PACKAGE_DIR / "model").glob("*.py"))
-FILES = ["properties.py", *MODEL_FILES, "performance/kpi.py"]
+PROPERTY_FILES = sorted(str(p.relative_to(PACKAGE_DIR)) for p in (PACKAGE_DIR / "properties").glob("*.py"))
+FILES = [*PROPERTY_FILES, *MODEL_FILES, "performance/kpi.py"]
 
 # The one notation (SI base units, "m3" not "m³", "J/(kg K)" not "J/kgK").
 UNITS = frozenset(

@@ -38,9 +38,10 @@ def _best_us(fn: Callable[[float, float], object], a: list[float], b: list[float
 def run(args: argparse.Namespace) -> dict:
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     from twin import properties as props
+    from twin.properties import backend
 
-    raw_state = props._CP.AbstractState("IF97", "Water")  # raw reference, same library build
-    PT, HP = props._CP.PT_INPUTS, props._CP.HmassP_INPUTS
+    raw_state = backend.new_state()  # raw reference, same library build
+    PT, HP = backend.PT, backend.HP
     rng = np.random.default_rng(args.seed)
     n = args.n
     # Superheated steam 0.1-16 MPa (x > 1 at its pressure) and compressed liquid up to 20 MPa.

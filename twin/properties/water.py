@@ -1,0 +1,139 @@
+"""The full (p, h) state with partial derivatives, and the public :class:`Water`."""
+
+from __future__ import annotations
+
+import functools
+import math
+from collections.abc import Callable
+from typing import Any
+
+from twin.properties.backend import PT as _PT
+from twin.properties.base import _diff
+from twin.properties.inverse import WaterInverse
+from twin.properties.states import (
+    _DP_REL,
+    _DT,
+    _LIQ,
+    _NAN,
+    _NOLINE,
+    _VAP,
+    P_CRIT,
+    P_TRIPLE,
+    T_CRIT,
+    X_SATURATED,
+    PHState,
+    PropertyError,
+    _check,
+    _range_error,
+)
+
+
+class Water(WaterInverse):
+    """One IAPWS-IF97 ``AbstractState`` wrapper. Not thread-safe: one per thread/process.
+
+    All methods take and return SI base units and raise :class:`PropertyError`
+    for NaN or out-of-range input.
+
+    References
+    ----------
+    IAPWS R7-97(2012), Revised Release on IAPWS-IF97.
+    """
+
+    __slots__ = ()
+
+    def ph(self, p: float, h: float) -> PHState:
+        """Full state and partial derivatives at pressure p [Pa], enthalpy h [J/kg].
+
+        Single phase: one CoolProp (p, h) update for the backward-equation
+        temperature, Newton refinement on the forward equation, then (p, T)
+        getters. Derivatives from dh = T ds + v dp (ds_dh = 1/T, ds_dp = -v/T),
+        dT_dh = 1/cp, dT_dp = -(∂h/∂p)_T/cp with (∂h/∂p)_T = v - T(∂v/∂T)_p,
+        and central differences for (∂v/∂T)_p (±0.01 K) and (∂v/∂p)_T
+        (±1e-4 p), one-sided where a step would cross the saturation line.
+        Two-phase (|x| up to X_SATURATED outside [0, 1] included, so that a
+        saturated state a rounding error off the line reads as saturated): lever
+        rule on the saturation line (s, v and their partials
+        differentiate the lever rule itself), dT_dh = 0,
+        dT_dp = dT_sat/dp, v = v_f + x(v_g - v_f). Below the critical pressure x
+        is the (extrapolated) equivalent quality, dx_dh = 1/(h_g - h_f),
+        dx_dp = -(dh_f/dp (1 - x) + x dh_g/dp)/(h_g - h_f); NaN at p >= P_CRIT.
+        """
+        _check("ph", p=p, h=h)
+        x = dx_dp = dx_dh = _NAN
+        if P_TRIPLE <= p < P_CRIT:
+            try:
+                tsat, hf, hg, dhf, dhg = self._sat_h(p)
+            except (ValueError, IndexError) as exc:
+                raise _range_error("ph", exc, p=p, h=h) from None
+            hfg = hg - hf
+            x = (h - hf) / hfg
+            dx_dh = 1.0 / hfg
+            dx_dp = -(dhf * (1.0 - x) + x * dhg) / hfg
+            if -X_SATURATED <= x <= 1.0 + X_SATURATED:
+                return self._ph_wet(p, h, x, dx_dp, dx_dh)
+            phase = _LIQ if x < 0.0 else _VAP
+        else:
+            phase, tsat = _NOLINE, _NAN
+        T = self._single_T("ph", p, h, False, phase, tsat)
+        liquid = phase == _LIQ
+        up, rho = self._up, self._rho
+        up(_PT, p, T)
+        s, v, cp = self._s(), 1.0 / rho(), self._cp()
+        lo_T, hi_T, lo_p, hi_p = -math.inf, math.inf, 0.0, math.inf
+        if tsat == tsat:  # a saturation line exists: keep the stencils on this side
+            psat = self.p_sat(T) if T <= T_CRIT else P_CRIT
+            if liquid:
+                hi_T, lo_p = tsat, psat
+            else:
+                lo_T, hi_p = tsat, psat
+
+        def v_of_T(tt: float) -> float:
+            up(_PT, p, tt)
+            return 1.0 / rho()
+
+        def v_of_p(pp: float) -> float:
+            up(_PT, pp, T)
+            return 1.0 / rho()
+
+        dv_dT = _diff(v_of_T, T, _DT, lo_T, hi_T)
+        dv_dp_T = _diff(v_of_p, p, _DP_REL * p, lo_p, hi_p)
+        dT_dp = -(v - T * dv_dT) / cp
+        return PHState(p, h, T, s, v, x, cp, False,
+                       dT_dp, 1.0 / cp, -v / T, 1.0 / T,
+                       dv_dp_T + dv_dT * dT_dp, dv_dT / cp, dx_dp, dx_dh)
+
+    def _ph_wet(self, p: float, h: float, x: float, dx_dp: float, dx_dh: float) -> PHState:
+        st = self.sat(p)
+        s = st.s_f + x * (st.s_g - st.s_f)
+        vfg = st.v_g - st.v_f
+        v = st.v_f + x * vfg
+        T = st.T
+        dv_dp = (1.0 - x) * st.dv_f_dp + x * st.dv_g_dp + vfg * dx_dp
+        # entropy partials of the lever rule itself (IF97's saturation line meets
+        # dh = T ds + v dp only to ~1e-4 in these terms at low pressure, so the
+        # identity would not be the derivative of the s that is computed)
+        sfg = st.s_g - st.s_f
+        ds_dp = (1.0 - x) * st.ds_f_dp + x * st.ds_g_dp + sfg * dx_dp
+        return PHState(p, h, T, s, v, x, _NAN, True,
+                       st.dT_dp, 0.0, ds_dp, sfg * dx_dh, dv_dp, vfg * dx_dh, dx_dp, dx_dh)
+
+
+def _guarded(name: str, method: Callable[..., Any]) -> Callable[..., Any]:
+    """Turn any CoolProp range error escaping ``method`` into a PropertyError naming the inputs."""
+
+    @functools.wraps(method)
+    def wrapper(self: Water, *args: float) -> Any:
+        try:
+            return method(self, *args)
+        except PropertyError:
+            raise
+        except (ValueError, IndexError) as exc:
+            names = ("p", "T") if name.endswith("pT") else ("p", "s") if name in ("h_ps", "ps") else ("p", "h")
+            raise _range_error(name, exc, **dict(zip(names, args, strict=False))) from None
+
+    return wrapper
+
+
+for _name in ("h_pT", "s_pT", "v_pT", "cp_pT", "w_pT", "dh_dp_T", "T_ph", "s_ph", "v_ph", "x_ph", "h_ps",
+              "T_sat", "p_sat", "h_f", "h_g", "s_f", "s_g", "v_f", "v_g", "sat", "ph", "ps"):
+    setattr(Water, _name, _guarded(_name, getattr(Water, _name)))
