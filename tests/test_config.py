@@ -92,7 +92,7 @@ def test_demo_values_in_si_and_defaults_filled():
     assert cfg.unit.barometric_tag == "AMB-PB1"
     assert cfg.monitoring.min_load == pytest.approx(0.40)
     assert cfg.monitoring.steady_hold == 10.0
-    assert cfg.monitoring.steady_lambdas == (0.5, 0.3, 0.3)
+    assert cfg.monitoring.steady_lambdas == (0.3, 0.3, 0.3)
     ms = cfg.sensors_by_tag["HP-MS-P2"]
     assert ms.gauge and ms.conversion.to_si(161.0) == pytest.approx(161e5 + 101325.0)
 

@@ -2,8 +2,8 @@
 
 The simulated plant's forward model gives the true key signals and the true
 LP exhaust moisture along the default scenario; white noise with each
-sensor's stated σ at 1 s makes the 10 s cycle means and spreads the gate
-reads, as in ``twin demo``. The moisture alarm is fed the *true* moisture,
+sensor's stated σ, one reading every 5 s as in ``twin demo`` (its default
+``--sample-interval``), makes the 10 s cycle means and spreads the gate reads. The moisture alarm is fed the *true* moisture,
 so the timing measured here is the gate's (the reconciled moisture adds its
 own noise in the live demo).
 """
@@ -42,7 +42,7 @@ def scenario_truth():
     return cfg, scenario, t1, sensors, moisture
 
 
-def _run(cfg, t1, sensors, moisture, rng):
+def _run(cfg, t1, sensors, moisture, rng, sample_interval=5):
     det = steady_detector(cfg)
     mon = cfg.monitoring
     alarm = exhaust_moisture_alarm(warning=mon.exhaust_moisture_warn, alarm=mon.exhaust_moisture_alarm,
@@ -51,7 +51,7 @@ def _run(cfg, t1, sensors, moisture, rng):
              for s, x in sensors.items()}
     steady, warn_active = [], []
     for k in range(int(t1[-1] // 10)):
-        sl = slice(10 * k, 10 * k + 10)
+        sl = slice(10 * k, 10 * k + 10, sample_interval)
         t_end = 10.0 * (k + 1)
         v = det.update({s: float(y[sl].mean()) for s, y in noisy.items()}, t_end,
                        spreads={s: float(y[sl].std(ddof=1)) for s, y in noisy.items()})

@@ -64,6 +64,7 @@ def full_result(window_end: float = WINDOW_END, efficiency: float = 0.4) -> Cycl
         steady=True,
         steady_status="steady",
         steady_r={"GEN-MW1": 1.25, "HP-MS-P1": 0.75},
+        steady_frozen=("HP-MS-P1",),
         reconcile_status="converged",
         iterations=4,
         global_test=12.5,
@@ -156,6 +157,8 @@ twin_cycle_result_available{unit_id="demo-u1"} 1.0
 twin_window_end_timestamp_seconds{unit_id="demo-u1"} 1.7e+09
 twin_steady_state{unit_id="demo-u1"} 1.0
 twin_steady_state_r{tag="GEN-MW1",unit_id="demo-u1"} 1.25
+twin_steady_state_frozen{tag="GEN-MW1",unit_id="demo-u1"} 0.0
+twin_steady_state_frozen{tag="HP-MS-P1",unit_id="demo-u1"} 1.0
 twin_reconcile_status{status="converged",unit_id="demo-u1"} 1.0
 twin_reconcile_status{status="not_steady",unit_id="demo-u1"} 0.0
 twin_reconcile_global_test_statistic{unit_id="demo-u1"} 12.5

@@ -27,7 +27,7 @@ from twin.monitor.steady import (
 DEMO = Path(__file__).resolve().parents[1] / "configs" / "demo-u1.toml"
 
 # the demo's gate settings (configs/demo-u1.toml [monitoring]) and the defaults
-DEMO_GATE = {"lambdas": (0.5, 0.3, 0.3), "r_critical": 2.0, "r_exit": 3.5, "jump_critical": 100.0}
+DEMO_GATE = {"lambdas": (0.3, 0.3, 0.3), "r_critical": 2.65, "r_exit": 6.0, "jump_critical": 100.0}
 DEFAULT_GATE = {"lambdas": (0.2, 0.1, 0.1), "r_critical": 2.0, "r_exit": 3.0, "jump_critical": 25.0}
 
 
@@ -145,8 +145,8 @@ def test_hysteresis_opens_below_critical_and_closes_at_exit():
     for i in range(3000):
         v = det.update({"s": float(rng.normal())}, 10.0 * i)
         r, jump = v.r["s"], det.jump_values["s"]
-        ok = math.isfinite(r) and r < (3.5 if steady else 2.0) and not jump >= 100.0
-        kept_between += steady and ok and r >= 2.0
+        ok = math.isfinite(r) and r < (6.0 if steady else 2.65) and not jump >= 100.0
+        kept_between += steady and ok and r >= 2.65
         run = run + 1 if ok else 0
         steady = ok if steady else run >= 2
         assert v.steady == steady, i

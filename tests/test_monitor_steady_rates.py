@@ -15,8 +15,8 @@ from twin.monitor.steady import SteadyStateDetector
 
 K0 = 60  # first disturbed window
 GATES = {
-    "demo (0.5, 0.3, 0.3), R 2.0/3.5, J 100": {
-        "lambdas": (0.5, 0.3, 0.3), "r_critical": 2.0, "r_exit": 3.5, "jump_critical": 100.0},
+    "demo (0.3, 0.3, 0.3), R 2.65/6.0, J 100": {
+        "lambdas": (0.3, 0.3, 0.3), "r_critical": 2.65, "r_exit": 6.0, "jump_critical": 100.0},
     "default (0.2, 0.1, 0.1), R 2.0/3.0, J 25": {
         "lambdas": (0.2, 0.1, 0.1), "r_critical": 2.0, "r_exit": 3.0, "jump_critical": 25.0},
 }

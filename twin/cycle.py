@@ -221,6 +221,7 @@ class UnitCycle:
             unit_id=self.config.unit.id, window_start=t_end - window.window_seconds, window_end=t_end,
             steady=steady, steady_status=verdict.status if verdict is not None else "steady",
             steady_r={k: float(v) for k, v in (verdict.r if verdict is not None else {}).items()},
+            steady_frozen=tuple(verdict.frozen) if verdict is not None else (),
             reconcile_status=rec.status, reconcile_message=rec.message, iterations=rec.iterations,
             global_test=rec.global_test, global_test_dof=rec.dof, global_test_p_value=rec.p_value,
             tags=self._tags(rec, window.stats, values, excluded), streams=dict(rec.streams), kpis=kpis,

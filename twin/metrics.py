@@ -199,6 +199,9 @@ def _window(f: _Families, r: CycleResult) -> None:
         f.gauge("twin_steady_state_r", "Cao & Rhinehart R-statistic of a key signal (about 1 at steady state), dimensionless", value, tag=tag)
     f.enum("twin_steady_state_status", "Steady-state verdict, 1 for the current one", "status",
            r.steady_status, STEADY_STATUSES)
+    for tag in r.steady_r:
+        f.flag("twin_steady_state_frozen", "1 when a key signal is frozen: its spread has stayed at or below its "
+               "noise floor for several windows (a stuck transmitter, a tripped unit)", tag in r.steady_frozen, tag=tag)
     f.enum("twin_reconcile_status", "Reconciliation outcome of the latest window, 1 for the current status",
            "status", r.reconcile_status, RECONCILE_STATUSES)
     f.gauge("twin_reconcile_iterations", "Solver iterations of the latest reconciliation", r.iterations)

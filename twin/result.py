@@ -139,6 +139,7 @@ class CycleResult:
     steady: bool = False
     steady_status: str = "insufficient_data"
     steady_r: Mapping[str, float] = field(default_factory=dict)  # by tag
+    steady_frozen: tuple[str, ...] = ()  # key signals frozen (spread at or below their noise floor)
     reconcile_status: str = "insufficient_data"
     reconcile_message: str = ""
     iterations: int = 0
