@@ -31,38 +31,135 @@ BALANCE = "balance"
 PERFORMANCE = "performance"
 
 
-@dataclass
 class Rows:
-    """Accumulates residual rows and their sparse gradients during one evaluation."""
+    """Accumulates residual rows and their sparse gradients during one evaluation.
 
-    names: list[str] = field(default_factory=list)
-    sets: list[str] = field(default_factory=list)
-    values: list[float] = field(default_factory=list)
-    scales: list[float] = field(default_factory=list)
-    _rows: list[int] = field(default_factory=list)
-    _cols: list[int] = field(default_factory=list)
-    _data: list[float] = field(default_factory=list)
+    Gradients are kept in the order they were written (one run of entries per row,
+    plus entries added to earlier rows by :meth:`add_entry`); :meth:`jacobian`
+    assembles them into CSR through a :class:`SparsityPattern` when one is attached
+    (``pattern``), which is built once and reused while the entry layout repeats.
+    """
+
+    __slots__ = (
+        "_cols",
+        "_counts",
+        "_data",
+        "_xcols",
+        "_xdata",
+        "_xrows",
+        "names",
+        "pattern",
+        "scales",
+        "sets",
+        "values",
+    )
+
+    def __init__(self, pattern: SparsityPattern | None = None) -> None:
+        self.names: list[str] = []
+        self.sets: list[str] = []
+        self.values: list[float] = []
+        self.scales: list[float] = []
+        self.pattern = pattern
+        self._counts: list[int] = []
+        self._cols: list[int] = []
+        self._data: list[float] = []
+        self._xrows: list[int] = []
+        self._xcols: list[int] = []
+        self._xdata: list[float] = []
 
     def add(self, name: str, eq_set: str, value: float, grad: dict[int, float], scale: float) -> None:
         """Append one residual ``value`` with gradient ``{column: derivative}``."""
-        i = len(self.values)
         self.names.append(name)
         self.sets.append(eq_set)
         self.values.append(float(value))
         self.scales.append(scale)
-        for col, d in grad.items():
-            self._rows.append(i)
-            self._cols.append(col)
-            self._data.append(float(d))
+        self._counts.append(len(grad))
+        self._cols.extend(grad)
+        self._data.extend(grad.values())
+
+    def add_entry(self, row: int, col: int, d: float) -> None:
+        """Add ``d`` to the gradient of an existing row ``row`` at column ``col``."""
+        self._xrows.append(row)
+        self._xcols.append(col)
+        self._xdata.append(d)
 
     def residuals(self) -> np.ndarray:
         return np.asarray(self.values, dtype=float)
 
+    def entries(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """All gradient entries as ``(rows, cols, values)`` in the order written."""
+        counts = np.asarray(self._counts, dtype=np.int64)
+        r = np.repeat(np.arange(counts.size, dtype=np.int64), counts)
+        c = np.asarray(self._cols, dtype=np.int64)
+        d = np.asarray(self._data, dtype=float)
+        if self._xrows:
+            r = np.concatenate([r, np.asarray(self._xrows, dtype=np.int64)])
+            c = np.concatenate([c, np.asarray(self._xcols, dtype=np.int64)])
+            d = np.concatenate([d, np.asarray(self._xdata, dtype=float)])
+        return r, c, d
+
     def jacobian(self, n_vars: int) -> sp.csr_matrix:
         """The gradient rows as a sparse matrix; repeated entries are summed."""
-        return sp.csr_matrix(
-            (self._data, (self._rows, self._cols)), shape=(len(self.values), n_vars)
-        )
+        if self.pattern is not None:
+            return self.pattern.assemble(self, n_vars)
+        r, c, d = self.entries()
+        return sp.csr_matrix((d, (r, c)), shape=(len(self.values), n_vars))
+
+
+class SparsityPattern:
+    """The CSR structure of a Jacobian whose entries are written in a fixed order.
+
+    The first :meth:`assemble` sorts the entries into CSR (summing repeated
+    ones) and remembers where each entry lands; later calls with the same entry
+    layout (same rows, columns and order; checked every call) only scatter the
+    values into that structure. A different layout rebuilds the pattern
+    (counted in ``rebuilds``).
+    """
+
+    def __init__(self) -> None:
+        self.rebuilds = 0
+        self._counts: np.ndarray | None = None
+        self._cols = np.empty(0, dtype=np.int64)
+        self._xrows = np.empty(0, dtype=np.int64)
+        self._shape = (0, 0)
+        self._slot = np.empty(0, dtype=np.int64)
+        self._indices = np.empty(0, dtype=np.int32)
+        self._indptr = np.empty(0, dtype=np.int32)
+        self._unique = True
+
+    def _matches(self, counts: np.ndarray, cols: np.ndarray, xrows: np.ndarray, shape: tuple[int, int]) -> bool:
+        return (self._counts is not None and shape == self._shape and np.array_equal(counts, self._counts)
+                and np.array_equal(cols, self._cols) and np.array_equal(xrows, self._xrows))
+
+    def assemble(self, rows: Rows, n_vars: int) -> sp.csr_matrix:
+        """The Jacobian of ``rows`` over ``n_vars`` columns (CSR, sorted, no repeated entries)."""
+        m = len(rows.values)
+        counts = np.asarray(rows._counts, dtype=np.int64)
+        cols = np.asarray(rows._cols + rows._xcols, dtype=np.int64)
+        xrows = np.asarray(rows._xrows, dtype=np.int64)
+        data = np.asarray(rows._data + rows._xdata, dtype=float)
+        if not self._matches(counts, cols, xrows, (m, n_vars)):
+            self._build(counts, cols, xrows, (m, n_vars))
+        nnz = self._indices.size
+        values: np.ndarray
+        if self._unique:
+            values = np.empty(nnz)
+            values[self._slot] = data
+        else:
+            values = np.bincount(self._slot, weights=data, minlength=nnz).astype(float)
+        return sp.csr_matrix((values, self._indices.copy(), self._indptr.copy()), shape=(m, n_vars))
+
+    def _build(self, counts: np.ndarray, cols: np.ndarray, xrows: np.ndarray, shape: tuple[int, int]) -> None:
+        m, n_vars = shape
+        r = np.concatenate([np.repeat(np.arange(m, dtype=np.int64), counts), xrows])
+        key = r * max(n_vars, 1) + cols
+        uniq, slot = np.unique(key, return_inverse=True)
+        self._slot = slot.astype(np.int64).reshape(-1)
+        self._unique = uniq.size == key.size
+        self._indices = (uniq % max(n_vars, 1)).astype(np.int32)
+        self._indptr = np.searchsorted(uniq // max(n_vars, 1), np.arange(m + 1)).astype(np.int32)
+        self._counts, self._cols, self._xrows, self._shape = counts, cols, xrows, shape
+        self.rebuilds += 1
 
 
 def add_grad(grad: dict[int, float], col: int, d: float) -> None:
@@ -123,6 +220,8 @@ class Layout:
 
     streams: tuple[str, ...]
     extras: tuple[str, ...]
+    _stream_index: dict[str, int] = field(init=False, repr=False, compare=False)
+    _extra_index: dict[str, int] = field(init=False, repr=False, compare=False)
 
     @property
     def stream_index(self) -> dict[str, int]:
@@ -148,7 +247,7 @@ class Layout:
         return 3 * self._stream_index[stream] + 2
 
     def extra(self, name: str) -> int:
-        return self._extra_index[name]  # type: ignore[attr-defined]
+        return self._extra_index[name]
 
     def name_of(self, col: int) -> str:
         """Human name of variable ``col``, e.g. ``main_steam.p`` or ``generator.power``."""

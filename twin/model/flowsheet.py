@@ -19,6 +19,7 @@ from twin.model.core import (
     Context,
     Layout,
     Rows,
+    SparsityPattern,
 )
 from twin.model.flow import Boiler, Mixer, Pipe, Pump, Reheater, Source, Splitter, ThrottleValve
 from twin.model.heat_exchange import ClosedHeater, Condenser, OpenHeater
@@ -89,6 +90,8 @@ class Flowsheet:
                 e.members = [self.by_id[t] for t in e.params["turbines"]]
         extras = tuple(x for e in self.equipment for x in e.extras())
         self.layout = Layout(tuple(s.id for s in streams), extras)
+        # one Jacobian structure per kind of evaluation (performance, skipped relations, specs)
+        self._patterns: dict[tuple, SparsityPattern] = {}
 
     @classmethod
     def from_config(cls, config: Any, props: Water | None = None) -> Flowsheet:
@@ -116,6 +119,7 @@ class Flowsheet:
         skip: Iterable[str] = (),
         specs: Sequence[Spec] = (),
         constants: dict | None = None,
+        context: Context | None = None,
     ) -> Rows:
         """Residuals and gradients of the balances, performance relations and specs at ``z``.
 
@@ -131,10 +135,25 @@ class Flowsheet:
             Specified stream values appended as rows.
         constants : dict
             Design-point constants by equipment id (Stodola K, condenser UA...).
+        context : Context, optional
+            The evaluation context at this ``z`` (with ``constants``) when the caller shares
+            its property cache; a new one otherwise.
+
+        Returns
+        -------
+        Rows
+            With a :class:`SparsityPattern` attached that is kept per kind of evaluation, so
+            the Jacobian's CSR structure is built once.
         """
-        ctx = self.context(z, constants)
-        rows = Rows()
+        ctx = context if context is not None else self.context(z, constants)
         skipped = frozenset(skip)
+        key = (performance, skipped, tuple(spec.name for spec in specs))
+        pattern = self._patterns.get(key)
+        if pattern is None:
+            if len(self._patterns) > 64:
+                self._patterns.clear()
+            pattern = self._patterns[key] = SparsityPattern()
+        rows = Rows(pattern)
         for e in self.equipment:
             e.balances(ctx, rows)
         if performance:
@@ -205,7 +224,7 @@ class Flowsheet:
                 if fallback_used:
                     break
                 fallback_used = self._fallback(g)
-        missing = [self.layout.name_of(i) for i in np.flatnonzero(np.isnan(g.z))]
+        missing = [self.layout.name_of(int(i)) for i in np.flatnonzero(np.isnan(g.z))]
         if missing:
             raise ValueError(f"no initial guess for {len(missing)} variables (first: {', '.join(missing[:6])})")
         return g.z

@@ -296,17 +296,16 @@ class PlantSystem:
     # ------------------------------------------------------------ equations
     def _rows(self, z: np.ndarray) -> tuple[Rows, list[float]]:
         fs = self.fs
-        rows = fs.evaluate(z, skip=self._skip, constants=self.constants)
+        # one context: the sensors' temperatures reuse the flowsheet's property states
+        ctx = fs.context(z, self.constants)
+        rows = fs.evaluate(z, skip=self._skip, constants=self.constants, context=ctx)
         scales = list(rows.scales)
         # soft relations: r_j(z) − e_j = 0
         for i, name in enumerate(rows.names):
             r = self.soft_by_name.get(name)
             if r is not None:
                 rows.values[i] -= float(z[r.column])
-                rows._rows.append(i)
-                rows._cols.append(r.column)
-                rows._data.append(-1.0)
-        ctx = fs.context(z, self.constants)
+                rows.add_entry(i, r.column, -1.0)
         lay = fs.layout
         for e, r in self._supply:
             out = e.port("outlet")
