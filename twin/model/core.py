@@ -12,7 +12,7 @@ Each row has a name (``"<equipment>.<relation>"``), a set (``"balance"`` or
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import scipy.sparse as sp
@@ -212,6 +212,73 @@ class Context:
     def ps(self, pressure: float, entropy: float) -> PSState:
         """State at pressure [Pa] and specific entropy [J/(kg K)] (not cached)."""
         return self.water.ps(pressure, entropy)
+
+    def derive(self, z: np.ndarray) -> Context:
+        """A context at another ``z`` (same layout and constants) that keeps this one's cached states.
+
+        A stream's property state is kept where its pressure and enthalpy are the same
+        in both vectors (bit for bit), so the new context gives exactly the numbers a
+        fresh one would; saturation states are keyed by pressure and all kept. Used where
+        many nearby vectors are evaluated (finite differences, outputs at the solution).
+        """
+        new = Context(self.layout, z, self.water, self.constants)
+        if self._ph:
+            n_s = len(self.layout.streams)
+            zs, zo = z[: 3 * n_s], self.z[: 3 * n_s]
+            same = (zs[1::3] == zo[1::3]) & (zs[2::3] == zo[2::3])
+            new._ph = {k: st for k, st in self._ph.items() if same[k]}
+        new._sat = dict(self._sat)
+        return new
+
+    def with_value(self, col: int, value: float) -> Context:
+        """A context with ``z[col]`` replaced by ``value``; cached states that do not depend on it are kept.
+
+        The numbers are those of a fresh context. Saturation states (keyed by pressure)
+        are shared with this context.
+        """
+        new = self._shifted(col, value)
+        k = self._stream_of(col)
+        if k is not None:
+            new._ph.pop(k, None)
+        return new
+
+    def nudged(self, col: int, value: float) -> Context:
+        """Like :meth:`with_value`, but a moved stream state is this context's, extended to first order.
+
+        The stream whose pressure or enthalpy ``col`` is gets the state
+        ``X + (∂X/∂p) Δp + (∂X/∂h) Δh`` for X in T, s, v, x (the derivatives are the
+        state's own). A central difference over two nudged contexts is then the
+        analytic chain rule through the state's derivatives, with no property call
+        for the moved stream. For derivative stencils only.
+        """
+        new = self._shifted(col, value)
+        k = self._stream_of(col)
+        if k is not None:
+            st = self._ph.get(k)
+            if st is None:
+                new._ph.pop(k, None)
+            else:
+                dp = value - float(self.z[col]) if col % 3 == 1 else 0.0
+                dh = value - float(self.z[col]) if col % 3 == 2 else 0.0
+                new._ph[k] = replace(
+                    st, p=st.p + dp, h=st.h + dh, T=st.T + st.dT_dp * dp + st.dT_dh * dh,
+                    s=st.s + st.ds_dp * dp + st.ds_dh * dh, v=st.v + st.dv_dp * dp + st.dv_dh * dh,
+                    x=st.x + st.dx_dp * dp + st.dx_dh * dh)
+        return new
+
+    def _shifted(self, col: int, value: float) -> Context:
+        z = self.z.copy()
+        z[col] = value
+        new = Context(self.layout, z, self.water, self.constants)
+        new._ph = dict(self._ph)
+        new._sat = self._sat  # keyed by the exact pressure: valid in every context
+        return new
+
+    def _stream_of(self, col: int) -> int | None:
+        """The stream whose state (p, h) column ``col`` is, else None (flows and equipment variables)."""
+        if col < 3 * len(self.layout.streams) and col % 3 != 0:
+            return col // 3
+        return None
 
 
 @dataclass(frozen=True)

@@ -40,7 +40,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-from twin.model.core import Rows
+from twin.model.core import Context, Rows
 from twin.model.flow import Pipe, Pump, Reheater, Source
 from twin.model.flowsheet import Flowsheet
 from twin.model.heat_exchange import ClosedHeater, Condenser
@@ -224,6 +224,7 @@ class PlantSystem:
         self._skip = self._non_soft_relations()
         self._cache_key: bytes | None = None
         self._cache: tuple[np.ndarray, sp.csr_matrix] | None = None
+        self._cache_ctx: Context | None = None
         self._scales = self._make_scales()
 
     # ------------------------------------------------------------ structure
@@ -294,10 +295,23 @@ class PlantSystem:
         return float(z[b.target_column])
 
     # ------------------------------------------------------------ equations
-    def _rows(self, z: np.ndarray) -> tuple[Rows, list[float]]:
+    def context(self, z: np.ndarray) -> Context:
+        """An evaluation context at ``z`` (model part) that reuses the last evaluation's property states.
+
+        States of streams whose pressure and enthalpy equal those of the last evaluated
+        vector are taken over (see :meth:`twin.model.core.Context.derive`), so outputs at the
+        solution cost no property calls for what the solve already computed.
+        """
+        z = np.asarray(z, dtype=float)
+        if self._cache_ctx is not None:
+            return self._cache_ctx.derive(z)
+        return self.fs.context(z, self.constants)
+
+    def _rows(self, z: np.ndarray, ctx: Context | None = None) -> tuple[Rows, list[float]]:
         fs = self.fs
         # one context: the sensors' temperatures reuse the flowsheet's property states
-        ctx = fs.context(z, self.constants)
+        if ctx is None:
+            ctx = fs.context(z, self.constants)
         rows = fs.evaluate(z, skip=self._skip, constants=self.constants, context=ctx)
         scales = list(rows.scales)
         # soft relations: r_j(z) − e_j = 0
@@ -328,9 +342,11 @@ class PlantSystem:
     def _evaluate(self, z: np.ndarray) -> tuple[np.ndarray, sp.csr_matrix]:
         key = z.tobytes()
         if key != self._cache_key or self._cache is None:
-            rows, _ = self._rows(z)
+            ctx = self.fs.context(z.copy(), self.constants)  # kept: must not see later changes to z
+            rows, _ = self._rows(z, ctx)
             self._cache = (rows.residuals(), rows.jacobian(self.n_vars))
             self._cache_key = key
+            self._cache_ctx = ctx
         return self._cache
 
     def residuals(self, z: np.ndarray) -> np.ndarray:

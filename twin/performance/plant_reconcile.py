@@ -25,6 +25,7 @@ from typing import Any
 
 import numpy as np
 
+from twin.model.core import Context
 from twin.model.flowsheet import Flowsheet
 from twin.model.solve import HeatBalance, Operation, SolveError, solve_design, solve_off_design
 from twin.performance.kpi import CyclePerformanceSettings, KpiDef, kpi_definitions
@@ -241,15 +242,22 @@ class PlantReconciler:
         if z0 is None:
             z0 = self._z_warm if self._z_warm is not None else fresh()
         started = time.perf_counter()
-        res = reconcile(sysm, z0, measured, y, V, options=self.options)
+        # the classification of this set of valid tags, decided at the first converged solution
+        cls_key = tuple(int(i) for i in measured)
+        cached = self._classifications.get(cls_key)
+        res = reconcile(sysm, z0, measured, y, V, options=self.options, classification=cached)
         if not res.converged and time.perf_counter() - started < self.time_budget:
             # a stale warm start (after a load change): restart from the forward model,
             # and from the design point as a last resort
             starts = ([] if fresh_cache and z0 is fresh_cache[0] else [fresh()])
             for start in [*starts, self.system.initial_point(self.design.z)]:
-                res = reconcile(sysm, start, measured, y, V, options=self.options)
+                res = reconcile(sysm, start, measured, y, V, options=self.options, classification=cached)
                 if res.converged or time.perf_counter() - started > self.time_budget:
                     break
+        if res.converged and cached is None and res.classification is not None:
+            if len(self._classifications) > 64:
+                self._classifications.clear()
+            self._classifications[cls_key] = res.classification
         if not res.converged:
             status = "model_error" if res.status == "model_error" else "not_converged"
             return PlantReconciliation(status, res.message, res.iterations, tags=tags_out)
@@ -308,12 +316,12 @@ class PlantReconciler:
         # ---- states, KPIs
         z_hat, cov = res.z_hat, res.cov_z
         streams = self._streams(z_hat)
-        kpis = self._kpis(z_hat, cov, kpis)
+        kpi_values = self._kpis(z_hat, cov, kpis)
         unmeasured = self._unmeasured(z_hat, cov)
         from scipy.stats import chi2
 
         return PlantReconciliation(
-            "converged", res.message, res.iterations, z_hat, cov, tags_out, streams, kpis,
+            "converged", res.message, res.iterations, z_hat, cov, tags_out, streams, kpi_values,
             float(res.gamma), int(res.dof), float(res.p_value),
             float(chi2.ppf(0.95, res.dof)) if res.dof > 0 else math.nan,
             tuple(suspects), model_suspects, tuple(r.name for r in sysm.soft), unmeasured,
@@ -322,7 +330,7 @@ class PlantReconciler:
     # ------------------------------------------------------------------ outputs
     def _streams(self, z: np.ndarray) -> dict[str, StreamState]:
         out = {}
-        ctx = self.fs.context(z, self.design.constants)
+        ctx = self.system.context(z)  # the solve's property states where they apply
         for sid in self.fs.layout.streams:
             m, p, h = ctx.m(sid), ctx.p(sid), ctx.h(sid)
             T = x = math.nan
@@ -335,20 +343,34 @@ class PlantReconciler:
             out[sid] = StreamState(m, p, T, h, x)
         return out
 
-    def _kpi_estimate(self, d: KpiDef, z: np.ndarray, cov: np.ndarray) -> Estimate:
+    def _kpi_estimate(self, d: KpiDef, z: np.ndarray, cov: np.ndarray,
+                      base: Context | None = None, shifted: dict[tuple[int, int], Context] | None = None) -> Estimate:
+        """A KPI and its expanded uncertainty by linear propagation (central differences).
+
+        ``base`` is a context at ``z``; ``shifted`` caches the contexts at ``z ± step·e_c`` by
+        ``(column, ±1)``, shared by every KPI that reads column ``c``. A moved stream's
+        property state is the base state extended to first order by its own derivatives
+        (:meth:`twin.model.core.Context.nudged`), so the difference quotient is the chain
+        rule through the analytic state derivatives and costs no property call for it.
+        """
         cols = list(d.columns)
         if any(not math.isfinite(z[c]) for c in cols):
             return Estimate()
-        constants = self.system.constants
+        base = base if base is not None else self.system.context(z)
+        shifted = {} if shifted is None else shifted
+
+        def at(c: int, sign: int, step: float) -> Context:
+            ctx = shifted.get((c, sign))
+            if ctx is None:
+                ctx = shifted[(c, sign)] = base.nudged(c, z[c] + sign * step)
+            return ctx
+
         try:
-            value = float(d.func(self.fs.context(z, constants)))
+            value = float(d.func(base))
             grad = np.zeros(len(cols))
             for k, c in enumerate(cols):
                 step = 1e-6 * max(abs(z[c]), 1.0)
-                zp, zm = z.copy(), z.copy()
-                zp[c] += step
-                zm[c] -= step
-                grad[k] = (d.func(self.fs.context(zp, constants)) - d.func(self.fs.context(zm, constants))) / (2 * step)
+                grad[k] = (d.func(at(c, 1, step)) - d.func(at(c, -1, step))) / (2 * step)
         except (ValueError, ZeroDivisionError, ArithmeticError):
             return Estimate()
         C = cov[np.ix_(cols, cols)]
@@ -359,7 +381,10 @@ class PlantReconciler:
 
     def _kpis(self, z: np.ndarray, cov: np.ndarray, names: Sequence[str] | None = None) -> dict[str, Estimate]:
         wanted = None if names is None else set(names)
-        return {d.name: self._kpi_estimate(d, z, cov) for d in self.kpi_defs if wanted is None or d.name in wanted}
+        base = self.system.context(z)
+        shifted: dict[tuple[int, int], Context] = {}
+        return {d.name: self._kpi_estimate(d, z, cov, base, shifted)
+                for d in self.kpi_defs if wanted is None or d.name in wanted}
 
     def _unmeasured(self, z: np.ndarray, cov: np.ndarray) -> dict[str, Estimate]:
         """Unmeasured quantities worth reporting: LP exhaust enthalpies, line factors."""
