@@ -12,6 +12,7 @@ from twin.properties.backend import QT as _QT
 from twin.properties.backend import new_state
 from twin.properties.states import (
     _DP_REL,
+    _T_LO,
     _T_SAT_TOP,
     P_CRIT,
     P_TRIPLE,
@@ -33,6 +34,26 @@ def _diff(f: Callable[[float], float], x0: float, step: float, lo: float, hi: fl
     return (f(x0 + step) - f(x0 - step)) / (2.0 * step)
 
 
+# Near the saturation line at all? A (p, T) with T in [273 + k, 274 + k) K can lie on the
+# line only if p_sat(273 + k) <= p <= p_sat(274 + k); only such a (p, T) pays for the
+# exact T_sat(p) check. One bucket per kelvin, 273.15 K - T_CRIT, widened by 1e-9 and
+# kept inside P_TRIPLE <= p < P_CRIT, where T_sat(p) exists.
+def _sat_buckets() -> tuple[list[float], list[float]]:
+    st = new_state()
+    lo, hi = [], []
+    for k in range(int(T_CRIT) - 273 + 1):
+        ends = []
+        for T in (max(273.0 + k, _T_LO), min(274.0 + k, T_CRIT)):
+            st.update(_QT, 0.0, T)
+            ends.append(st.p())
+        lo.append(max(ends[0] * (1.0 - 1e-9), P_TRIPLE))  # T_sat(p) exists for P_TRIPLE <= p < P_CRIT
+        hi.append(min(ends[1] * (1.0 + 1e-9), math.nextafter(P_CRIT, 0.0)))
+    return lo, hi
+
+
+_P_SAT_LO, _P_SAT_HI = _sat_buckets()
+
+
 class WaterBase:
     """One IAPWS-IF97 ``AbstractState`` wrapper. Not thread-safe: one per thread/process.
 
@@ -44,7 +65,7 @@ class WaterBase:
     IAPWS R7-97(2012), Revised Release on IAPWS-IF97.
     """
 
-    __slots__ = ("_cp", "_h", "_p", "_q", "_rho", "_s", "_st", "_t", "_up", "_w")
+    __slots__ = ("_cp", "_cv", "_h", "_p", "_q", "_rho", "_s", "_st", "_t", "_up", "_w")
 
     def __init__(self) -> None:
         st = new_state()
@@ -54,6 +75,7 @@ class WaterBase:
         self._s = st.smass
         self._rho = st.rhomass
         self._cp = st.cpmass
+        self._cv = st.cvmass
         self._w = st.speed_sound
         self._t = st.T
         self._p = st.p
@@ -66,8 +88,21 @@ class WaterBase:
         On the saturation line (T == T_sat(p)) the saturated liquid, as for every
         (p, T) function here; one ulp above T_sat(p) the saturated vapour.
         """
-        self._pt("h_pT", p, T)
-        return self._h()
+        # inlined _pt (the most frequent call; no wrapper, one try)
+        try:
+            if _T_LO <= T <= _T_SAT_TOP:
+                k = int(T) - 273
+                if _P_SAT_LO[k] <= p <= _P_SAT_HI[k]:
+                    self._up(_PQ, p, 0.0)
+                    tsat = self._t()
+                    if abs(T - tsat) <= SAT_MARGIN * tsat:
+                        T = tsat * (1.0 - SAT_MARGIN) if tsat >= T else tsat * (1.0 + SAT_MARGIN)
+            self._up(_PT, p, T)
+            return self._h()
+        except (ValueError, IndexError) as exc:
+            if not (isfinite(p) and isfinite(T)):
+                raise _error("h_pT", "input is not a finite number", p=p, T=T) from None
+            raise _range_error("h_pT", exc, p=p, T=T) from None
 
     def s_pT(self, p: float, T: float) -> float:
         """Specific entropy [J/(kg K)] at pressure p [Pa] and temperature T [K]."""
@@ -123,7 +158,7 @@ class WaterBase:
         if not (isfinite(p) and isfinite(T)):
             raise _error(func, "input is not a finite number", p=p, T=T)
         try:
-            if P_TRIPLE <= p < P_CRIT and T <= _T_SAT_TOP:
+            if _T_LO <= T <= _T_SAT_TOP and _P_SAT_LO[int(T) - 273] <= p <= _P_SAT_HI[int(T) - 273]:
                 self._up(_PQ, p, 0.0)
                 tsat = self._t()
                 if abs(T - tsat) <= SAT_MARGIN * tsat:  # CoolProp's region pick is unsure here
@@ -215,17 +250,21 @@ class WaterBase:
         t, hf, hg, sf, sg, vf, vg = mid
         return SatState(p, t, hf, hg, sf, sg, vf, vg, d[0], d[1], d[2], d[3], d[4], d[5], d[6])
 
-    def _sat_h(self, p: float) -> tuple[float, float, float, float, float]:
-        """(T_sat, h_f, h_g, dh_f/dp, dh_g/dp) for p < P_CRIT; cheaper than sat()."""
+    def _sat_h(self, p: float) -> tuple[float, float, float]:
+        """(T_sat [K], h_f, h_g [J/kg]) for P_TRIPLE <= p < P_CRIT; cheaper than sat()."""
         up, th = self._up, self._h
         up(_PQ, p, 0.0)
         tsat, hf = self._t(), th()
         up(_PQ, p, 1.0)
-        hg = th()
+        return tsat, hf, th()
+
+    def _sat_dh(self, p: float) -> tuple[float, float]:
+        """(dh_f/dp, dh_g/dp) [m3/kg] along the saturation line, as in sat(); p < P_CRIT."""
+        up, th = self._up, self._h
         dp = _DP_REL * p
         if p - dp <= P_TRIPLE or p + dp >= P_CRIT:
             s = self.sat(p)
-            return tsat, hf, hg, s.dh_f_dp, s.dh_g_dp
+            return s.dh_f_dp, s.dh_g_dp
         up(_PQ, p + dp, 0.0)
         hf1 = th()
         up(_PQ, p - dp, 0.0)
@@ -234,4 +273,9 @@ class WaterBase:
         hg1 = th()
         up(_PQ, p - dp, 1.0)
         hg0 = th()
-        return tsat, hf, hg, (hf1 - hf0) / (2.0 * dp), (hg1 - hg0) / (2.0 * dp)
+        return (hf1 - hf0) / (2.0 * dp), (hg1 - hg0) / (2.0 * dp)
+
+    def _dx_dp(self, p: float, x: float, dx_dh: float) -> float:
+        """(∂x/∂p)_h [1/Pa] = -(dh_f/dp (1 - x) + x dh_g/dp)/(h_g - h_f), dx_dh = 1/(h_g - h_f)."""
+        dhf, dhg = self._sat_dh(p)
+        return -(dhf * (1.0 - x) + x * dhg) * dx_dh

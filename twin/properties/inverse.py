@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from math import isfinite
 
 from twin.properties.backend import HP as _HP
@@ -9,6 +10,7 @@ from twin.properties.backend import PQ as _PQ
 from twin.properties.backend import PS as _PS
 from twin.properties.backend import PT as _PT
 from twin.properties.base import WaterBase
+from twin.properties.guess import start_T
 from twin.properties.states import (
     _LIQ,
     _NAN,
@@ -114,8 +116,10 @@ class WaterInverse(WaterBase):
     def _single_T(self, func: str, p: float, target: float, by_s: bool, phase: int, tsat: float) -> float:
         """Forward-consistent single-phase T [K] at (p, h) (or (p, s)); leaves the state there.
 
-        Starts from CoolProp's backward-equation flash and refines on the forward
-        equation inside the phase's bracket, which keeps SAT_MARGIN from T_sat.
+        Starts from the table of :mod:`twin.properties.guess` and refines on the
+        forward equation inside the phase's bracket, which keeps SAT_MARGIN from
+        T_sat; if that does not converge in a few steps, starts again from
+        CoolProp's backward-equation flash with a bracketed Newton.
         """
         key = "s" if by_s else "h"
         top = 2273.15 if p <= 50e6 else _T_HI
@@ -125,6 +129,10 @@ class WaterInverse(WaterBase):
             lo, hi = tsat * (1.0 + SAT_MARGIN), top
         else:
             lo, hi = _T_LO, top
+        T = self._chord(p, target, by_s, start_T(p, target, by_s, phase), lo, hi)
+        if T == T:
+            return T
+        # the table start did not converge quickly: CoolProp's flash, then a bracketed Newton
         up = self._up
         try:
             if by_s:
@@ -156,6 +164,41 @@ class WaterInverse(WaterBase):
         except (ValueError, IndexError) as exc:
             raise _range_error(func, exc, p=p, h=target) from None
         return self._solve_T(func, p, target, False, T, lo, hi)
+
+    def _chord(self, p: float, target: float, by_s: bool, T0: float, lo: float, hi: float) -> float:
+        """T [K] in [lo, hi] with h(p, T) (or s) = target, by chord steps from T0; NaN if not quick.
+
+        The slope cp (cp/T for s) is taken at T0 and re-taken only when a step
+        shrinks by less than 100 times; accepted when a step is below _TOL_T, as
+        the Newton solve. Leaves the state at the result.
+        """
+        if T0 != T0:
+            return _NAN
+        up, get, cp = self._up, (self._s if by_s else self._h), self._cp
+        T = min(max(T0, lo), hi)
+        try:
+            up(_PT, p, T)
+            f = get()
+            c = cp() / T if by_s else cp()
+            last = math.inf
+            for _ in range(8):
+                dT = (target - f) / c
+                T_new = T + dT
+                if not lo <= T_new <= hi:
+                    return _NAN
+                a = abs(dT)
+                if a <= _TOL_T:
+                    up(_PT, p, T_new)
+                    return T_new
+                T = T_new
+                up(_PT, p, T)
+                f = get()
+                if a > 1e-2 * last:
+                    c = cp() / T if by_s else cp()
+                last = a
+        except (ValueError, IndexError):
+            return _NAN
+        return _NAN
 
     def _start_in(self, func: str, p: float, target: float, by_s: bool, lo: float, hi: float,
                   exc: Exception | None) -> float:

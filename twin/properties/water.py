@@ -16,6 +16,7 @@ from twin.properties.states import (
     _LIQ,
     _NAN,
     _NOLINE,
+    _T_LO,
     _VAP,
     P_CRIT,
     P_TRIPLE,
@@ -26,6 +27,14 @@ from twin.properties.states import (
     _check,
     _range_error,
 )
+
+# Analytic (∂v/∂T)_p and (∂v/∂p)_T from cv and the speed of sound in region-1 liquid only:
+# there they cost less than four (p, T) stencil evaluations; in vapour CoolProp's IF97
+# cv and w getters cost more than the stencil (measured with twin bench properties).
+_T_REGION13 = 623.15  # [K] IAPWS-IF97 region 1 / 3 boundary
+# [K] below this, liquid (∂v/∂T)_p may be negative (density maximum 277.13 K at 0.1 MPa,
+# lower at higher pressure [memory]); there it comes from central differences
+_T_DENSITY_MAX = 300.0
 
 
 class Water(WaterInverse):
@@ -59,26 +68,65 @@ class Water(WaterInverse):
         dx_dp = -(dh_f/dp (1 - x) + x dh_g/dp)/(h_g - h_f); NaN at p >= P_CRIT.
         """
         _check("ph", p=p, h=h)
-        x = dx_dp = dx_dh = _NAN
+        x = dx_dh = _NAN
+        dx_dp: float | None = _NAN
         if P_TRIPLE <= p < P_CRIT:
             try:
-                tsat, hf, hg, dhf, dhg = self._sat_h(p)
+                tsat, hf, hg = self._sat_h(p)
+                hfg = hg - hf
+                x = (h - hf) / hfg
+                dx_dh = 1.0 / hfg
+                if -X_SATURATED <= x <= 1.0 + X_SATURATED:
+                    return self._ph_wet(p, h, x, self._dx_dp(p, x, dx_dh), dx_dh)
             except (ValueError, IndexError) as exc:
+                if isinstance(exc, PropertyError):
+                    raise
                 raise _range_error("ph", exc, p=p, h=h) from None
-            hfg = hg - hf
-            x = (h - hf) / hfg
-            dx_dh = 1.0 / hfg
-            dx_dp = -(dhf * (1.0 - x) + x * dhg) / hfg
-            if -X_SATURATED <= x <= 1.0 + X_SATURATED:
-                return self._ph_wet(p, h, x, dx_dp, dx_dh)
             phase = _LIQ if x < 0.0 else _VAP
+            dx_dp = None  # computed on first access (PHState.dx_dp)
         else:
             phase, tsat = _NOLINE, _NAN
         T = self._single_T("ph", p, h, False, phase, tsat)
-        liquid = phase == _LIQ
         up, rho = self._up, self._rho
         up(_PT, p, T)
         s, v, cp = self._s(), 1.0 / rho(), self._cp()
+        if phase != _VAP and T <= _T_REGION13:
+            # region-1 liquid: (∂v/∂p)_T = -(cp/cv) v^2/w^2 and (∂v/∂T)_p =
+            # sqrt(-(∂v/∂p)_T (cp - cv)/T), from w^2 = -v^2 (∂p/∂v)_s and
+            # cp - cv = -T (∂v/∂T)_p^2 / (∂v/∂p)_T. The root has no sign, so below
+            # _T_DENSITY_MAX (∂v/∂T)_p comes from a central difference in T
+            cv, ws = self._cv(), self._w()
+            dv_dp_T = -(cp / cv) * v * v / (ws * ws)
+            if T >= _T_DENSITY_MAX:
+                dv_dT = math.sqrt(max(-dv_dp_T * (cp - cv) / T, 0.0))
+            else:
+                dv_dT = self._dv_dT_stencil(p, T, tsat if tsat == tsat else math.inf)
+        else:
+            dv_dT, dv_dp_T = self._dv_stencils(p, T, tsat, phase == _LIQ)
+        dT_dp = -(v - T * dv_dT) / cp
+        return PHState(p, h, T, s, v, x, cp, False,
+                       dT_dp, 1.0 / cp, -v / T, 1.0 / T,
+                       dv_dp_T + dv_dT * dT_dp, dv_dT / cp, dx_dp, dx_dh, self)
+
+    def _dv_dT_stencil(self, p: float, T: float, hi_T: float) -> float:
+        """(∂v/∂T)_p [m3/(kg K)] of liquid by a central difference (±0.01 K), inside [273.15 K, hi_T]."""
+        up, rho = self._up, self._rho
+
+        def v_of_T(tt: float) -> float:
+            up(_PT, p, tt)
+            return 1.0 / rho()
+
+        return _diff(v_of_T, T, _DT, _T_LO, hi_T)
+
+    def _dv_stencils(self, p: float, T: float, tsat: float, liquid: bool) -> tuple[float, float]:
+        """((∂v/∂T)_p [m3/(kg K)], (∂v/∂p)_T [m3/(kg Pa)]) by central differences on (p, T).
+
+        Steps ±0.01 K and ±1e-4 p, one-sided where a step would cross the
+        saturation line. Used outside region-1 liquid (vapour, region 3 and
+        above), where CoolProp's cv and speed-of-sound getters cost more than
+        these four evaluations.
+        """
+        up, rho = self._up, self._rho
         lo_T, hi_T, lo_p, hi_p = -math.inf, math.inf, 0.0, math.inf
         if tsat == tsat:  # a saturation line exists: keep the stencils on this side
             psat = self.p_sat(T) if T <= T_CRIT else P_CRIT
@@ -95,12 +143,7 @@ class Water(WaterInverse):
             up(_PT, pp, T)
             return 1.0 / rho()
 
-        dv_dT = _diff(v_of_T, T, _DT, lo_T, hi_T)
-        dv_dp_T = _diff(v_of_p, p, _DP_REL * p, lo_p, hi_p)
-        dT_dp = -(v - T * dv_dT) / cp
-        return PHState(p, h, T, s, v, x, cp, False,
-                       dT_dp, 1.0 / cp, -v / T, 1.0 / T,
-                       dv_dp_T + dv_dT * dT_dp, dv_dT / cp, dx_dp, dx_dh)
+        return _diff(v_of_T, T, _DT, lo_T, hi_T), _diff(v_of_p, p, _DP_REL * p, lo_p, hi_p)
 
     def _ph_wet(self, p: float, h: float, x: float, dx_dp: float, dx_dh: float) -> PHState:
         st = self.sat(p)
@@ -134,6 +177,6 @@ def _guarded(name: str, method: Callable[..., Any]) -> Callable[..., Any]:
     return wrapper
 
 
-for _name in ("h_pT", "s_pT", "v_pT", "cp_pT", "w_pT", "dh_dp_T", "T_ph", "s_ph", "v_ph", "x_ph", "h_ps",
-              "T_sat", "p_sat", "h_f", "h_g", "s_f", "s_g", "v_f", "v_g", "sat", "ph", "ps"):
+for _name in ("s_pT", "v_pT", "cp_pT", "w_pT", "dh_dp_T", "T_ph", "s_ph", "v_ph", "x_ph", "h_ps",
+              "T_sat", "p_sat", "h_f", "h_g", "s_f", "s_g", "v_f", "v_g", "sat", "ph", "ps"):  # h_pT maps its own
     setattr(Water, _name, _guarded(_name, getattr(Water, _name)))
