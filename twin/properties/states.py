@@ -7,7 +7,7 @@ specific entropy [J/(kg K)], specific volume [m3/kg].
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from math import isfinite
 from typing import Any
 
@@ -82,6 +82,7 @@ class SatState:
     dv_g_dp: float
 
 
+@dataclass(frozen=True, slots=True)
 class PHState:
     """State fixed by pressure p [Pa] and specific enthalpy h [J/kg].
 
@@ -90,32 +91,10 @@ class PHState:
     two_phase. Partial derivatives at constant h (``d*_dp``, per Pa) and at
     constant p (``d*_dh``, per J/kg) of T, s, v and x.
 
-    Immutable. In single phase ``dx_dp`` (four saturation evaluations) is
-    computed on first access, by the :class:`~twin.properties.Water` that made
-    the state (so read it in that Water's thread).
+    In single phase ``dx_dp`` (four saturation evaluations) is computed on first
+    access by the :class:`~twin.properties.Water` that made the state (so read it
+    in that Water's thread); ``dataclasses.replace`` copies it as it stands.
     """
-
-    __slots__ = (
-        "T",
-        "_dx_dp",
-        "_water",
-        "cp",
-        "dT_dh",
-        "dT_dp",
-        "ds_dh",
-        "ds_dp",
-        "dv_dh",
-        "dv_dp",
-        "dx_dh",
-        "h",
-        "p",
-        "s",
-        "two_phase",
-        "v",
-        "x",
-    )
-    _FIELDS = ("p", "h", "T", "s", "v", "x", "cp", "two_phase", "dT_dp", "dT_dh", "ds_dp", "ds_dh",
-               "dv_dp", "dv_dh", "dx_dp", "dx_dh")
 
     p: float
     h: float
@@ -131,22 +110,9 @@ class PHState:
     ds_dh: float
     dv_dp: float
     dv_dh: float
-    dx_dh: float
-    _dx_dp: float | None
-    _water: Any
-
-    def __init__(self, p: float, h: float, T: float, s: float, v: float, x: float, cp: float,
-                 two_phase: bool, dT_dp: float, dT_dh: float, ds_dp: float, ds_dh: float,
-                 dv_dp: float, dv_dh: float, dx_dp: float | None, dx_dh: float,
-                 water: Any = None) -> None:
-        """Fields in the order of ``_FIELDS``; ``dx_dp=None`` with ``water`` defers it."""
-        put = object.__setattr__
-        for name, value in zip(self._FIELDS, (p, h, T, s, v, x, cp, two_phase, dT_dp, dT_dh, ds_dp,
-                                              ds_dh, dv_dp, dv_dh), strict=False):
-            put(self, name, value)
-        put(self, "_dx_dp", dx_dp)
-        put(self, "dx_dh", dx_dh)
-        put(self, "_water", water if dx_dp is None else None)
+    _dx_dp: float | None = field(compare=False)
+    dx_dh: float = field(default=math.nan)
+    _water: Any = field(default=None, compare=False, repr=False)
 
     @property
     def dx_dp(self) -> float:
@@ -157,19 +123,6 @@ class PHState:
             object.__setattr__(self, "_dx_dp", d)
             object.__setattr__(self, "_water", None)
         return d
-
-    def __setattr__(self, name: str, value: Any) -> None:
-        raise AttributeError(f"PHState is immutable (cannot set {name!r})")
-
-    def __eq__(self, other: object) -> bool:
-        if not isinstance(other, PHState):
-            return NotImplemented
-        return all(getattr(self, n) == getattr(other, n) for n in self._FIELDS)
-
-    __hash__ = None  # type: ignore[assignment]
-
-    def __repr__(self) -> str:
-        return "PHState(" + ", ".join(f"{n}={getattr(self, n)!r}" for n in self._FIELDS) + ")"
 
 
 @dataclass(frozen=True, slots=True)
