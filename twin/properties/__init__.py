@@ -29,14 +29,14 @@ plant model needs on top of it:
 Units are SI base units throughout: pressure [Pa] (absolute), temperature [K],
 specific enthalpy [J/kg], specific entropy [J/(kg K)], specific volume [m3/kg].
 
-Speed (``twin bench properties --n 5000``, idle 2-core machine, twin against a raw
-CoolProp ``AbstractState`` loop in the same process): ``h_pT`` 0.86-0.89 µs vs 0.67-0.69
-µs (x1.28-1.35: a cheap kelvin-bucket test decides whether the exact T_sat(p)
-check is needed); ``T_ph`` 7.3-7.7 µs vs 8.3-8.6 µs for the raw backward-only flash
-(x0.89-0.95: the forward refinement starts from the table of
-:mod:`twin.properties.guess`, not from CoolProp's (p, h) flash); ``ph()`` with x and
-all partial derivatives 17.5-17.7 µs vs 16.0-16.7 µs for a raw (p, h) update with T,
-s, v and cp getters (x1.10-1.13).
+Speed (``twin bench properties --n 5000 --repeat 7``, idle 2-core machine, twin
+against a raw CoolProp ``AbstractState`` loop in the same process, median paired
+ratio over 6 runs): ``h_pT`` x1.28-1.36 (0.86-1.07 µs; the kelvin-bucket test for
+"next to the saturation line" is the extra cost); ``T_ph`` x0.89-0.99 against the
+raw backward-only flash (the forward refinement starts from the table of
+:mod:`twin.properties.guess`, not from CoolProp's (p, h) flash); ``ph()`` with x
+and all partial derivatives x1.05-1.13 against a raw (p, h) update with T, s, v
+and cp getters (17.5-20.7 µs).
 
 Modules: ``backend`` (CoolProp), ``states`` (constants, errors, result types),
 ``base`` ((p, T) and the saturation line), ``guess`` (start temperatures),
