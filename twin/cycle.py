@@ -53,6 +53,11 @@ DRIFT_KPIS = ("section_efficiency.HP", "section_efficiency.IP", "section_efficie
 SNAPSHOT_VERSION = 1
 
 
+def suspect_alarm_name(tag: str) -> str:
+    """The one name of a tag's suspect alarm: in results, on screen, in logs, metrics and MQTT events."""
+    return f"suspect_{tag}"
+
+
 @dataclass(frozen=True)
 class CycleOptions:
     """Policy knobs of the per-window pipeline that are not plant configuration."""
@@ -285,7 +290,8 @@ class UnitCycle:
                                 expected.get(f"section_efficiency.{sec}", math.nan), t, suppress)
         if rec.converged:
             tested = [tag for tag, tr in rec.tags.items() if tr.valid]
-            out += self.suspects.update(rec.suspects, t, steady=steady and suppress is None, tested=tested)
+            out += [replace(tr, alarm=suspect_alarm_name(tr.alarm))
+                    for tr in self.suspects.update(rec.suspects, t, steady=steady and suppress is None, tested=tested)]
         if len(self.drift):
             devs = {k: _value(kpis, k) - expected.get(k, math.nan) for k in DRIFT_KPIS}
             self.drift.update({k: v for k, v in devs.items() if k in self.drift.statuses()},
@@ -303,7 +309,7 @@ class UnitCycle:
             views[f"efficiency_{sec}"] = AlarmView(f"efficiency_{sec}", a.state, "warning" if a.raised else "",
                                                    math.nan, a.raised)
         for tag in sorted(self.suspects.raised):
-            views[f"suspect_{tag}"] = AlarmView(f"suspect_{tag}", "active", "suspect", math.nan, True)
+            views[suspect_alarm_name(tag)] = AlarmView(suspect_alarm_name(tag), "active", "suspect", math.nan, True)
         return views
 
     def _drift_views(self) -> dict[str, DriftView]:

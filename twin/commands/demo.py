@@ -11,13 +11,11 @@ from __future__ import annotations
 
 import argparse
 import logging
-import math
 import os
 import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any
 
 DEFAULT_CONFIG = Path(__file__).resolve().parents[2] / "configs" / "demo-u1.toml"
 
@@ -44,26 +42,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="log level of the daemon's messages on stderr")
 
 
-def _fmt(result: Any, sim_start: float) -> str:
-    def k(name: str, scale: float = 100.0, fmt: str = "5.2f") -> str:
-        e = result.kpis.get(name)
-        if e is None or not e.available:
-            return "  n/a"
-        return format(e.value * scale, fmt)
-
-    minute = (result.window_end - sim_start) / 60.0
-    dev = result.heat_rate_deviation * 3600.0 if math.isfinite(result.heat_rate_deviation) else math.nan
-    hr = result.kpis.get("turbine_heat_rate")
-    hr_s = f"{hr.value * 3600:6.0f}" if hr is not None and hr.available else "   n/a"
-    alarms = [f"{a.name}:{a.severity or a.state}" for a in result.alarms.values() if a.active]
-    suspects = [t for t, r in result.tags.items() if r.suspect]
-    return (
-        f"t={minute:5.1f} min {'steady ' if result.steady else 'transient'} load {k('load_fraction', 100, '5.1f')} % "
-        f"| gross {k('gross_power', 1e-6, '6.1f')} MW eff {k('gross_efficiency')} % HR {hr_s} kJ/kWh "
-        f"(dev {dev:+5.0f}) | HP {k('section_efficiency.HP', 100, '4.1f')} IP {k('section_efficiency.IP', 100, '4.1f')} "
-        f"LP {k('section_efficiency.LP', 100, '4.1f')} % | exhaust moisture {k('exhaust_moisture_elep', 100, '4.1f')} % "
-        f"| suspects {','.join(suspects) or '-'} | alarms {','.join(alarms) or '-'}"
-    )
+LEGEND_PLAIN = ("dev = actual − expected turbine heat rate in kJ/kWh (+ is worse) with its top causes; "
+                "efficiencies and exhaust moisture in %; '-' = not available this window")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -141,11 +121,20 @@ def run(args: argparse.Namespace) -> int:
     sim_thread = threading.Thread(target=simulator.run, args=(scenario.duration, stop), daemon=True)
     sim_thread.start()
     deadline = time.monotonic() + (args.duration if args.duration else scenario.duration / args.speed + 5)
-    watchdog = threading.Thread(target=lambda: (stop.wait(max(deadline - time.monotonic(), 0)), stop.set()),
-                                daemon=True)
+
+    def stop_at_deadline() -> None:
+        stop.wait(max(deadline - time.monotonic(), 0))
+        stop.set()
+
+    watchdog = threading.Thread(target=stop_at_deadline, daemon=True)
     watchdog.start()
+    from twin.demo.screen import DemoScreen, make_on_result, scenario_events
+
+    screen = DemoScreen(config, sim_start, scenario.duration, scenario_events(scenario))
+    if not screen.tty:
+        print("one line per cycle; " + LEGEND_PLAIN, flush=True)
     try:
-        daemon.run(stop, on_result=lambda r: print(_fmt(r, sim_start), flush=True))
+        daemon.run(stop, on_result=make_on_result(screen, stop.set))
     finally:
         stop.set()
         daemon.stop()
