@@ -44,7 +44,8 @@ def _result(minute: float, *, converged: bool = True, steady: bool = True, moist
         reconcile_status="converged" if converged else "not_converged",
         reconcile_message="" if converged else "no convergence in 40 iterations",
         global_test=48.2, global_test_dof=57, global_test_p_value=0.78,
-        tags={"FW-F1": TagResult("FW-F1", "mass_flow", suspect=converged), "FW-F2": TagResult("FW-F2", "mass_flow")},
+        tags={"FW-F1": TagResult("FW-F1", "mass_flow", valid=True, suspect=converged),
+              "FW-F2": TagResult("FW-F2", "mass_flow", valid=True)},
         kpis=kpis,
         expected={"turbine_heat_rate": 2.1880, "section_efficiency.HP": 0.860},
         heat_rate_deviation=(2.1935 - 2.1880) if converged else math.nan,
@@ -92,6 +93,18 @@ def test_a_failed_window_is_not_marked_steady_and_prints_no_nan(config):
     assert "not_converged" in line and " steady " not in line
     assert "nan" not in line.lower() and "n/a" not in line
     assert "dev -" in line
+
+
+def test_a_window_without_kpis_says_so_and_how_many_tags_it_had(config):
+    from dataclasses import replace
+
+    r = _result(14.0)
+    r = replace(r, kpis={k: Estimate() for k in r.kpis},
+                tags={**r.tags, "FW-F2": TagResult("FW-F2", "mass_flow", valid=False, reason="stale")})
+    out = io.StringIO()
+    DemoScreen(config, T0, 80 * 60, out=out, tty=False).show(r)
+    line = out.getvalue()
+    assert line.startswith("t= 14.0 min unobservable 1/2 tags") and " steady " not in line
 
 
 def test_nothing_is_shown_past_the_scenario_end(config):

@@ -174,7 +174,14 @@ class DemoScreen:
     def _state(self, r: CycleResult) -> str:
         if not r.reconciled:
             return r.reconcile_status  # no numbers this window: never marked steady
+        if not any(e.available for e in r.kpis.values()):
+            return "unobservable"  # converged on too few instruments to give any KPI
         return "steady" if r.steady else "transient"
+
+    def _tags_used(self, r: CycleResult) -> str:
+        """'' when every instrument entered the window, else 'k/n tags' (stale or rejected ones left out)."""
+        valid = sum(1 for t in r.tags.values() if t.valid)
+        return "" if valid == len(r.tags) else f" {valid}/{len(r.tags)} tags"
 
     def _k(self, r: CycleResult, name: str, scale: float, fmt: str, unc: bool = False) -> str:
         e = r.kpis.get(name)
@@ -213,7 +220,7 @@ class DemoScreen:
         dev, causes = self._dev(r)
         top = ", ".join(f"{CAUSE_LABELS.get(k, k)} {_num(v, '+.0f')}" for k, v in causes) or "-"
         hr = self._k(r, "turbine_heat_rate", 3600.0, ".0f")
-        return (f"t={self.minute(r):5.1f} min {self._state(r):<13} load {self._k(r, 'load_fraction', 100, '.1f')} % "
+        return (f"t={self.minute(r):5.1f} min {self._state(r) + self._tags_used(r):<13} load {self._k(r, 'load_fraction', 100, '.1f')} % "
                 f"| gross {self._k(r, 'gross_power', 1e-6, '.1f')} MW eff {self._k(r, 'gross_efficiency', 100, '.2f')} % "
                 f"net {self._k(r, 'net_efficiency', 100, '.2f')} % "
                 f"| HR {hr} kJ/kWh dev {dev} ({top}) "
@@ -238,7 +245,7 @@ class DemoScreen:
         lines = [
             self._paint(f"twin demo · {r.unit_id} (invented unit, simulated data) · advisory only", _BOLD),
             f"simulated clock {hh:02d}:{mm:02d}:{ss:02d}  (minute {minute:.1f} of {self.duration / 60:.0f})   "
-            f"window {state_s}   reconciliation {fit}",
+            f"window {state_s}{self._tags_used(r)}   reconciliation {fit}",
             "",
             f"  load        {self._k(r, 'load_fraction', 100, '.1f', True)} %     gross {self._k(r, 'gross_power', 1e-6, '.1f', True)} MW"
             f"     net {self._k(r, 'net_power', 1e-6, '.1f')} MW",
