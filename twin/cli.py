@@ -23,6 +23,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "reconcile": ("twin.commands.reconcile", "reconcile one file of tag values"),
     "run": ("twin.commands.run", "run the live daemon against an MQTT broker"),
     "demo": ("twin.commands.demo", "run the self-contained live demo"),
+    "diagram": ("twin.commands.diagram", "draw the cycle on T-s and h-s charts (PNG or SVG)"),
     "bench": ("twin.commands.bench", "run a benchmark and print JSON figures"),
 }
 

@@ -143,6 +143,7 @@ class DaemonOptions:
     store_capacity: int = 2048
     metrics: bool = True
     grace_seconds: float = 1.0  # clock seconds to wait after a window ends for late messages
+    diagram: bool = True  # serve /diagram.svg beside /metrics (when matplotlib is installed)
 
     def cycle_options(self) -> CycleOptions:
         return CycleOptions(max_eliminations=self.max_eliminations, alpha=self.alpha)
@@ -197,11 +198,30 @@ class Daemon:
         """The latest result (read by the metrics collector at scrape time)."""
         return self.latest
 
+    def _routes(self) -> dict[str, Any]:
+        """Extra HTTP routes beside /metrics: the latest window's cycle diagram (twin[plot])."""
+        import importlib.util
+
+        if not self.options.diagram:
+            return {}
+        if importlib.util.find_spec("matplotlib") is None:
+            log_event(logging.INFO, "diagram_unavailable", reason="matplotlib not installed (pip install 'twin[plot]')")
+            return {}
+        from twin.diagram import DiagramService
+
+        service = DiagramService(self.config, self.current)
+
+        def diagram_svg() -> tuple[bytes, str] | None:
+            body = service.svg()
+            return (body, "image/svg+xml") if body is not None else None
+
+        return {"/diagram.svg": diagram_svg}
+
     def start(self) -> None:
         """Connect to the broker and start the metrics endpoint."""
         if self.options.metrics and self.metrics is None:
             m = self.config.metrics
-            self.metrics = MetricsServer(self.current, address=m.address, port=int(m.port))
+            self.metrics = MetricsServer(self.current, address=m.address, port=int(m.port), routes=self._routes())
             self.metrics.start()
             log_event(logging.INFO, "metrics_listening", address=m.address, port=self.metrics.port)
         self.mqtt = MqttClient(self.mqtt_settings, self.ingestor, clock=self.clock.now)

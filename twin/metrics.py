@@ -32,10 +32,16 @@ from __future__ import annotations
 
 import math
 import threading
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from typing import Any
 
-from prometheus_client import CollectorRegistry, Histogram, generate_latest, start_http_server
+from prometheus_client import (
+    CollectorRegistry,
+    Histogram,
+    generate_latest,
+    make_wsgi_app,
+    start_http_server,
+)
 from prometheus_client.core import (
     CounterMetricFamily,
     GaugeMetricFamily,
@@ -334,6 +340,9 @@ class MetricsServer:
         TCP port; 0 picks a free one (read :attr:`port` after :meth:`start`).
     registry : CollectorRegistry, optional
         Registry to use; a fresh private one by default (never the global one).
+    routes : mapping of str to callable, optional
+        Extra GET paths beside ``/metrics``, e.g. ``{"/diagram.svg": f}``: ``f()``
+        returns ``(body, content type)``, or None for "not available yet" (503).
     """
 
     def __init__(
@@ -342,6 +351,7 @@ class MetricsServer:
         address: str = "127.0.0.1",
         port: int = 9108,
         registry: CollectorRegistry | None = None,
+        routes: Mapping[str, Route] | None = None,
     ) -> None:
         if not 0 <= int(port) <= 65535:
             raise ValueError(f"port must be in 0..65535, got {port!r}")
@@ -358,12 +368,16 @@ class MetricsServer:
         )
         self._server: Any = None
         self._thread: threading.Thread | None = None
+        self.routes: dict[str, Route] = dict(routes or {})
 
     def start(self) -> None:
-        """Serve ``/metrics`` on ``address:port`` in a daemon thread."""
+        """Serve ``/metrics`` (and the extra routes) on ``address:port`` in a daemon thread."""
         if self._server is not None:
             raise RuntimeError(f"metrics server already running on {self.address}:{self.port}")
-        self._server, self._thread = start_http_server(self.port, addr=self.address, registry=self.registry)
+        if self.routes:
+            self._server, self._thread = _serve_with_routes(self.address, self.port, self.registry, self.routes)
+        else:
+            self._server, self._thread = start_http_server(self.port, addr=self.address, registry=self.registry)
         self.port = int(self._server.server_address[1])
 
     def stop(self) -> None:
@@ -392,6 +406,44 @@ class MetricsServer:
 
     def __exit__(self, *exc: object) -> None:
         self.stop()
+
+
+Route = Callable[[], tuple[bytes, str] | None]
+
+
+def _serve_with_routes(address: str, port: int, registry: CollectorRegistry,
+                       routes: Mapping[str, Route]) -> tuple[Any, threading.Thread]:
+    """prometheus_client's WSGI exposition with extra GET routes in front of it."""
+    from wsgiref.simple_server import make_server
+
+    from prometheus_client.exposition import ThreadingWSGIServer, _get_best_family, _SilentHandler
+
+    metrics_app = make_wsgi_app(registry)
+
+    def app(environ: dict[str, Any], start_response: Callable[..., Any]) -> Any:
+        route = routes.get(environ.get("PATH_INFO", ""))
+        if route is None:
+            return metrics_app(environ, start_response)
+        try:
+            got = route()
+        except Exception as exc:  # a broken extra route must not take /metrics down
+            start_response("500 Internal Server Error", [("Content-Type", "text/plain; charset=utf-8")])
+            return [f"{environ.get('PATH_INFO')}: {type(exc).__name__}: {exc}\n".encode()]
+        if got is None:
+            start_response("503 Service Unavailable", [("Content-Type", "text/plain; charset=utf-8")])
+            return [b"not available yet: no reconciled window\n"]
+        body, ctype = got
+        start_response("200 OK", [("Content-Type", ctype), ("Content-Length", str(len(body)))])
+        return [body]
+
+    class _Server(ThreadingWSGIServer):
+        pass
+
+    _Server.address_family, addr = _get_best_family(address, port)
+    httpd = make_server(addr, port, app, _Server, handler_class=_SilentHandler)
+    thread = threading.Thread(target=httpd.serve_forever, daemon=True)
+    thread.start()
+    return httpd, thread
 
 
 def exposition(registry: CollectorRegistry) -> bytes:
