@@ -273,7 +273,8 @@ class DemoScreen:
         lines.append("  suspects    " + (self._paint(", ".join(sus), _YELLOW) if sus else "none"))
         al = self._alarms(r)
         lines.append("  alarms      " + (self._paint(", ".join(al), _RED) if al else "none"))
-        lines.append("  events      " + (" | ".join(e.announce() for e in self.recent) or "-"))
+        recent = [e.announce() for e in self.recent] or ["-"]
+        lines += [("  events      " if i == 0 else " " * 14) + text for i, text in enumerate(recent)]
         lines += ["", LEGEND]
         return lines
 
