@@ -2,10 +2,23 @@
 
 from __future__ import annotations
 
-from tests.test_cycle import CYCLE, T0, noisy, window
+from collections.abc import Mapping
+from typing import Any
+
+from tests.test_cycle import CYCLE, T0, noisy
 from tests.test_daemon_e2e import demo_config, plant_truth, shared_reconciler
-from twin.cycle import UnitCycle, suspect_alarm_name
+from twin.cycle import UnitCycle, WindowInput, suspect_alarm_name
+from twin.ingest.store import WindowStats
 from twin.metrics import build_families
+
+
+def window(config: Any, values: Mapping[str, float], t_end: float) -> WindowInput:
+    """Window statistics as the tag store makes them, each signal with its instrument's noise as spread."""
+    sensors = config.sensors_by_tag
+    st = {tag: WindowStats(mean=float(v), std=float(sensors[tag].sigma_si(v)), count=6, n_bad=0,
+                           last_time=t_end - 1.0, age=1.0, min=float(v), max=float(v), stale=False)
+          for tag, v in values.items()}
+    return WindowInput(t_end, 30.0, st, gate_stats=st)
 
 
 def test_suspect_alarm_has_the_same_name_in_transitions_results_and_metrics() -> None:
@@ -18,7 +31,7 @@ def test_suspect_alarm_has_the_same_name_in_transitions_results_and_metrics() ->
     bias = {"FW-F1": 0.03 * plant_truth().sensors["FW-F1"]}
     raised = None
     for k in range(1, 40):  # the steady-state gate opens after its filters warm up
-        out = cyc.run(window(noisy(100 + k, bias=bias), T0 + k * CYCLE))
+        out = cyc.run(window(config, noisy(100 + k, bias=bias), T0 + k * CYCLE))
         up = [tr for tr in out.transitions if tr.new == "active" and "FW-F1" in tr.alarm]
         if up:
             raised = (up[0], out.result)
