@@ -328,11 +328,11 @@ def cooling_water_inlet_of_result(config: Any, result: Any) -> float | None:
 class ExpectedCycle:
     """The forward model of a plant for reference cycles: design point, or expected at a load.
 
-    Builds its own flowsheet (properties are per thread), so it can run in any one thread.
+    Builds its own flowsheet (properties are per thread), so it can run in any one thread;
+    off design the throttle pressure follows the plant file's ``[performance]`` pressure control.
     """
 
     config: Any
-    pressure_mode: str = "sliding"
     _built: Any = field(default=None, init=False, repr=False)
     _cache: dict[tuple[float, float], dict[str, tuple[float, float]]] = field(default_factory=dict, init=False)
 
@@ -346,8 +346,8 @@ class ExpectedCycle:
             fs = Flowsheet.from_config(self.config)
             op = Operation.from_config(self.config)
             design = solve_design(fs, op)
-            model = ExpectedModel(fs, op, design, CyclePerformanceSettings.from_config(self.config),
-                                  self.pressure_mode)
+            model = ExpectedModel.from_config(self.config, fs, op, design,
+                                              CyclePerformanceSettings.from_config(self.config))
             self._built = (fs, design, model)
         return self._built
 
