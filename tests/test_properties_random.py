@@ -110,3 +110,14 @@ def test_lazy_quality_derivative_equals_the_saturation_line_form(w):
     # dataclasses.replace (the model's first-order moved states) keeps working
     moved = dataclasses.replace(st, p=1.01e6)
     assert moved.p == 1.01e6 and moved.T == st.T and math.isfinite(moved.dx_dp)
+
+
+@pytest.mark.parametrize(("p", "T"), [(25e6, 1176.66), (26.4e6, 2207.05), (24.6e6, 1413.2), (10e6, 1500.0)])
+def test_region5_states_by_h_and_by_s(w, p, T):
+    # IF97 region 5 (1073.15-2273.15 K, p <= 50 MPa), also above the critical pressure,
+    # where the previous (p, s) fallback bracket stopped at 1073.15 K; iapws IAPWS97(P, T)
+    ref = IAPWS97(P=p / MPa, T=T)
+    assert ref.region == 5
+    assert w.T_ph(p, ref.h * kJ) == pytest.approx(T, rel=1e-10)
+    assert w.h_ps(p, ref.s * kJ) == pytest.approx(ref.h * kJ, rel=1e-10)
+    assert pytest.approx(T, rel=1e-10) == w.ps(p, ref.s * kJ).T

@@ -278,7 +278,8 @@ class WaterInverse(WaterBase):
         h = self._h()
         v = 1.0 / self._rho()
         if phase != _NOLINE:
-            x = (h - self.h_f(p)) / (self.h_g(p) - self.h_f(p))
+            _, hf, hg = self._sat_h(p)
+            x = (h - hf) / (hg - hf)
         return h, T, v, x, False
 
     def h_ps(self, p: float, s: float) -> float:

@@ -77,7 +77,7 @@ class Water(WaterInverse):
                 x = (h - hf) / hfg
                 dx_dh = 1.0 / hfg
                 if -X_SATURATED <= x <= 1.0 + X_SATURATED:
-                    return self._ph_wet(p, h, x, self._dx_dp(p, x, dx_dh), dx_dh)
+                    return self._ph_wet(p, h, x, dx_dh)
             except (ValueError, IndexError) as exc:
                 if isinstance(exc, PropertyError):
                     raise
@@ -145,8 +145,9 @@ class Water(WaterInverse):
 
         return _diff(v_of_T, T, _DT, lo_T, hi_T), _diff(v_of_p, p, _DP_REL * p, lo_p, hi_p)
 
-    def _ph_wet(self, p: float, h: float, x: float, dx_dp: float, dx_dh: float) -> PHState:
+    def _ph_wet(self, p: float, h: float, x: float, dx_dh: float) -> PHState:
         st = self.sat(p)
+        dx_dp = -(st.dh_f_dp * (1.0 - x) + x * st.dh_g_dp) * dx_dh  # as _dx_dp, from sat()'s line
         s = st.s_f + x * (st.s_g - st.s_f)
         vfg = st.v_g - st.v_f
         v = st.v_f + x * vfg
