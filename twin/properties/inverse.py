@@ -286,8 +286,8 @@ class WaterInverse(WaterBase):
         """Specific enthalpy [J/kg] at pressure p [Pa] and specific entropy s [J/(kg K)].
 
         Two-phase states use the lever rule on the saturation line (fast);
-        single phase starts from CoolProp's (p, s) flash and refines on the
-        forward equation.
+        single phase starts from the table of :mod:`twin.properties.guess` (or
+        CoolProp's (p, s) flash) and refines on the forward equation.
         """
         return self._ps_common("h_ps", p, s)[0]
 

@@ -53,12 +53,15 @@ class Water(WaterInverse):
     def ph(self, p: float, h: float) -> PHState:
         """Full state and partial derivatives at pressure p [Pa], enthalpy h [J/kg].
 
-        Single phase: one CoolProp (p, h) update for the backward-equation
-        temperature, Newton refinement on the forward equation, then (p, T)
-        getters. Derivatives from dh = T ds + v dp (ds_dh = 1/T, ds_dp = -v/T),
-        dT_dh = 1/cp, dT_dp = -(∂h/∂p)_T/cp with (∂h/∂p)_T = v - T(∂v/∂T)_p,
-        and central differences for (∂v/∂T)_p (±0.01 K) and (∂v/∂p)_T
-        (±1e-4 p), one-sided where a step would cross the saturation line.
+        Single phase: the forward-equation temperature (table start, chord
+        refinement; see :meth:`_single_T`), then (p, T) getters. Derivatives
+        from dh = T ds + v dp (ds_dh = 1/T, ds_dp = -v/T), dT_dh = 1/cp,
+        dT_dp = -(∂h/∂p)_T/cp with (∂h/∂p)_T = v - T(∂v/∂T)_p; in region-1
+        liquid (∂v/∂p)_T = -(cp/cv) v²/w² and (∂v/∂T)_p = sqrt(-(∂v/∂p)_T (cp - cv)/T)
+        (a central difference in T below 300 K, where its sign is not known),
+        elsewhere central differences for (∂v/∂T)_p (±0.01 K) and (∂v/∂p)_T
+        (±1e-4 p), one-sided where a step would cross the saturation line;
+        dx_dp on first access.
         Two-phase (|x| up to X_SATURATED outside [0, 1] included, so that a
         saturated state a rounding error off the line reads as saturated): lever
         rule on the saturation line (s, v and their partials
