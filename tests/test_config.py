@@ -379,7 +379,7 @@ def test_password_file_is_relative_to_config(tmp_path):
 def test_unknown_keys_list_the_valid_ones():
     data = base()
     data["metrics"] = {"adress": "0.0.0.0"}
-    assert one(data) == "plant.toml: metrics.adress: unknown key; expected one of address, port"
+    assert one(data) == "plant.toml: metrics.adress: unknown key; expected one of address, port, tls"
     data = base()
     data["monitor"] = {}
     assert "plant.toml: monitor: unknown key; expected one of unit, streams, equipment" in one(data)

@@ -11,6 +11,7 @@ import threading
 import time
 import urllib.request
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -27,10 +28,10 @@ from twin.mqtt import MqttClient
 pytestmark = pytest.mark.broker
 
 ENV = {**os.environ, "OPENBLAS_NUM_THREADS": "1", "PYTHONUNBUFFERED": "1"}
-# one log record per line: time, level, logger, then event=<name> and key=value fields
-# (values with spaces or '=' quoted as JSON strings)
+# one log record per line: RFC 3339 UTC time, level, logger, then event=<name> and key=value
+# fields (values with spaces or '=' quoted as JSON strings)
 EVENT_LINE = re.compile(
-    r'^\d{4}-\d\d-\d\d \d\d:\d\d:\d\d,\d{3} (DEBUG|INFO|WARNING|ERROR) twin(\.\w+)+ '
+    r'^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{3}Z (DEBUG|INFO|WARNING|ERROR) twin(\.\w+)+ '
     r'event=\w+( \w+=("([^"\\]|\\.)*"|[^ "=]+))*$'
 )
 
@@ -115,7 +116,7 @@ def _without_cycle_failure_tracebacks(lines: list[str]) -> list[str]:
         if ln.endswith(" ERROR twin.daemon cycle failed"):
             skipping = True
             continue
-        if skipping and not re.match(r"^\d{4}-\d\d-\d\d ", ln):
+        if skipping and not re.match(r"^\d{4}-\d\d-\d\dT", ln):
             continue
         skipping = False
         out.append(ln)
@@ -198,6 +199,8 @@ def test_logged_window_end_identifies_the_window(caplog: pytest.LogCaptureFixtur
     with caplog.at_level("DEBUG", logger="twin.daemon"):
         for k in (1, 2):
             daemon.run_cycle(T0 + 10.0 * k)
-    logged = [float(m.group(1)) for rec in caplog.records
+    logged = [m.group(1) for rec in caplog.records
               if (m := re.search(r"^event=cycle .*window_end=(\S+)", rec.getMessage()))]
-    assert logged == [T0 + 10.0, T0 + 20.0]
+    # RFC 3339 UTC, independently formatted by the standard library
+    assert logged == [datetime.fromtimestamp(T0 + 10.0 * k, UTC).strftime("%Y-%m-%dT%H:%M:%S.000Z")
+                      for k in (1, 2)]

@@ -9,11 +9,14 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import json
+import logging
 import os
 import sys
 
 from twin import __version__
 from twin.commands._text import HelpFormatter, uniform_metavars
+from twin.units import rfc3339
 
 # command name -> (module, one-line help)
 COMMANDS: dict[str, tuple[str, str]] = {
@@ -26,6 +29,52 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "diagram": ("twin.commands.diagram", "draw the cycle on T-s and h-s charts (PNG or SVG)"),
     "bench": ("twin.commands.bench", "run a benchmark and print JSON figures"),
 }
+
+
+LOG_FORMATS = ("text", "json")
+
+
+class TextFormatter(logging.Formatter):
+    """``<RFC 3339 UTC time> <LEVEL> <logger> <message>``, one line per record."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        line = f"{rfc3339(record.created)} {record.levelname} {record.name} {record.getMessage()}"
+        if record.exc_info:
+            line += " " + json.dumps(self.formatException(record.exc_info))  # keep it one line
+        return line
+
+
+class JsonFormatter(logging.Formatter):
+    """One JSON object per line: ``time``, ``level``, ``logger``, ``event`` and the event's fields.
+
+    Records from :func:`twin.daemon.log_event` carry their fields (``record.twin_fields``);
+    any other record gives ``message``.
+    """
+
+    def format(self, record: logging.LogRecord) -> str:
+        doc: dict[str, object] = {"time": rfc3339(record.created), "level": record.levelname,
+                                  "logger": record.name}
+        fields = getattr(record, "twin_fields", None)
+        if isinstance(fields, dict):
+            doc.update(fields)
+        else:
+            doc["message"] = record.getMessage()
+        if record.exc_info:
+            doc["exception"] = self.formatException(record.exc_info)
+        return json.dumps(doc, default=str)
+
+
+def setup_logging(level: str = "INFO", fmt: str = "text") -> None:
+    """Log to stderr, one line per record, times in RFC 3339 UTC (``fmt`` text or json)."""
+    if fmt not in LOG_FORMATS:
+        raise ValueError(f"log format {fmt!r} is not one of {LOG_FORMATS}")
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(JsonFormatter() if fmt == "json" else TextFormatter())
+    root = logging.getLogger()
+    for old in list(root.handlers):
+        root.removeHandler(old)
+    root.addHandler(handler)
+    root.setLevel(getattr(logging, level))
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -46,6 +95,8 @@ def build_parser() -> argparse.ArgumentParser:
             p.set_defaults(_unavailable=name)
             continue
         module.add_arguments(p)
+        p.add_argument("--log-format", choices=LOG_FORMATS, default="text",
+                       help="log lines as text or one JSON object per line; times RFC 3339 UTC")
         _polish(p)
         p.set_defaults(_run=module.run)
     return parser
@@ -72,6 +123,7 @@ def main(argv: list[str] | None = None) -> int:
     if getattr(args, "_unavailable", None):
         print(f"twin: command {args.command!r} is not available in this build", file=sys.stderr)
         return 2
+    setup_logging(getattr(args, "log_level", "WARNING"), getattr(args, "log_format", "text"))
     try:
         return int(args._run(args) or 0)
     except BrokenPipeError:  # output piped into head/less that closed early

@@ -27,12 +27,14 @@ from twin.config import PlantConfig
 from twin.cycle import DRIFT_KPIS, CycleOptions, UnitCycle, WindowInput
 from twin.ingest.decode import PayloadFormat, TagBinding, TopicMap
 from twin.ingest.pipeline import Ingestor
+from twin.ingest.rate import SampleRateMonitor
 from twin.ingest.store import TagStore, WindowStats
-from twin.metrics import MetricsServer
+from twin.metrics import Health, MetricsServer, MetricsTls
 from twin.monitor import Transition
-from twin.mqtt import MqttClient, MqttSettings, read_secret
+from twin.mqtt import ConnectionEvent, MqttClient, MqttSettings, read_secret
 from twin.performance.plant_reconcile import PlantReconciler
 from twin.result import CycleResult, InputStats
+from twin.units import rfc3339
 
 log = logging.getLogger("twin.daemon")
 
@@ -44,18 +46,30 @@ CAUTION = (
 )
 
 __all__ = ["CAUTION", "DRIFT_KPIS", "Daemon", "DaemonOptions", "ManualClock", "ScaledClock", "SystemClock",
-           "bindings_from_config", "log_event", "mqtt_settings_from_config"]
+           "bindings_from_config", "exposure_warnings", "log_event", "mqtt_settings_from_config"]
+
+
+# Fields holding a Unix time [s]; logged as RFC 3339 UTC.
+_TIME_FIELDS = frozenset({"time", "window_start", "window_end", "last_message", "since"})
 
 
 def log_event(severity: int, event: str, /, **fields: Any) -> None:
-    """One structured log line: ``event=<name> key=value ...``."""
+    """One structured log line: ``event=<name> key=value ...``.
+
+    Time fields (``time``, ``window_end`` ...) are written in RFC 3339 UTC;
+    the fields also travel on the record (``twin_fields``) for the JSON log format.
+    """
     parts = [f"event={event}"]
+    doc: dict[str, Any] = {"event": event}
     for k, v in fields.items():
-        if isinstance(v, float):
-            v = repr(v) if abs(v) >= 1e6 else f"{v:.6g}"  # times keep full precision
+        if isinstance(v, float) and k in _TIME_FIELDS:
+            v = rfc3339(v)
+        elif isinstance(v, float):
+            v = repr(v) if abs(v) >= 1e6 else f"{v:.6g}"
+        doc[k] = v if isinstance(v, int | float | bool | str) or v is None else str(v)
         s = str(v)
         parts.append(f"{k}={json.dumps(s) if (' ' in s or '=' in s) else s}")
-    log.log(severity, " ".join(parts))
+    log.log(severity, " ".join(parts), extra={"twin_fields": doc})
 
 
 # ----------------------------------------------------------------------------- clocks
@@ -130,7 +144,22 @@ def mqtt_settings_from_config(config: PlantConfig, environ: Mapping[str, str]) -
         tls_key=str(tls.key_file) if tls and tls.key_file else None,
         tls_insecure=bool(tls.insecure) if tls else False,
         username=b.username, password=password, qos=int(b.qos),
+        reconnect_min_delay=float(b.reconnect_min_delay), reconnect_max_delay=float(b.reconnect_max_delay),
     )
+
+
+def exposure_warnings(config: PlantConfig, settings: MqttSettings) -> list[str]:
+    """Plain-text warnings about how the daemon is exposed (logged at start)."""
+    out = []
+    m = config.metrics
+    if m.tls is None and m.address not in ("127.0.0.1", "localhost", "::1"):
+        out.append(f"metrics are served on {m.address}:{m.port} beyond loopback without TLS: anyone who "
+                   "can reach it reads the plant's performance; set [metrics] tls = {cert_file, key_file, "
+                   "client_ca_file} or bind to 127.0.0.1 behind a proxy")
+    if settings.password is not None and not settings.uses_tls:
+        out.append(f"the MQTT password for user {settings.username!r} travels without TLS to "
+                   f"{settings.address}; set [broker] tls")
+    return out
 
 
 @dataclass(frozen=True)
@@ -179,7 +208,16 @@ class Daemon:
         self.topic_map = TopicMap(bindings_from_config(config))
         max_age = {s.tag: float(s.max_age) for s in config.sensors}
         self.store = TagStore([s.tag for s in config.sensors], capacity=self.options.store_capacity, max_age=max_age)
-        self.ingestor = Ingestor(self.topic_map, self.store, on_reject=self._on_reject)
+        # a sample older than any window still to close is useless; one far ahead is a clock fault
+        horizon = self.window_seconds + self.cycle_seconds + self.options.grace_seconds
+        self.ingestor = Ingestor(self.topic_map, self.store, on_reject=self._on_reject, horizon=horizon,
+                                 future_tolerance=float(config.broker.future_tolerance))
+        self.rates = SampleRateMonitor([s.tag for s in config.sensors],
+                                       {s.tag: s.sample_period for s in config.sensors})
+        self.windows_skipped = 0
+        self.cycles_failed = 0
+        self._missing_unlogged, self._missing_logged_at = 0, -math.inf
+        self.started_at = self.clock.now()
         self.mqtt_settings = mqtt_settings or mqtt_settings_from_config(config, environ or {})
         self.mqtt: MqttClient | None = None
         # the per-window pipeline (model, reconciliation, monitors)
@@ -217,14 +255,51 @@ class Daemon:
 
         return {"/diagram.svg": diagram_svg}
 
+    def health(self) -> Health:
+        """Live input and loop health (read by the metrics collector at scrape time)."""
+        st = self.mqtt.stats() if self.mqtt is not None else None
+        return Health(
+            unit_id=self.config.unit.id, now=self.clock.now(), started=self.started_at,
+            connected=bool(st and st.connected), reconnects=st.disconnects if st else 0,
+            failures_by_reason=dict(st.failures_by_reason) if st else {},
+            last_failure_reason=st.last_failure_reason if st else "",
+            last_failure_time=st.last_failure_time if st else math.nan,
+            last_message_time=self.ingestor.last_message_time, messages=self.ingestor.messages,
+            rejected=self.ingestor.rejects.counts(),
+            callback_errors=st.callback_errors if st else 0, publish_dropped=st.publish_dropped if st else 0,
+            tag_last_time=self.store.latest_times(), overwritten=self.store.overwritten(),
+            samples_missing=dict(self.rates.missing), sample_period=dict(self.rates.period),
+            windows_skipped=self.windows_skipped, cycles_failed=self.cycles_failed,
+            cycle_period=self.cycle_seconds,
+        )
+
+    def _on_connection(self, ev: ConnectionEvent) -> None:
+        """One log line per change of the broker connection's state."""
+        if ev.state == "failed":
+            log_event(logging.ERROR, "mqtt_connect_failed", reason=ev.reason, detail=ev.detail,
+                      attempts=ev.attempts)
+        elif ev.state == "lost":
+            log_event(logging.WARNING, "mqtt_connection_lost", detail=ev.detail)
+        else:
+            log_event(logging.INFO, f"mqtt_{ev.state}", broker=self.mqtt_settings.address,
+                      tls=self.mqtt_settings.uses_tls)
+
     def start(self) -> None:
         """Connect to the broker and start the metrics endpoint."""
+        for text in exposure_warnings(self.config, self.mqtt_settings):
+            log_event(logging.WARNING, "exposure", text=text)
         if self.options.metrics and self.metrics is None:
             m = self.config.metrics
-            self.metrics = MetricsServer(self.current, address=m.address, port=int(m.port), routes=self._routes())
+            tls = (MetricsTls(str(m.tls.cert_file), str(m.tls.key_file),
+                              str(m.tls.client_ca_file) if m.tls.client_ca_file else None)
+                   if m.tls is not None else None)
+            self.metrics = MetricsServer(self.current, address=m.address, port=int(m.port), health=self.health,
+                                         tls=tls, routes=self._routes())
             self.metrics.start()
-            log_event(logging.INFO, "metrics_listening", address=m.address, port=self.metrics.port)
-        self.mqtt = MqttClient(self.mqtt_settings, self.ingestor, clock=self.clock.now)
+            log_event(logging.INFO, "metrics_listening", address=m.address, port=self.metrics.port,
+                      scheme=self.metrics.scheme, client_certificates=bool(tls and tls.client_ca_file))
+        self.mqtt = MqttClient(self.mqtt_settings, self.ingestor, clock=self.clock.now,
+                               on_event=self._on_connection)
         self.mqtt.subscribe({t: int(self.mqtt_settings.qos) for t in self.topic_map.topics})
         self.mqtt.start()
         log_event(logging.INFO, "started", unit=self.config.unit.id, broker=f"{self.mqtt_settings.host}:{self.mqtt_settings.port}",
@@ -258,6 +333,7 @@ class Daemon:
             try:
                 result = self.run_cycle(next_t)
             except Exception as exc:  # a bad cycle must never stop the daemon
+                self.cycles_failed += 1
                 log_event(logging.ERROR, "cycle_failed", window_end=next_t, error=f"{type(exc).__name__}: {exc}")
                 log.debug("cycle failed", exc_info=True)
             else:
@@ -265,7 +341,13 @@ class Daemon:
                     on_result(result)
             next_t += self.cycle_seconds
             if self.clock.now() - next_t > self.cycle_seconds:  # fell behind: skip missed windows
-                next_t = (math.floor(self.clock.now() / self.cycle_seconds) + 1) * self.cycle_seconds
+                resume = (math.floor(self.clock.now() / self.cycle_seconds) + 1) * self.cycle_seconds
+                skipped = round((resume - next_t) / self.cycle_seconds)
+                self.windows_skipped += skipped
+                log_event(logging.WARNING, "windows_skipped", count=skipped, window_end=next_t,
+                          since=next_t - self.cycle_seconds, total=self.windows_skipped,
+                          text="the daemon fell behind; these windows are never closed")
+                next_t = resume
 
     # ------------------------------------------------------------------ one cycle
     def window_input(self, t_end: float) -> WindowInput:
@@ -286,6 +368,7 @@ class Daemon:
     def run_cycle(self, t_end: float) -> CycleResult:
         """Close the window ending at ``t_end`` and publish its result."""
         started = time.perf_counter()
+        self._account_samples(t_end)
         out = self.cycle.run(self.window_input(t_end))
         result = replace(out.result, compute_seconds=time.perf_counter() - started)
         with self._lock:
@@ -304,6 +387,27 @@ class Daemon:
                   valid_tags=sum(1 for t in result.tags.values() if t.valid),
                   excluded=sum(1 for t in result.tags.values() if not t.valid))
         return result
+
+    def _account_samples(self, t_end: float) -> None:
+        """Samples expected vs received over the cycle ending at ``t_end`` (loss shows as missing)."""
+        rates = self.rates
+        for tag in rates.learned():
+            new = tag not in rates.period
+            t, _, _ = self.store.snapshot(tag)
+            period = rates.learn(tag, t, t_end)
+            if new and period is not None:
+                log_event(logging.INFO, "sample_period_learned", tag=tag, period_s=period)
+        if not rates.period:
+            return
+        short = self.store.window(t_end - self.cycle_seconds, t_end)
+        before = sum(rates.missing.values())
+        rates.update(self.cycle_seconds, {t: w.count + w.n_bad for t, w in short.items()})
+        self._missing_unlogged += sum(rates.missing.values()) - before
+        if self._missing_unlogged > 0 and t_end - self._missing_logged_at >= 60.0:  # at most once a minute
+            worst = max(rates.missing, key=rates.missing.__getitem__)
+            log_event(logging.WARNING, "samples_missing", window_end=t_end, count=self._missing_unlogged,
+                      total=sum(rates.missing.values()), worst_tag=worst)
+            self._missing_unlogged, self._missing_logged_at = 0, t_end
 
     # ------------------------------------------------------------------ outputs
     def _publish(self, result: CycleResult, transitions: list[Transition]) -> None:

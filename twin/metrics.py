@@ -31,8 +31,10 @@ operate equipment.
 from __future__ import annotations
 
 import math
+import ssl
 import threading
 from collections.abc import Callable, Iterable, Iterator, Mapping
+from dataclasses import dataclass, field
 from typing import Any
 
 from prometheus_client import (
@@ -57,6 +59,78 @@ from twin.monitor.steady import STEADY_STATUSES
 from twin.result import RECONCILE_STATUSES, CycleResult
 
 Provider = Callable[[], CycleResult | None]
+
+
+@dataclass(frozen=True)
+class Health:
+    """Live state of the daemon's inputs and loop, read at scrape time (not per window).
+
+    Attributes
+    ----------
+    unit_id : str
+    now : float
+        Time of the snapshot [s since the epoch].
+    started : float
+        When the daemon started [s since the epoch]; ages count from here
+        while nothing has been received.
+    connected : bool
+        Connected to the MQTT broker now.
+    reconnects : int
+        Established connections that were lost since start.
+    failures_by_reason : mapping of str to int
+        Failed connection attempts since start, by bounded reason.
+    last_failure_reason, last_failure_time : str, float
+        The most recent failed attempt (``""``/NaN if none) [s since the epoch].
+    last_message_time : float
+        Receive time of the newest MQTT message [s since the epoch]; NaN if none.
+    messages : int
+        Messages received since start.
+    rejected : mapping of str to int
+        Samples or messages rejected since start, by reason (every reason present).
+    callback_errors, publish_dropped : int
+        Message-handler failures; outgoing messages that could not be queued.
+    tag_last_time : mapping of str to float
+        Per tag, the time of its newest stored sample [s since the epoch]; NaN if none.
+    overwritten : mapping of str to int
+        Per tag, samples lost to ring-buffer overflow since start.
+    samples_missing : mapping of str to int
+        Per tag, samples expected from its sample period but not received.
+    sample_period : mapping of str to float
+        Per tag, the expected sample period [s] (configured or learned); absent = not known yet.
+    windows_skipped, cycles_failed : int
+        Windows never closed because the daemon fell behind; cycles that raised.
+    cycle_period : float
+        Configured cycle [s].
+    """
+
+    unit_id: str
+    now: float
+    started: float
+    connected: bool = False
+    reconnects: int = 0
+    failures_by_reason: Mapping[str, int] = field(default_factory=dict)
+    last_failure_reason: str = ""
+    last_failure_time: float = math.nan
+    last_message_time: float = math.nan
+    messages: int = 0
+    rejected: Mapping[str, int] = field(default_factory=dict)
+    callback_errors: int = 0
+    publish_dropped: int = 0
+    tag_last_time: Mapping[str, float] = field(default_factory=dict)
+    overwritten: Mapping[str, int] = field(default_factory=dict)
+    samples_missing: Mapping[str, int] = field(default_factory=dict)
+    sample_period: Mapping[str, float] = field(default_factory=dict)
+    windows_skipped: int = 0
+    cycles_failed: int = 0
+    cycle_period: float = math.nan
+
+
+HealthProvider = Callable[[], Health]
+
+# Families the health collector exports live; the per-window copies in a
+# CycleResult are left out of the live endpoint when a health provider is set.
+LIVE_FAMILIES = frozenset({"twin_messages_received", "twin_payloads_rejected", "twin_mqtt_connected",
+                           "twin_mqtt_reconnects"})
 
 ZERO_CELSIUS = 273.15  # [K]
 ALARM_LEVELS = ("warning", "alarm")
@@ -304,6 +378,75 @@ def _drift(f: _Families, r: CycleResult) -> None:
                 {"up": 1.0, "down": -1.0}.get(d.direction, 0.0), kpi=key)
 
 
+def health_families(h: Health) -> list[Metric]:
+    """Metric families of one :class:`Health` snapshot (live: no sample timestamps)."""
+    f = _Families({"unit_id": h.unit_id}, None)
+    f.counter("twin_messages_received", "MQTT messages received since start", h.messages)
+    for reason, n in h.rejected.items():
+        f.counter("twin_payloads_rejected", "Payloads rejected since start, by reason", n, reason=reason)
+    f.flag("twin_mqtt_connected", "1 while connected to the MQTT broker", h.connected)
+    f.counter("twin_mqtt_reconnects", "MQTT reconnections since start", h.reconnects)
+    for reason, n in h.failures_by_reason.items():
+        f.counter("twin_mqtt_connect_failures", "Failed MQTT connection attempts since start, by reason", n,
+                  reason=reason)
+    if h.last_failure_reason:
+        f.gauge("twin_mqtt_last_connect_failure_timestamp_seconds",
+                "Time of the latest failed MQTT connection attempt, Unix time, labelled with its reason",
+                h.last_failure_time, reason=h.last_failure_reason)
+    since = h.last_message_time if math.isfinite(h.last_message_time) else h.started
+    f.gauge("twin_mqtt_last_message_age_seconds",
+            "Time since the latest MQTT message (since start if none yet)", max(h.now - since, 0.0))
+    f.counter("twin_mqtt_callback_errors", "Messages whose handler failed (dropped) since start", h.callback_errors)
+    f.counter("twin_mqtt_publish_dropped", "Outgoing MQTT messages that could not be queued since start",
+              h.publish_dropped)
+    for tag, t in h.tag_last_time.items():
+        since = t if math.isfinite(t) else h.started
+        f.gauge("twin_sensor_last_sample_age_seconds",
+                "Time since the newest stored sample of the sensor (since start if none yet)",
+                max(h.now - since, 0.0), tag=tag)
+    for tag, n in h.overwritten.items():
+        f.counter("twin_sensor_samples_overwritten", "Samples of the sensor lost to ring-buffer overflow since start",
+                  n, tag=tag)
+    for tag, n in h.samples_missing.items():
+        f.counter("twin_sensor_samples_missing",
+                  "Samples of the sensor expected from its sample period but never received, since start", n, tag=tag)
+    for tag, period in h.sample_period.items():
+        f.gauge("twin_sensor_expected_sample_period_seconds",
+                "Expected time between samples of the sensor (configured or learned)", period, tag=tag)
+    f.counter("twin_windows_skipped", "Windows never closed because the daemon fell behind, since start",
+              h.windows_skipped)
+    f.counter("twin_cycles_failed", "Monitoring cycles that failed with an error, since start", h.cycles_failed)
+    f.gauge("twin_cycle_period_seconds", "Configured monitoring cycle (one window closes per cycle)", h.cycle_period)
+    return list(f.families.values())
+
+
+class HealthCollector:
+    """Custom collector of the live :class:`Health` (read at scrape time)."""
+
+    def __init__(self, provider: HealthProvider) -> None:
+        if not callable(provider):
+            raise TypeError(f"provider must be callable, got {type(provider).__name__}")
+        self._provider = provider
+
+    def describe(self) -> list[Metric]:
+        return []
+
+    def collect(self) -> Iterator[Metric]:
+        yield from health_families(self._provider())
+
+
+@dataclass(frozen=True)
+class MetricsTls:
+    """TLS for the metrics endpoint (PEM files).
+
+    ``client_ca_file`` set: scrapers must present a client certificate signed by it.
+    """
+
+    cert_file: str
+    key_file: str
+    client_ca_file: str | None = None
+
+
 class CycleCollector:
     """Custom collector: the latest result's metric families, read at scrape time.
 
@@ -314,17 +457,20 @@ class CycleCollector:
         the first cycle. Called once per scrape, from the HTTP thread.
     """
 
-    def __init__(self, provider: Provider) -> None:
+    def __init__(self, provider: Provider, exclude: frozenset[str] = frozenset()) -> None:
         if not callable(provider):
             raise TypeError(f"provider must be callable, got {type(provider).__name__}")
         self._provider = provider
+        self._exclude = exclude
 
     def describe(self) -> list[Metric]:
         # Nothing up front: the families depend on the plant; no scrape at registration.
         return []
 
     def collect(self) -> Iterator[Metric]:
-        yield from build_families(self._provider())
+        for fam in build_families(self._provider()):
+            if fam.name not in self._exclude:
+                yield fam
 
 
 class MetricsServer:
@@ -343,6 +489,11 @@ class MetricsServer:
     routes : mapping of str to callable, optional
         Extra GET paths beside ``/metrics``, e.g. ``{"/diagram.svg": f}``: ``f()``
         returns ``(body, content type)``, or None for "not available yet" (503).
+    health : callable, optional
+        Returns the live :class:`Health`; its families replace the per-window
+        copies of the input counters (:data:`LIVE_FAMILIES`).
+    tls : MetricsTls, optional
+        Serve HTTPS (and require client certificates when it names a client CA).
     """
 
     def __init__(
@@ -352,14 +503,19 @@ class MetricsServer:
         port: int = 9108,
         registry: CollectorRegistry | None = None,
         routes: Mapping[str, Route] | None = None,
+        health: HealthProvider | None = None,
+        tls: MetricsTls | None = None,
     ) -> None:
         if not 0 <= int(port) <= 65535:
             raise ValueError(f"port must be in 0..65535, got {port!r}")
         self.address = address
         self.port = int(port)
+        self.tls = tls
         self.registry = registry if registry is not None else CollectorRegistry(auto_describe=True)
-        self.collector = CycleCollector(provider)
+        self.collector = CycleCollector(provider, LIVE_FAMILIES if health is not None else frozenset())
         self.registry.register(self.collector)
+        if health is not None:
+            self.registry.register(HealthCollector(health))
         self.cycle_duration = Histogram(
             "twin_cycle_duration_seconds",
             "Wall time of one monitoring cycle (window close to result published)",
@@ -374,11 +530,27 @@ class MetricsServer:
         """Serve ``/metrics`` (and the extra routes) on ``address:port`` in a daemon thread."""
         if self._server is not None:
             raise RuntimeError(f"metrics server already running on {self.address}:{self.port}")
-        if self.routes:
-            self._server, self._thread = _serve_with_routes(self.address, self.port, self.registry, self.routes)
-        else:
-            self._server, self._thread = start_http_server(self.port, addr=self.address, registry=self.registry)
+        kwargs: dict[str, Any] = {}
+        if self.tls is not None:
+            kwargs = {"certfile": self.tls.cert_file, "keyfile": self.tls.key_file,
+                      "client_cafile": self.tls.client_ca_file,
+                      "client_auth_required": self.tls.client_ca_file is not None}
+        try:
+            if self.routes:
+                self._server, self._thread = _serve_with_routes(self.address, self.port, self.registry,
+                                                                self.routes, self.tls)
+            else:
+                self._server, self._thread = start_http_server(self.port, addr=self.address,
+                                                               registry=self.registry, **kwargs)
+        except (OSError, ssl.SSLError) as exc:
+            why = str(exc) if isinstance(exc, ssl.SSLError) or not exc.strerror else exc.strerror
+            raise OSError(f"metrics endpoint {self.address}:{self.port}: {why}") from exc
         self.port = int(self._server.server_address[1])
+
+    @property
+    def scheme(self) -> str:
+        """``https`` when served over TLS, else ``http``."""
+        return "https" if self.tls is not None else "http"
 
     def stop(self) -> None:
         """Shut the HTTP server down and wait for its thread; a no-op when not running."""
@@ -412,11 +584,16 @@ Route = Callable[[], tuple[bytes, str] | None]
 
 
 def _serve_with_routes(address: str, port: int, registry: CollectorRegistry,
-                       routes: Mapping[str, Route]) -> tuple[Any, threading.Thread]:
-    """prometheus_client's WSGI exposition with extra GET routes in front of it."""
+                       routes: Mapping[str, Route], tls: MetricsTls | None = None) -> tuple[Any, threading.Thread]:
+    """prometheus_client's WSGI exposition with extra GET routes in front of it (optionally over TLS)."""
     from wsgiref.simple_server import make_server
 
-    from prometheus_client.exposition import ThreadingWSGIServer, _get_best_family, _SilentHandler
+    from prometheus_client.exposition import (
+        ThreadingWSGIServer,
+        _get_best_family,
+        _get_ssl_ctx,
+        _SilentHandler,
+    )
 
     metrics_app = make_wsgi_app(registry)
 
@@ -441,6 +618,10 @@ def _serve_with_routes(address: str, port: int, registry: CollectorRegistry,
 
     _Server.address_family, addr = _get_best_family(address, port)
     httpd = make_server(addr, port, app, _Server, handler_class=_SilentHandler)
+    if tls is not None:  # as prometheus_client's own start_http_server does
+        ctx = _get_ssl_ctx(tls.cert_file, tls.key_file, ssl.PROTOCOL_TLS_SERVER, tls.client_ca_file, None,
+                           tls.client_ca_file is not None)
+        httpd.socket = ctx.wrap_socket(httpd.socket, server_side=True)
     thread = threading.Thread(target=httpd.serve_forever, daemon=True)
     thread.start()
     return httpd, thread

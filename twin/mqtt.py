@@ -4,12 +4,19 @@
 connects asynchronously, reconnects with exponential backoff, re-subscribes on
 every (re)connect, hands each message to a callback as
 ``(topic, payload, receive_time)``, bounds outgoing QoS 1/2 messages, and keeps
-counters and the last error as plain text for metrics and logs. Nothing here
-logs; nothing raises from the network thread.
+counters and the last error as plain text for metrics and logs.
+
+Connection health: every change of the connection state (connecting,
+connected, lost, refused/failed with a reason from the bounded set
+:data:`CONNECT_FAILURE_REASONS`) is handed to an optional ``on_event``
+callback as one :class:`ConnectionEvent`; a failure repeating with the same
+reason is counted, not reported again. Nothing here logs; nothing raises from
+the network thread.
 """
 
 from __future__ import annotations
 
+import contextlib
 import os
 import ssl
 import sys
@@ -34,6 +41,47 @@ _MAX_MESSAGE_IDS = 65_535
 
 class MqttError(Exception):
     """A configuration or connection problem, with a message fit for an operator."""
+
+
+CONNECT_FAILURE_REASONS: tuple[str, ...] = (
+    "bad_credentials",  # CONNACK: bad user name or password
+    "not_authorized",  # CONNACK: not authorised (ACL, client id, anonymous refused)
+    "refused",  # CONNACK: any other refusal (protocol version, server unavailable ...)
+    "tls_verify_failed",  # the broker's certificate did not verify (CA, expiry, host name)
+    "tls_error",  # any other TLS failure (handshake, protocol)
+    "unreachable",  # TCP connect failed: refused, timed out, no route, name not resolved
+    "closed_before_connack",  # the broker closed the connection before accepting it
+)
+"""Every reason a connection attempt can fail for; a fixed, bounded set (metric label)."""
+
+CONNECTION_STATES: tuple[str, ...] = ("connecting", "connected", "lost", "failed")
+
+
+@dataclass(frozen=True)
+class ConnectionEvent:
+    """One change of the connection state.
+
+    Attributes
+    ----------
+    state : str
+        One of :data:`CONNECTION_STATES`: ``connecting`` (start), ``connected``,
+        ``lost`` (an established connection went away), ``failed`` (an attempt
+        did not connect; ``reason`` says why).
+    reason : str
+        For ``failed``: one of :data:`CONNECT_FAILURE_REASONS`; else empty.
+    detail : str
+        The failure in words, naming the broker address (for a log line).
+    time : float
+        When it happened [s since the epoch], from the client's clock.
+    attempts : int
+        Failed attempts in a row before this event (including this one).
+    """
+
+    state: str
+    reason: str = ""
+    detail: str = ""
+    time: float = float("nan")
+    attempts: int = 0
 
 
 @dataclass(frozen=True)
@@ -61,7 +109,8 @@ class MqttSettings:
     qos : int
         Default QoS for subscribe and publish.
     reconnect_min_delay, reconnect_max_delay : float
-        Exponential backoff bounds [s].
+        Exponential backoff bounds [s]. The cap is kept short (2 s) so data
+        flows again within a few seconds after the broker is back.
     max_inflight : int
         QoS 1/2 messages sent but not yet acknowledged (paho's window).
     max_queued : int
@@ -92,8 +141,8 @@ class MqttSettings:
     username: str | None = None
     password: str | None = field(default=None, repr=False)
     qos: int = 1
-    reconnect_min_delay: float = 1.0
-    reconnect_max_delay: float = 30.0
+    reconnect_min_delay: float = 0.5
+    reconnect_max_delay: float = 2.0
     max_inflight: int = 100
     max_queued: int = 10_000
     clean_session: bool = True
@@ -388,6 +437,10 @@ class MqttStats:
     acknowledged: int
     pending: int
     last_error: str | None
+    failures_by_reason: Mapping[str, int] = field(default_factory=dict)
+    last_failure_reason: str = ""
+    last_failure_time: float = float("nan")
+    last_message_time: float = float("nan")
 
 
 class MqttClient:
@@ -403,6 +456,10 @@ class MqttClient:
         as ``last_error``, never propagated.
     clock : callable
         Receive-time source [s since the epoch].
+    on_event : callable, optional
+        ``on_event(ConnectionEvent)`` on every change of the connection state
+        (see the module docstring); runs on the network thread (``connecting``
+        on the caller's), must be quick; exceptions it raises are swallowed.
     """
 
     def __init__(
@@ -410,14 +467,22 @@ class MqttClient:
         settings: MqttSettings,
         on_message: Callable[[str, bytes, float], None],
         clock: Callable[[], float] = time.time,
+        on_event: Callable[[ConnectionEvent], None] | None = None,
     ) -> None:
         self.settings = settings
         self._on_message_cb = on_message
         self._clock = clock
+        self._on_event = on_event
+        self._state: tuple[str, str] = ("", "")  # (state, reason) last reported
+        self._failures_in_row = 0
+        self._failures = dict.fromkeys(CONNECT_FAILURE_REASONS, 0)
+        self._last_failure: tuple[str, float] = ("", float("nan"))
+        self._last_message_time = float("nan")
         self._lock = threading.Lock()
         self._subscriptions: dict[str, int] = {}
         self._connected = threading.Event()
         self._started = False
+        self._stopping = False
         self._c = {
             k: 0
             for k in (
@@ -453,10 +518,18 @@ class MqttClient:
         if s.uses_tls:
             try:
                 ctx = ssl.create_default_context(cafile=s.tls_ca)
-                if s.tls_cert is not None:
-                    ctx.load_cert_chain(s.tls_cert, s.tls_key)
             except (OSError, ssl.SSLError) as exc:
-                raise MqttError(f"MQTT TLS set-up for {s.address} failed: {exc}") from exc
+                raise MqttError(
+                    f"MQTT TLS set-up for {s.address} failed: CA file {s.tls_ca!r}: {_why(exc)}"
+                ) from exc
+            if s.tls_cert is not None:
+                try:
+                    ctx.load_cert_chain(s.tls_cert, s.tls_key)
+                except (OSError, ssl.SSLError) as exc:
+                    files = repr(s.tls_cert) + (f" / key {s.tls_key!r}" if s.tls_key else "")
+                    raise MqttError(
+                        f"MQTT TLS set-up for {s.address} failed: certificate {files}: {_why(exc)}"
+                    ) from exc
             if s.tls_insecure:
                 ctx.check_hostname = False
             client.tls_set_context(ctx)
@@ -479,6 +552,8 @@ class MqttClient:
             raise RuntimeError("MqttClient.start() called twice")
         self._started = True
         s = self.settings
+        self._report(ConnectionEvent("connecting", detail=f"connecting to MQTT broker {s.address}"
+                                     + (" over TLS" if s.uses_tls else ""), time=self._clock()))
         kwargs: dict[str, Any] = {}
         if s.protocol == "5":
             kwargs["clean_start"] = s.clean_session
@@ -493,6 +568,7 @@ class MqttClient:
         """Disconnect and join the network thread (returns within seconds)."""
         if not self._started:
             return
+        self._stopping = True
         self._client.disconnect()
         self._client.loop_stop()
         self._started = False
@@ -517,8 +593,34 @@ class MqttClient:
             connected=self.connected,
             last_error=self._last_error,
             messages_received=self._received,
+            failures_by_reason=dict(self._failures),
+            last_failure_reason=self._last_failure[0],
+            last_failure_time=self._last_failure[1],
+            last_message_time=self._last_message_time,
             **c,
         )
+
+    # ------------------------------------------------------ state changes ---
+
+    def _report(self, event: ConnectionEvent) -> None:
+        """Hand a state change to ``on_event`` unless it repeats the last one."""
+        key = (event.state, event.reason)
+        if key == self._state:
+            return
+        self._state = key
+        if self._on_event is not None:
+            with contextlib.suppress(Exception):  # the network thread must survive a bad handler
+                self._on_event(event)
+
+    def _failed(self, reason: str, detail: str) -> None:
+        now = self._clock()
+        with self._lock:
+            self._c["connect_failures"] += 1
+            self._failures[reason] += 1
+        self._failures_in_row += 1
+        self._last_failure = (reason, now)
+        self._last_error = detail
+        self._report(ConnectionEvent("failed", reason, detail, now, self._failures_in_row))
 
     # ---------------------------------------------------- subscribe / pub ---
 
@@ -570,12 +672,11 @@ class MqttClient:
     ) -> None:
         if reason_code.is_failure:
             self._refused = True
-            with self._lock:
-                self._c["connect_failures"] += 1
-            self._last_error = (
-                f"MQTT broker {self.settings.address} refused the connection: {reason_code}"
-                + (" (check the username and password)" if _is_auth_failure(reason_code) else "")
-            )
+            reason = _refusal_reason(reason_code)
+            hint = {"bad_credentials": " (check the username and password)",
+                    "not_authorized": " (check the username and password and the broker's ACL)"}
+            self._failed(reason, f"MQTT broker {self.settings.address} refused the connection: "
+                         f"{reason_code}{hint.get(reason, '')}")
             return
         with self._lock:
             self._c["connects"] += 1
@@ -583,19 +684,24 @@ class MqttClient:
         if subs:
             client.subscribe(subs)
         self._connected.set()
+        self._failures_in_row = 0
+        self._report(ConnectionEvent("connected", detail=f"connected to MQTT broker "
+                                     f"{self.settings.address}", time=self._clock()))
 
     def _on_connect_fail(self, client: paho.Client, userdata: Any) -> None:
         # paho calls this inside its ``except OSError`` block: the error is current.
         exc = sys.exc_info()[1]
-        with self._lock:
-            self._c["connect_failures"] += 1
         address = self.settings.address
-        if isinstance(exc, ssl.SSLError):
-            self._last_error = f"TLS handshake with MQTT broker {address} failed: {exc}"
+        if isinstance(exc, ssl.SSLCertVerificationError):
+            why = exc.verify_message or str(exc)
+            self._failed("tls_verify_failed", f"TLS handshake with MQTT broker {address} failed: "
+                         f"certificate verify failed: {why} (CA file {self.settings.tls_ca or 'system store'})")
+        elif isinstance(exc, ssl.SSLError):
+            self._failed("tls_error", f"TLS handshake with MQTT broker {address} failed: {exc}")
         elif exc is not None:
-            self._last_error = f"cannot connect to MQTT broker {address}: {exc}"
+            self._failed("unreachable", f"cannot connect to MQTT broker {address}: {_why(exc)}")
         else:
-            self._last_error = f"cannot connect to MQTT broker {address}"
+            self._failed("unreachable", f"cannot connect to MQTT broker {address}")
 
     def _on_disconnect(
         self, client: paho.Client, userdata: Any, flags: Any, reason_code: Any, properties: Any
@@ -605,23 +711,24 @@ class MqttClient:
         refused, self._refused = self._refused, False
         if not was and not refused:
             # closed before a CONNACK: e.g. plain MQTT sent to a TLS listener
-            with self._lock:
-                self._c["connect_failures"] += 1
-            self._last_error = (
+            self._failed(
+                "closed_before_connack",
                 f"MQTT broker {self.settings.address} closed the connection before accepting "
-                f"it ({reason_code}); is TLS required or the port wrong?"
+                f"it ({reason_code}); is TLS required or the port wrong?",
             )
         elif was:
             with self._lock:
                 self._c["disconnects"] += 1
+            detail = f"lost connection to MQTT broker {self.settings.address}: {reason_code}"
             if reason_code.is_failure:
-                self._last_error = (
-                    f"lost connection to MQTT broker {self.settings.address}: {reason_code}"
-                )
+                self._last_error = detail
+            if not self._stopping:  # not our own stop()
+                self._report(ConnectionEvent("lost", detail=detail, time=self._clock()))
 
     def _on_message(self, client: paho.Client, userdata: Any, msg: paho.MQTTMessage) -> None:
         now = self._clock()
         self._received += 1  # written only on the network thread: no lock needed
+        self._last_message_time = now
         topic: str | None = None
         try:
             topic = msg.topic  # UnicodeDecodeError for an invalid UTF-8 topic
@@ -634,6 +741,7 @@ class MqttClient:
         """The batching client's fast path: topic as raw bytes, payload as bytes."""
         now = self._clock()
         self._received += 1
+        self._last_message_time = now
         topic = self._topic_text.get(topic_raw)
         try:
             if topic is None:
@@ -661,7 +769,21 @@ class MqttClient:
             self._c["acknowledged"] += 1
 
 
-def _is_auth_failure(reason_code: Any) -> bool:
+def _refusal_reason(reason_code: Any) -> str:
+    """The bounded reason of a CONNACK refusal."""
     # MQTT 3.1.1 CONNACK 4/5 and MQTT 5 reason codes 0x86/0x87 map to these names in paho.
     text = str(reason_code).lower()
-    return "not authori" in text or "bad user name or password" in text or "username" in text
+    if "bad user name or password" in text or "username" in text:
+        return "bad_credentials"
+    if "not authori" in text:
+        return "not_authorized"
+    return "refused"
+
+
+def _why(exc: BaseException) -> str:
+    """An OS or TLS error in words, without Python's ``[Errno n]`` noise."""
+    if isinstance(exc, ssl.SSLError) and exc.reason:
+        return str(exc.reason).replace("_", " ").lower()
+    if isinstance(exc, OSError) and exc.strerror:
+        return exc.strerror
+    return str(exc) or type(exc).__name__

@@ -252,3 +252,16 @@ def parse_quantity(
         units_for(dimension)
         return value
     return float(conversion(unit, dimension, barometric_pressure=barometric_pressure).to_si(value))
+
+
+def rfc3339(t: float) -> str:
+    """Unix time [s] as RFC 3339 UTC with milliseconds, e.g. ``"2026-12-02T07:58:00.125Z"``.
+
+    A time that is not finite or out of range is written as its number.
+    """
+    from datetime import UTC, datetime
+
+    try:
+        return datetime.fromtimestamp(t, UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+    except (ValueError, OverflowError, OSError, TypeError):
+        return repr(t)

@@ -256,9 +256,12 @@ def _check_sensors(cfg: PlantConfig, streams: set[str], baro: float | None, add:
                 add(f"{where}.{key}", f"{list(pair)} is empty; expected [low, high] with low < high")
         if s.uncertainty.kind == "percent_of_span" and s.span is None:
             add(f"{where}.span", "missing; expected [low, high] for a percent_of_span uncertainty")
-        if not s.topic or s.topic.startswith("/") or "+" in s.topic or "#" in s.topic:
-            add(f"{where}.topic", f"{s.topic!r} is not a publishable topic; expected no leading '/' "
-                "and no wildcards")
+        bad = topic_problem(s.topic)
+        if bad is None and s.topic.startswith("/"):
+            bad = "starts with '/'"
+        if bad is not None:
+            add(f"{where}.topic", f"{s.topic!r} is not a valid sensor topic ({bad}); expected an MQTT "
+                "topic name such as \"plant/u1/hp/pressure\": UTF-8, no wildcards, no leading '/'")
         loc: tuple[str, ...] = {"number": (s.topic,), "batch": (s.topic, s.tag)}.get(
             s.payload.format, (s.topic, s.payload.value))
         if loc in locations:
@@ -273,6 +276,35 @@ def _check_sensors(cfg: PlantConfig, streams: set[str], baro: float | None, add:
                 "of a sensor with quantity = \"barometric_pressure\"")
 
 
+MAX_TOPIC_BYTES = 65535  # MQTT 3.1.1 section 1.5.3 / MQTT 5 section 1.5.4
+
+
+def topic_problem(topic: str) -> str | None:
+    """Why ``topic`` is not a valid MQTT topic name to publish on, or None if it is.
+
+    MQTT 3.1.1 sections 1.5.3 and 4.7: 1 to 65 535 bytes of UTF-8, no U+0000
+    (brokers drop the connection), no wildcards ``+``/``#`` in a topic name;
+    control characters U+0001-U+001F and U+007F-U+009F are refused too (the
+    standard says they SHOULD NOT appear and brokers may refuse them).
+    """
+    if not topic:
+        return "empty"
+    if "\x00" in topic:
+        return "contains U+0000"
+    if "+" in topic or "#" in topic:
+        return "contains a wildcard '+' or '#'"
+    control = next((c for c in topic if ord(c) < 0x20 or 0x7F <= ord(c) <= 0x9F), None)
+    if control is not None:
+        return f"contains control character U+{ord(control):04X}"
+    try:
+        size = len(topic.encode("utf-8"))
+    except UnicodeEncodeError:
+        return "not encodable as UTF-8 (a lone surrogate)"
+    if size > MAX_TOPIC_BYTES:
+        return f"{size} bytes long, more than {MAX_TOPIC_BYTES}"
+    return None
+
+
 def _check_services(cfg: PlantConfig, add: Any) -> None:
     b, m, uid = cfg.broker, cfg.monitoring, cfg.unit.id
     if b.port is None:
@@ -280,6 +312,13 @@ def _check_services(cfg: PlantConfig, add: Any) -> None:
     b.client_id = b.client_id or f"twin-{uid}"
     b.republish_prefix = (b.republish_prefix or f"twin/{uid}").rstrip("/")
     b.events_topic = b.events_topic or f"{b.republish_prefix}/events"
+    for key in ("republish_prefix", "events_topic"):
+        bad = topic_problem(getattr(b, key))
+        if bad is not None:
+            add(f"broker.{key}", f"{getattr(b, key)!r} is not a valid MQTT topic ({bad}); expected a "
+                "topic name such as \"twin/u1\"")
+    if not b.reconnect_min_delay <= b.reconnect_max_delay:
+        add("broker.reconnect_min_delay", "above reconnect_max_delay; expected min <= max")
     if b.password_file is not None and b.password_env is not None:
         add("broker", "both password_file and password_env given; expected at most one")
     if (b.password_file or b.password_env) and not b.username:

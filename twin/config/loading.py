@@ -42,14 +42,35 @@ def load_config(path: str | Path) -> PlantConfig:
     cfg = validate_config(data, source=path)
     base = path.parent
     b = cfg.broker
+    files: list[tuple[str, Path]] = []
     if b.password_file is not None:
         b.password_file = base / b.password_file
-    if b.tls is not None:
-        for key in ("ca_file", "cert_file", "key_file"):
-            if getattr(b.tls, key) is not None:
-                setattr(b.tls, key, base / getattr(b.tls, key))
+        files.append(("broker.password_file", b.password_file))
+    for section, tls in (("broker.tls", b.tls), ("metrics.tls", cfg.metrics.tls)):
+        if tls is None:
+            continue
+        for key in ("ca_file", "cert_file", "key_file", "client_ca_file"):
+            if getattr(tls, key, None) is not None:
+                setattr(tls, key, base / getattr(tls, key))
+                files.append((f"{section}.{key}", getattr(tls, key)))
+    problems = [f"{path}: {key}: {why}; expected a readable file"
+                for key, file in files if (why := unreadable(file)) is not None]
+    if problems:
+        raise ConfigError(problems, path)
     cfg._source_path = path
     return cfg
+
+
+def unreadable(file: Path) -> str | None:
+    """Why ``file`` cannot be read (naming it), or None when it can."""
+    try:
+        with open(file, "rb") as fh:
+            fh.read(1)
+    except IsADirectoryError:
+        return f"{str(file)!r} is a directory"
+    except OSError as exc:
+        return f"cannot read {str(file)!r}: {exc.strerror or exc}"
+    return None
 
 
 def validate_config(data: Mapping[str, Any], source: str | Path = "<config>") -> PlantConfig:

@@ -155,6 +155,8 @@ class SensorConfig(_Model):
     span: Pair | None = None
     range: Pair | None = None
     max_age: Duration = 30.0
+    sample_period: Duration | None = Field(
+        default=None, description="expected time between samples; default: learned from the first minutes")
     _conversion: Conversion | None = PrivateAttr(default=None)
 
     @property
@@ -203,13 +205,24 @@ class SensorDefaults(_Model):
 
     payload: PayloadConfig = Field(default_factory=PayloadConfig)
     max_age: Duration = 30.0
+    sample_period: Duration | None = None
 
 
 class TlsConfig(_Model):
+    """``[broker.tls]``: CA bundle (default: the system store), client certificate and key."""
+
     ca_file: Path | None = None
     cert_file: Path | None = None
     key_file: Path | None = None
     insecure: bool = False
+
+
+class MetricsTlsConfig(_Model):
+    """``[metrics.tls]``: serve the metrics over HTTPS; ``client_ca_file`` requires client certificates."""
+
+    cert_file: Path
+    key_file: Path
+    client_ca_file: Path | None = None
 
 
 class BrokerConfig(_Model):
@@ -227,6 +240,10 @@ class BrokerConfig(_Model):
     password_env: str | None = None
     republish_prefix: str | None = Field(default=None, description='default "twin/<unit id>"')
     events_topic: str | None = Field(default=None, description='default "<republish_prefix>/events"')
+    reconnect_min_delay: Duration = Field(default=0.5, description="first wait before reconnecting")
+    reconnect_max_delay: Duration = Field(default=2.0, description="cap of the exponential reconnect backoff")
+    future_tolerance: Delay = Field(
+        default=5.0, description="samples stamped further ahead of their receipt are rejected (future_timestamp)")
 
     @model_validator(mode="before")
     @classmethod
@@ -255,6 +272,7 @@ class MetricsConfig(_Model):
 
     address: str = "127.0.0.1"
     port: int = Field(default=9108, ge=0, le=65535, description="0 = any free port")
+    tls: MetricsTlsConfig | None = None
 
 
 class DriftConfig(_Model):
@@ -355,8 +373,9 @@ class PlantConfig(_Model):
         for s in data["sensors"]:
             if isinstance(s, dict):
                 s = dict(s)
-                if "max_age" in defaults:
-                    s.setdefault("max_age", defaults["max_age"])
+                for key in ("max_age", "sample_period"):
+                    if key in defaults:
+                        s.setdefault(key, defaults[key])
                 if isinstance(defaults.get("payload"), dict) and isinstance(s.get("payload", {}), dict):
                     s["payload"] = {**defaults["payload"], **s.get("payload", {})}
             sensors.append(s)

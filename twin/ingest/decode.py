@@ -31,13 +31,19 @@ Payload kinds
 
 Timestamps are epoch seconds, epoch milliseconds or RFC 3339 text with an
 offset; ``"auto"`` takes numbers above 1e11 as milliseconds. A missing
-timestamp means the receive time.
+timestamp means the receive time. Whether a time is plausible (not too old,
+not in the future) is the :class:`~twin.ingest.pipeline.Ingestor`'s policy.
+
+Numbers in text (a ``number`` payload, a JSON string value or timestamp) are
+parsed strictly: optional sign, digits, optional fraction and exponent, or
+``nan``/``inf``; no surrounding blanks, no ``_`` digit separators, no hex.
 """
 
 from __future__ import annotations
 
 import json
 import math
+import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
@@ -56,6 +62,8 @@ REJECT_REASONS: tuple[str, ...] = (
     "bad_timestamp",  # a timestamp present but unusable
     "bad_quality",  # a quality field of unusable type
     "out_of_range",  # the SI value lies outside the tag's valid range
+    "too_old",  # timestamp older than any window still to be closed (the horizon)
+    "future_timestamp",  # timestamp ahead of the receive time by more than the tolerance
 )
 """Every reason a sample can be rejected for; a fixed, bounded set."""
 
@@ -65,6 +73,23 @@ DEFAULT_MAX_PAYLOAD_BYTES = 64 * 1024
 
 # Accepted time range after conversion to epoch seconds: 1970 .. year 5138.
 _MAX_EPOCH_S = 1e11
+
+# A number as text, strictly (Python's float() also takes blanks, "_" and "infinity" spellings).
+_NUMBER_TEXT = r"[+-]?(?:(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|(?i:nan|inf|infinity))"
+_NUMBER_BYTES = re.compile(_NUMBER_TEXT.encode()).fullmatch
+_NUMBER_STR = re.compile(_NUMBER_TEXT, re.ASCII).fullmatch
+
+
+def strict_float(text: str | bytes) -> float:
+    """Parse a number written as text, strictly; ``ValueError`` otherwise.
+
+    >>> strict_float(b"-1.5e3")
+    -1500.0
+    """
+    ok = _NUMBER_BYTES(text) if isinstance(text, bytes) else _NUMBER_STR(text)
+    if ok is None:
+        raise ValueError(f"not a plain number: {text[:32]!r}")
+    return float(text)
 
 
 class Sample(NamedTuple):
@@ -239,10 +264,10 @@ def parse_timestamp(raw: Any, fmt: str) -> float | None:
             if fmt == "epoch_ms" or (fmt == "auto" and abs(t) > _MAX_EPOCH_S):
                 t /= 1000.0
         elif isinstance(raw, str):
-            text = raw.strip()
+            text = raw
             if fmt in ("epoch_s", "epoch_ms", "auto"):
                 try:
-                    return parse_timestamp(float(text), fmt)
+                    return parse_timestamp(strict_float(text), fmt)
                 except ValueError:
                     if fmt != "auto":
                         return None
@@ -272,7 +297,7 @@ def _number(raw: Any) -> tuple[float | None, str]:
             return None, "not_finite"
     elif isinstance(raw, str):
         try:
-            x = float(raw)
+            x = strict_float(raw)
         except ValueError:
             return None, "not_a_number"
     else:
@@ -464,7 +489,7 @@ class TopicMap:
         tag, key, ts_key, ts_code, scale, offset, lo, hi = plan
         try:
             if key is None:
-                raw = float(payload)
+                raw = strict_float(payload)
                 t = now
             else:
                 text = payload.decode("utf-8")
@@ -512,7 +537,7 @@ class TopicMap:
     def _decode_number(self, c: _Compiled, payload: bytes, now: float, out: DecodeOutcome) -> None:
         tag = c.binding.tag
         try:
-            raw = float(payload)
+            raw = strict_float(payload)
         except (ValueError, TypeError):
             out.rejections.append(Rejection(tag, "not_a_number", repr(payload[:32])))
             return

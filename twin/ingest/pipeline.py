@@ -7,10 +7,11 @@ counters for metrics and decides what to log from the reports it is handed.
 
 from __future__ import annotations
 
+import math
 import threading
 from collections.abc import Callable
 
-from twin.ingest.decode import REJECT_REASONS, Rejection, TopicMap
+from twin.ingest.decode import REJECT_REASONS, DecodeOutcome, Rejection, TopicMap
 from twin.ingest.store import TagStore
 
 
@@ -99,6 +100,16 @@ class Ingestor:
         reason and ``limiter.interval``; runs on the network thread, keep it short.
     limiter : LogRateLimiter, optional
         Defaults to one report per minute per key and reason.
+    horizon : float
+        Samples stamped more than this before the receive time are rejected
+        as ``too_old`` [s] (the daemon passes window + cycle + grace: no
+        window still to be closed could use them); ``inf`` = no limit.
+    future_tolerance : float
+        Samples stamped more than this after the receive time are rejected
+        as ``future_timestamp`` [s] (a publisher clock running fast would
+        otherwise push good samples out of the ring buffer); ``inf`` = no limit.
+
+    Rejected samples never reach the store, so they cannot displace good ones.
     """
 
     def __init__(
@@ -107,7 +118,15 @@ class Ingestor:
         store: TagStore,
         on_reject: RejectReport | None = None,
         limiter: LogRateLimiter | None = None,
+        horizon: float = math.inf,
+        future_tolerance: float = math.inf,
     ) -> None:
+        if not (horizon > 0 and future_tolerance >= 0):
+            raise ValueError(
+                f"horizon {horizon!r} must be > 0 and future_tolerance {future_tolerance!r} >= 0 [s]"
+            )
+        self.horizon = float(horizon)
+        self.future_tolerance = float(future_tolerance)
         missing = sorted(set(topic_map.bindings) - set(store.tags))
         if missing:
             raise ValueError(f"the tag store does not hold bound tags {missing}")
@@ -120,15 +139,19 @@ class Ingestor:
         self._add = store.add
         self.messages = 0
         self.samples = 0
+        self.last_message_time = math.nan  # receive time of the newest message [s]
 
     def __call__(self, topic: str, payload: bytes, now: float) -> None:
+        self.last_message_time = now
         one = self._decode_one(topic, payload, now)
-        if one is not None:  # the common case: one valid sample
-            self._add(*one)
+        if one is not None and now - self.horizon <= one[1] <= now + self.future_tolerance:
+            self._add(*one)  # the common case: one valid sample of a plausible time
             self.messages += 1
             self.samples += 1
             return
         out = self.topic_map.decode(topic, payload, now)
+        if out.samples:
+            self._check_times(out, now)
         if out.samples:
             self.store.add_many(out.samples)
         self.messages += 1
@@ -140,3 +163,18 @@ class Ingestor:
                     log, n = self.limiter.should_log(r.key, r.reason, now)
                     if log:
                         self.on_reject(r, n)
+
+    def _check_times(self, out: DecodeOutcome, now: float) -> None:
+        """Move samples stamped outside ``[now - horizon, now + future_tolerance]`` to the rejections."""
+        lo, hi = now - self.horizon, now + self.future_tolerance
+        if all(lo <= s.time <= hi for s in out.samples):
+            return
+        kept = []
+        for s in out.samples:
+            if s.time < lo:
+                out.rejections.append(Rejection(s.tag, "too_old", f"{now - s.time:.0f} s before receipt"))
+            elif s.time > hi:
+                out.rejections.append(Rejection(s.tag, "future_timestamp", f"{s.time - now:.0f} s after receipt"))
+            else:
+                kept.append(s)
+        out.samples[:] = kept

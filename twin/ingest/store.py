@@ -131,6 +131,17 @@ class TagStore:
         with self._lock:
             return {tag: max(0, r.n - self.capacity) for tag, r in self._rings.items()}
 
+    def latest_times(self) -> dict[str, float]:
+        """Per tag, the time of the newest held sample (any quality) [s]; NaN if none."""
+        with self._lock:
+            held = {tag: (r.n, r.t.copy()) for tag, r in self._rings.items()}
+        return {tag: float(t[: min(n, self.capacity)].max()) if n else math.nan for tag, (n, t) in held.items()}
+
+    def counts(self) -> dict[str, int]:
+        """Per tag, samples ever written (including those later overwritten)."""
+        with self._lock:
+            return {tag: r.n for tag, r in self._rings.items()}
+
     def snapshot(self, tag: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Copies of ``tag``'s held (time, value, quality) arrays, oldest first."""
         ring = self._rings[tag]
