@@ -18,7 +18,8 @@ from pathlib import Path
 import pytest
 
 from tests.test_metrics import full_result
-from twin.metrics import MetricsServer, exposition
+from twin.metrics import Health, MetricsServer, exposition
+from twin.mqtt import CONNECT_FAILURE_REASONS
 from twin.result import CycleResult, Estimate
 
 # PyYAML arrives with amqtt (a runtime dependency); skip rather than fail without it.
@@ -55,9 +56,20 @@ def populated_result() -> CycleResult:
     return dataclasses.replace(r, kpis=kpis, expected={k: 0.5 for k in ALL_KPIS})
 
 
+def full_health() -> Health:
+    """A live health snapshot with every family populated."""
+    tags = {"HP-MS-P1": 1.7e9 - 3.0}
+    return Health(unit_id="demo-u1", now=1.7e9, started=1.7e9 - 600.0, connected=True, reconnects=1,
+                  failures_by_reason=dict.fromkeys(CONNECT_FAILURE_REASONS, 0) | {"unreachable": 2},
+                  last_failure_reason="unreachable", last_failure_time=1.7e9 - 100.0,
+                  last_message_time=1.7e9 - 0.5, messages=10, rejected={"too_old": 1},
+                  tag_last_time=tags, overwritten=dict.fromkeys(tags, 0), samples_missing=dict.fromkeys(tags, 3),
+                  sample_period=dict.fromkeys(tags, 1.0), cycle_period=10.0)
+
+
 def exported_names() -> set[str]:
-    """Sample names in the exposition of the populated result plus the cycle histogram."""
-    server = MetricsServer(populated_result, port=0)
+    """Sample names in the exposition of the populated result and health plus the cycle histogram."""
+    server = MetricsServer(populated_result, port=0, health=full_health)
     server.observe_cycle(0.1)
     text = exposition(server.registry).decode()
     return {ln.split("{")[0].split(" ")[0] for ln in text.splitlines() if ln and not ln.startswith("#")}
@@ -89,7 +101,7 @@ def test_example_config_and_rules_pass_promtool_check() -> None:
     assert proc.returncode == 0, proc.stdout + proc.stderr
     proc = run("check", "rules", *map(str, RULE_FILES))
     assert proc.returncode == 0, proc.stdout + proc.stderr
-    assert len(RULE_FILES) == 2
+    assert len(RULE_FILES) == 3
 
 
 @needs_promtool

@@ -5,7 +5,7 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
-from tests.test_deploy import populated_result
+from tests.test_deploy import full_health, populated_result
 from twin.metrics import MetricsServer
 
 DOC = Path(__file__).resolve().parent.parent / "docs" / "metrics.md"
@@ -34,7 +34,7 @@ def documented(path: Path = DOC) -> dict[str, tuple[str, set[str], str]]:
 
 
 def exported() -> dict[str, tuple[str, set[str]]]:
-    server = MetricsServer(populated_result, port=0)
+    server = MetricsServer(populated_result, port=0, health=full_health)
     server.observe_cycle(0.1)
     out = {}
     for fam in server.registry.collect():

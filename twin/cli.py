@@ -12,7 +12,9 @@ import importlib
 import json
 import logging
 import os
+import signal
 import sys
+import threading
 
 from twin import __version__
 from twin.commands._text import HelpFormatter, uniform_metavars
@@ -70,8 +72,9 @@ def setup_logging(level: str = "INFO", fmt: str = "text") -> None:
         raise ValueError(f"log format {fmt!r} is not one of {LOG_FORMATS}")
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(JsonFormatter() if fmt == "json" else TextFormatter())
+    handler.set_name("twin")
     root = logging.getLogger()
-    for old in list(root.handlers):
+    for old in [h for h in root.handlers if h.get_name() == "twin"]:  # ours from an earlier call only
         root.removeHandler(old)
     root.addHandler(handler)
     root.setLevel(getattr(logging, level))
@@ -112,9 +115,26 @@ def _polish(parser: argparse.ArgumentParser) -> None:
                 _polish(child)
 
 
+def _exit_during_start_up(signum: int, frame: object) -> None:
+    """SIGTERM/SIGINT before a command installs its own handlers: a clean exit, not a kill."""
+    raise SystemExit(0 if signum == signal.SIGTERM else 128 + signum)
+
+
 def main(argv: list[str] | None = None) -> int:
     # Small dense solves: threaded BLAS on 2-core machines is slower and erratic.
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+    saved = {}
+    if threading.current_thread() is threading.main_thread():
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            saved[sig] = signal.signal(sig, _exit_during_start_up)
+    try:
+        return _main(argv)
+    finally:
+        for sig, handler in saved.items():
+            signal.signal(sig, handler)
+
+
+def _main(argv: list[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.command is None:

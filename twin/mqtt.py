@@ -698,6 +698,10 @@ class MqttClient:
                          f"certificate verify failed: {why} (CA file {self.settings.tls_ca or 'system store'})")
         elif isinstance(exc, ssl.SSLError):
             self._failed("tls_error", f"TLS handshake with MQTT broker {address} failed: {exc}")
+        elif isinstance(exc, ConnectionResetError | BrokenPipeError) and self.settings.uses_tls:
+            # the TCP connection was accepted, then dropped during the handshake
+            self._failed("tls_error", f"TLS handshake with MQTT broker {address} failed: {_why(exc)} "
+                         "(is the port a TLS listener?)")
         elif exc is not None:
             self._failed("unreachable", f"cannot connect to MQTT broker {address}: {_why(exc)}")
         else:

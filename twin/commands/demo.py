@@ -79,6 +79,14 @@ def run(args: argparse.Namespace) -> int:
         if not host or not port.isdigit():
             print(f"twin demo: --broker {args.broker!r}: expected HOST:PORT", file=sys.stderr)
             return 2
+        import socket
+
+        try:  # fail at the door: before the model is built, in one line
+            socket.create_connection((host, int(port)), timeout=5).close()
+        except (OSError, OverflowError) as exc:
+            why = getattr(exc, "strerror", None) or str(exc)
+            print(f"twin demo: cannot connect to MQTT broker {host}:{port}: {why}", file=sys.stderr)
+            return 1
     else:
         broker = EmbeddedBroker()
         try:
@@ -113,6 +121,12 @@ def run(args: argparse.Namespace) -> int:
         print(f"twin demo: metrics port {config.metrics.port} unavailable ({exc}); using a free port", file=sys.stderr)
         config.metrics.port = 0
         daemon.start()
+    if daemon.mqtt is not None and not daemon.mqtt.wait_connected(15):
+        print(f"twin demo: {daemon.mqtt.last_error or 'no connection to the MQTT broker'}", file=sys.stderr)
+        daemon.stop()
+        if broker:
+            broker.stop()
+        return 1
     if daemon.metrics is not None:
         print(f"metrics: http://{config.metrics.address}:{daemon.metrics.port}/metrics")
     scenario = simulator.scenario

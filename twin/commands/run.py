@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import logging
 import os
 import signal
 import sys
@@ -17,12 +16,6 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--no-republish", action="store_true", help="do not publish reconciled values on MQTT")
 
 
-def setup_logging(level: str) -> None:
-    """One line per event on stderr: time, level, logger, message (key=value fields)."""
-    logging.basicConfig(level=getattr(logging, level), stream=sys.stderr,
-                        format="%(asctime)s %(levelname)s %(name)s %(message)s")
-
-
 def install_stop_handlers(stop: threading.Event) -> None:
     """SIGTERM and SIGINT set ``stop``; the daemon then shuts down within seconds."""
     def handler(signum: int, frame: object) -> None:
@@ -34,7 +27,9 @@ def install_stop_handlers(stop: threading.Event) -> None:
 
 def run(args: argparse.Namespace) -> int:
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
-    setup_logging(args.log_level)
+    # before anything slow: a SIGTERM during start-up is a clean exit, not a kill
+    stop = threading.Event()
+    install_stop_handlers(stop)
     from twin.config import ConfigError, load_config
 
     try:
@@ -46,15 +41,21 @@ def run(args: argparse.Namespace) -> int:
         print(str(exc), file=sys.stderr)
         return 1
     from twin.daemon import Daemon, DaemonOptions
+    from twin.mqtt import MqttError
 
-    stop = threading.Event()
-    install_stop_handlers(stop)
+    if stop.is_set():
+        return 0
     try:
         daemon = Daemon(config, environ=os.environ,
                         options=DaemonOptions(republish=not args.no_republish))
+        if stop.is_set():
+            return 0
         daemon.start()
-    except (ValueError, OSError) as exc:
+    except (ValueError, OSError, MqttError) as exc:
         print(f"twin run: {args.config}: {exc}", file=sys.stderr)
+        return 1
+    except Exception as exc:  # e.g. the design point does not solve: still one line, no traceback
+        print(f"twin run: {args.config}: cannot start: {type(exc).__name__}: {exc}", file=sys.stderr)
         return 1
     try:
         daemon.run(stop)

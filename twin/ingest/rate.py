@@ -68,27 +68,38 @@ class SampleRateMonitor:
         """Tags whose period is not known yet."""
         return [t for t in self.tags if t not in self.period]
 
-    def learn(self, tag: str, times: np.ndarray, now: float) -> float | None:
-        """Offer a tag's held sample times [s]; returns the period once learned.
+    def learned(self) -> list[str]:
+        """Tags whose period is not configured (learned, or still to learn)."""
+        return [t for t in self.tags if t not in self.configured]
 
-        The period is the median spacing of the distinct sample times seen
-        since the tag's first sample, once ``learn_seconds`` have passed.
+    def learn(self, tag: str, times: np.ndarray, now: float) -> float | None:
+        """Offer a tag's held sample times [s]; returns its period once known.
+
+        First estimate, once ``learn_seconds`` have passed since the tag's
+        first sample: the median spacing ``m`` of the distinct times. Then,
+        and on every later call (refinement), the period is the time span
+        divided by the number of sample intervals on that grid, each spacing
+        counting ``max(1, round(d / m))`` intervals: timing jitter averages
+        out over the span, and a lost sample (a double spacing) does not
+        lengthen the period. Configured periods are never changed.
         """
-        if tag in self.period:
+        if tag in self.configured:
             return self.period[tag]
         if times.size == 0:
-            return None
+            return self.period.get(tag)
         first = self._first_seen.setdefault(tag, float(times.min()))
-        if now - first < self.learn_seconds:
+        if tag not in self.period and now - first < self.learn_seconds:
             return None
-        t = np.unique(times[(times >= first) & (times <= now)])
+        t = np.unique(times[times <= now])
         if t.size < self.min_samples:
-            return None
-        period = float(np.median(np.diff(t)))
-        if not period > 0:
-            return None
-        self.period[tag] = period
-        return period
+            return self.period.get(tag)
+        d = np.diff(t)
+        m = self.period.get(tag) or float(np.median(d))
+        if not m > 0:
+            return self.period.get(tag)
+        intervals = np.maximum(1.0, np.round(d / m)).sum()
+        self.period[tag] = float((t[-1] - t[0]) / intervals)
+        return self.period[tag]
 
     def update(self, seconds: float, counts: Mapping[str, int]) -> None:
         """Account one closed interval of ``seconds`` [s]: samples that arrived per tag."""
