@@ -290,9 +290,10 @@ def wait_for_fixture() -> Callable[..., bool]:
 
 
 # ---------------------------------------------------------------- prometheus ---
-# ``prometheus_factory(targets, rule_files=(), scrape_interval="1s")`` starts a
+# ``prometheus_factory(targets, rule_files=(), scrape_interval="1s", job=None)`` starts a
 # real ``prometheus`` on a free port of 127.0.0.1 with a generated config that
-# scrapes ``targets`` ("host:port") as job "twin" and loads ``rule_files``; it
+# scrapes ``targets`` ("host:port") as job "twin" (``job`` adds keys to that scrape
+# job, e.g. ``{"scheme": "https", "tls_config": {...}}``) and loads ``rule_files``; it
 # returns a :class:`PrometheusServer` once ``/-/ready`` answers. Every server
 # started is stopped by PID at teardown. Skips when the binary is missing.
 
@@ -382,7 +383,10 @@ def prometheus_factory(tmp_path: Path) -> Iterator[PrometheusFactory]:
     servers: list[PrometheusServer] = []
 
     def factory(
-        targets: list[str], rule_files: tuple[Path, ...] = (), scrape_interval: str = "1s"
+        targets: list[str],
+        rule_files: tuple[Path, ...] = (),
+        scrape_interval: str = "1s",
+        job: dict[str, object] | None = None,
     ) -> PrometheusServer:
         n = len(servers)
         port = free_port()
@@ -397,6 +401,8 @@ def prometheus_factory(tmp_path: Path) -> Iterator[PrometheusFactory]:
             "  - job_name: twin",
             "    static_configs:",
             f"      - targets: {json.dumps(list(targets))}",
+            # more keys of the scrape job (e.g. scheme, tls_config), as JSON (valid YAML)
+            *[f"    {key}: {json.dumps(value)}" for key, value in (job or {}).items()],
         ]
         if not rule_files:
             lines[3] = "rule_files: []"

@@ -46,6 +46,7 @@ def test_broker_starts_from_shipped_config(mosquitto_factory, tls_files, tmp_pat
         "/etc/mosquitto/certs/server.crt": str(tls_files.server_cert),
         "/etc/mosquitto/certs/server.key": str(tls_files.server_key),
         "/etc/mosquitto/passwd": str(passwd),
+        "/etc/mosquitto/twin.acl": str(CONF.with_name("twin.acl")),
         "/var/lib/mosquitto/": f"{tmp_path}/",
         "log_dest syslog": "log_dest stdout",
     }.items():
