@@ -29,6 +29,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "run": ("twin.commands.run", "run the live daemon against an MQTT broker"),
     "demo": ("twin.commands.demo", "run the self-contained live demo"),
     "diagram": ("twin.commands.diagram", "draw the cycle on T-s and h-s charts (PNG or SVG)"),
+    "state": ("twin.commands.state", "show or reset the per-unit state file of twin run"),
     "bench": ("twin.commands.bench", "run a benchmark and print JSON figures"),
 }
 

@@ -34,6 +34,7 @@ from twin.monitor import Transition
 from twin.mqtt import ConnectionEvent, MqttClient, MqttSettings, read_secret
 from twin.performance.plant_reconcile import PlantReconciler
 from twin.result import CycleResult, InputStats
+from twin.state import StateError, plant_sha256, read_state, usable, write_state
 from twin.units import rfc3339
 
 log = logging.getLogger("twin.daemon")
@@ -173,6 +174,7 @@ class DaemonOptions:
     metrics: bool = True
     grace_seconds: float = 1.0  # clock seconds to wait after a window ends for late messages
     diagram: bool = True  # serve /diagram.svg beside /metrics (when matplotlib is installed)
+    state: bool = False  # keep the [state] file: restore at start, write every [state] every
 
     def cycle_options(self) -> CycleOptions:
         return CycleOptions(max_eliminations=self.max_eliminations, alpha=self.alpha)
@@ -218,6 +220,13 @@ class Daemon:
         self.cycles_failed = 0
         self._missing_unlogged, self._missing_logged_at = 0, -math.inf
         self.started_at = self.clock.now()
+        # the state file (twin run turns it on; tests and the demo leave it off)
+        st = config.state
+        self.state_path = st.file if self.options.state and st.enabled and st.file is not None else None
+        self._plant_hash = (plant_sha256(config.source_path)
+                            if self.state_path is not None and config.source_path is not None else "")
+        self.state_saved_at = math.nan
+        self.state_write_failures = 0
         self.mqtt_settings = mqtt_settings or mqtt_settings_from_config(config, environ or {})
         self.mqtt: MqttClient | None = None
         # the per-window pipeline (model, reconciliation, monitors)
@@ -270,8 +279,63 @@ class Daemon:
             tag_last_time=self.store.latest_times(), overwritten=self.store.overwritten(),
             samples_missing=dict(self.rates.missing), sample_period=dict(self.rates.period),
             windows_skipped=self.windows_skipped, cycles_failed=self.cycles_failed,
-            cycle_period=self.cycle_seconds,
+            cycle_period=self.cycle_seconds, state_saved_time=self.state_saved_at,
+            state_write_failures=self.state_write_failures,
         )
+
+    # ------------------------------------------------------------------ state file
+    def state_parts(self) -> dict[str, Any]:
+        """What the state file holds: the pipeline's snapshot and the ingest's sample-rate totals."""
+        return {"cycle": self.cycle.snapshot(), "ingest": {"sample_rates": self.rates.snapshot()}}
+
+    def restore_state(self) -> bool:
+        """Resume from the state file when it is usable; one log line either way. True if restored."""
+        path = self.state_path
+        if path is None:
+            return False
+        try:
+            saved = read_state(path)
+        except FileNotFoundError:
+            log_event(logging.INFO, "state_fresh", file=str(path), reason="no state file yet")
+            return False
+        except StateError as exc:
+            log_event(logging.WARNING, "state_not_restored", file=str(path), reason=str(exc))
+            return False
+        why = usable(saved, unit_id=self.config.unit.id, plant_hash=self._plant_hash, now=self.clock.now(),
+                     max_age=float(self.config.state.max_age))
+        if why is not None:
+            log_event(logging.WARNING, "state_not_restored", file=str(path), reason=f"starting fresh: {why}")
+            return False
+        try:
+            self.cycle.restore(saved.parts["cycle"])
+            self.rates.restore(saved.parts.get("ingest", {}).get("sample_rates", {}))
+        except (KeyError, TypeError, ValueError, AttributeError) as exc:
+            log_event(logging.WARNING, "state_not_restored", file=str(path),
+                      reason=f"starting fresh: unusable content ({type(exc).__name__}: {exc})")
+            self.cycle = UnitCycle(self.config, reconciler=self.reconciler, options=self.options.cycle_options())
+            return False
+        log_event(logging.INFO, "state_restored", file=str(path), saved_at=saved.saved_at,
+                  age_s=saved.age(self.clock.now()))
+        return True
+
+    def save_state(self, force: bool = False) -> None:
+        """Write the state file if due (every ``[state] every`` clock seconds) or ``force``."""
+        path = self.state_path
+        if path is None or self.config.source_path is None:
+            return
+        now = self.clock.now()
+        if not force and math.isfinite(self.state_saved_at) and now - self.state_saved_at < float(
+                self.config.state.every):
+            return
+        try:
+            write_state(path, self.state_parts(), unit_id=self.config.unit.id,
+                        plant_file=str(self.config.source_path), plant_hash=self._plant_hash, now=now)
+        except StateError as exc:
+            self.state_write_failures += 1
+            if self.state_write_failures == 1 or self.state_write_failures % 100 == 0:
+                log_event(logging.ERROR, "state_write_failed", error=str(exc), failures=self.state_write_failures)
+            return
+        self.state_saved_at = now
 
     def _on_connection(self, ev: ConnectionEvent) -> None:
         """One log line per change of the broker connection's state."""
@@ -285,7 +349,8 @@ class Daemon:
                       tls=self.mqtt_settings.uses_tls)
 
     def start(self) -> None:
-        """Connect to the broker and start the metrics endpoint."""
+        """Restore the state file, connect to the broker and start the metrics endpoint."""
+        self.restore_state()
         for text in exposure_warnings(self.config, self.mqtt_settings):
             log_event(logging.WARNING, "exposure", text=text)
         if self.options.metrics and self.metrics is None:
@@ -309,6 +374,8 @@ class Daemon:
     def stop(self) -> None:
         """Stop the loop, the MQTT client and the metrics endpoint (returns within seconds)."""
         self._stop.set()
+        if self.state_path is not None and self.latest is not None:
+            self.save_state(force=True)
         if self.mqtt is not None:
             self.mqtt.stop()
         if self.metrics is not None:
@@ -337,6 +404,7 @@ class Daemon:
                 log_event(logging.ERROR, "cycle_failed", window_end=next_t, error=f"{type(exc).__name__}: {exc}")
                 log.debug("cycle failed", exc_info=True)
             else:
+                self.save_state()
                 if on_result is not None:
                     on_result(result)
             next_t += self.cycle_seconds

@@ -101,6 +101,10 @@ class Health:
         Windows never closed because the daemon fell behind; cycles that raised.
     cycle_period : float
         Configured cycle [s].
+    state_saved_time : float
+        When the state file was last written [s since the epoch]; NaN if never.
+    state_write_failures : int
+        Failed writes of the state file since start.
     """
 
     unit_id: str
@@ -123,6 +127,8 @@ class Health:
     windows_skipped: int = 0
     cycles_failed: int = 0
     cycle_period: float = math.nan
+    state_saved_time: float = math.nan
+    state_write_failures: int = 0
 
 
 HealthProvider = Callable[[], Health]
@@ -417,6 +423,9 @@ def health_families(h: Health) -> list[Metric]:
               h.windows_skipped)
     f.counter("twin_cycles_failed", "Monitoring cycles that failed with an error, since start", h.cycles_failed)
     f.gauge("twin_cycle_period_seconds", "Configured monitoring cycle (one window closes per cycle)", h.cycle_period)
+    f.gauge("twin_state_saved_timestamp_seconds", "When the state file was last written, Unix time",
+            h.state_saved_time)
+    f.counter("twin_state_write_failures", "Failed writes of the state file since start", h.state_write_failures)
     return list(f.families.values())
 
 

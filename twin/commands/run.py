@@ -14,6 +14,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--log-level", default="INFO", choices=("DEBUG", "INFO", "WARNING", "ERROR"),
                         help="log level (default INFO)")
     parser.add_argument("--no-republish", action="store_true", help="do not publish reconciled values on MQTT")
+    parser.add_argument("--no-state", action="store_true",
+                        help="neither restore nor write the [state] file (start fresh, keep nothing)")
 
 
 def install_stop_handlers(stop: threading.Event) -> None:
@@ -47,7 +49,8 @@ def run(args: argparse.Namespace) -> int:
         return 0
     try:
         daemon = Daemon(config, environ=os.environ,
-                        options=DaemonOptions(republish=not args.no_republish))
+                        options=DaemonOptions(republish=not args.no_republish,
+                                              state=not args.no_state))
         if stop.is_set():
             return 0
         daemon.start()

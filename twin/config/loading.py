@@ -53,6 +53,8 @@ def load_config(path: str | Path) -> PlantConfig:
             if getattr(tls, key, None) is not None:
                 setattr(tls, key, base / getattr(tls, key))
                 files.append((f"{section}.{key}", getattr(tls, key)))
+    st = cfg.state
+    st.file = base / (st.file if st.file is not None else f"{cfg.unit.id}.state.json")
     problems = [f"{path}: {key}: {why}; expected a readable file"
                 for key, file in files if (why := unreadable(file)) is not None]
     if problems:

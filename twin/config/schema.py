@@ -275,6 +275,15 @@ class MetricsConfig(_Model):
     tls: MetricsTlsConfig | None = None
 
 
+class StateConfig(_Model):
+    """``[state]``: the per-unit state file that lets a restart resume drift charts and alarms."""
+
+    enabled: bool = True
+    file: Path | None = Field(default=None, description='default "<unit id>.state.json" beside the plant file')
+    every: Delay = Field(default=60.0, description="write interval; 0 s = after every cycle")
+    max_age: Duration = Field(default=6 * 3600.0, description="an older state file is not restored")
+
+
 class DriftConfig(_Model):
     """``[monitoring.drift]``: EWMA and tabular CUSUM on KPIs (Montgomery)."""
 
@@ -341,6 +350,7 @@ class PlantConfig(_Model):
     sensors: list[SensorConfig] = Field(default_factory=list)
     broker: BrokerConfig = Field(default_factory=BrokerConfig)
     metrics: MetricsConfig = Field(default_factory=MetricsConfig)
+    state: StateConfig = Field(default_factory=StateConfig)
     monitoring: MonitoringConfig = Field(default_factory=MonitoringConfig)
     _source_path: Path | None = PrivateAttr(default=None)
 
