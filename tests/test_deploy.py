@@ -64,7 +64,8 @@ def full_health() -> Health:
                   last_failure_reason="unreachable", last_failure_time=1.7e9 - 100.0,
                   last_message_time=1.7e9 - 0.5, messages=10, rejected={"too_old": 1},
                   tag_last_time=tags, overwritten=dict.fromkeys(tags, 0), samples_missing=dict.fromkeys(tags, 3),
-                  sample_period=dict.fromkeys(tags, 1.0), cycle_period=10.0)
+                  sample_period=dict.fromkeys(tags, 1.0), cycle_period=10.0,
+                  state_saved_time=1.7e9 - 30.0)
 
 
 def exported_names() -> set[str]:
