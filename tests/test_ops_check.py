@@ -85,3 +85,25 @@ def test_a_directory_is_not_a_file(tmp_path: Path, capsys: pytest.CaptureFixture
                            f'host = "127.0.0.1"\ntls = {{ ca_file = "{tmp_path}" }}\n')
     rc, err = _check(tmp_path, text, capsys)
     assert rc == 1 and "broker.tls.ca_file" in err[0] and "is a directory" in err[0]
+
+
+def test_empty_values_file_is_one_line_and_exit_1(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    empty = tmp_path / "values.csv"
+    empty.write_text("")
+    assert main(["reconcile", str(DEMO), str(empty)]) == 1
+    err = capsys.readouterr().err.splitlines()
+    assert len(err) == 1 and str(empty) in err[0] and "no tag values" in err[0]
+
+
+def test_unreadable_values_lines_are_named_and_exit_1(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from twin.config import load_config
+
+    lines = (DEMO.parent / "demo-u1-values.csv").read_text(encoding="utf-8").splitlines()
+    row = next(i for i, ln in enumerate(lines) if ln.startswith("HP-MS-P1,"))
+    lines[row] = "HP-MS-P1,1_000"  # a digit separator: float() would take it, the strict reader does not
+    bad = tmp_path / "values.csv"
+    bad.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    assert main(["reconcile", str(DEMO), str(bad)]) == 1
+    unit = load_config(DEMO).sensors_by_tag["HP-MS-P1"].unit
+    err = capsys.readouterr().err.splitlines()
+    assert err == [f"{bad}:{row + 1}: tag 'HP-MS-P1' value '1_000' is not a number; expected a number in {unit}"]

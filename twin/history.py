@@ -18,6 +18,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from twin.units import strict_float
+
 
 @dataclass
 class ValuesFile:
@@ -88,7 +90,11 @@ def read_values_file(path: str | Path, config: Any) -> ValuesFile:
     out = ValuesFile()
     sensors = {s.tag: s for s in config.sensors}
     parsed: dict[str, float] = {}
-    for line, tag, raw in _entries(path):
+    entries = _entries(path)
+    if not entries:
+        raise ValueError(f"{path}: no tag values; expected a CSV header 'tag,value' and one row per tag, "
+                         "or a JSON object {tag: value}")
+    for line, tag, raw in entries:
         where = f"{path}:{line}" if line else str(path)
         if tag not in sensors:
             out.errors.append(f"{where}: unknown tag {tag!r}; expected a sensor tag of unit {config.unit.id!r}")
@@ -97,7 +103,7 @@ def read_values_file(path: str | Path, config: Any) -> ValuesFile:
             out.errors.append(f"{where}: tag {tag!r} has no value; expected a number")
             continue
         try:
-            value = float(raw)
+            value = strict_float(raw) if isinstance(raw, str) else float(raw)
         except (TypeError, ValueError):
             out.errors.append(f"{where}: tag {tag!r} value {raw!r} is not a number; expected a number in {sensors[tag].unit}")
             continue

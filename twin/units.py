@@ -265,3 +265,21 @@ def rfc3339(t: float) -> str:
         return datetime.fromtimestamp(t, UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
     except (ValueError, OverflowError, OSError, TypeError):
         return repr(t)
+
+
+# A number as text, strictly (Python's float() also takes blanks, "_" and "infinity" spellings).
+_NUMBER_TEXT = r"[+-]?(?:(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|(?i:nan|inf|infinity))"
+_NUMBER_BYTES = re.compile(_NUMBER_TEXT.encode()).fullmatch
+_NUMBER_STR = re.compile(_NUMBER_TEXT, re.ASCII).fullmatch
+
+
+def strict_float(text: str | bytes) -> float:
+    """Parse a number written as text, strictly; ``ValueError`` otherwise.
+
+    >>> strict_float(b"-1.5e3")
+    -1500.0
+    """
+    ok = _NUMBER_BYTES(text) if isinstance(text, bytes) else _NUMBER_STR(text)
+    if ok is None:
+        raise ValueError(f"not a plain number: {text[:32]!r}")
+    return float(text)

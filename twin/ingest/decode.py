@@ -43,12 +43,13 @@ from __future__ import annotations
 
 import json
 import math
-import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
 from json.scanner import make_scanner
 from typing import Any, NamedTuple
+
+from twin.units import strict_float
 
 REJECT_REASONS: tuple[str, ...] = (
     "unknown_topic",  # no binding for the topic
@@ -74,22 +75,6 @@ DEFAULT_MAX_PAYLOAD_BYTES = 64 * 1024
 # Accepted time range after conversion to epoch seconds: 1970 .. year 5138.
 _MAX_EPOCH_S = 1e11
 
-# A number as text, strictly (Python's float() also takes blanks, "_" and "infinity" spellings).
-_NUMBER_TEXT = r"[+-]?(?:(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?|(?i:nan|inf|infinity))"
-_NUMBER_BYTES = re.compile(_NUMBER_TEXT.encode()).fullmatch
-_NUMBER_STR = re.compile(_NUMBER_TEXT, re.ASCII).fullmatch
-
-
-def strict_float(text: str | bytes) -> float:
-    """Parse a number written as text, strictly; ``ValueError`` otherwise.
-
-    >>> strict_float(b"-1.5e3")
-    -1500.0
-    """
-    ok = _NUMBER_BYTES(text) if isinstance(text, bytes) else _NUMBER_STR(text)
-    if ok is None:
-        raise ValueError(f"not a plain number: {text[:32]!r}")
-    return float(text)
 
 
 class Sample(NamedTuple):
