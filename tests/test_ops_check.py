@@ -107,3 +107,28 @@ def test_unreadable_values_lines_are_named_and_exit_1(tmp_path: Path, capsys: py
     unit = load_config(DEMO).sensors_by_tag["HP-MS-P1"].unit
     err = capsys.readouterr().err.splitlines()
     assert err == [f"{bad}:{row + 1}: tag 'HP-MS-P1' value '1_000' is not a number; expected a number in {unit}"]
+
+
+@pytest.mark.parametrize(("old", "new", "key"), [
+    ('cycle = "10 s"', "cycle = 10", "monitoring.cycle"),
+    ('keepalive = "60 s"', "keepalive = 60", "broker.keepalive"),
+    ('keepalive = "60 s"', 'keepalive = "60"', "broker.keepalive"),  # a number in a string, still no unit
+])
+def test_bare_numbers_on_dimensional_keys_are_refused_with_the_key_and_an_example(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str], old: str, new: str, key: str) -> None:
+    text = DEMO.read_text(encoding="utf-8")
+    assert old in text
+    rc, err = _check(tmp_path, text.replace(old, new, 1), capsys)
+    assert rc == 1 and len(err) == 1, err
+    assert f": {key}: " in err[0] and "has no unit" in err[0] and "'30 s'" in err[0]
+
+
+def test_a_bare_pressure_in_stream_design_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import re
+
+    text = DEMO.read_text(encoding="utf-8")
+    m = re.search(r'pressure = "([0-9.]+) MPa"', text)
+    assert m
+    rc, err = _check(tmp_path, text.replace(m.group(0), f"pressure = {m.group(1)}", 1), capsys)
+    assert rc == 1 and len(err) == 1, err
+    assert "no unit" in err[0] and "'16.2 MPa'" in err[0] and ".design.pressure" in err[0]

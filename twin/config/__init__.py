@@ -10,8 +10,9 @@ as one :class:`ConfigError`, one line per problem::
 Shapes and types are checked first; the cross-reference checks (ports against
 kinds, stream connectivity, sensor targets, ...) run once those pass.
 
-A quantity is a number (taken as SI) or a string with a unit (``"16.2 MPa"``,
-``"541 degC"``, ``"295 kg/s"``, ``"30 s"``), see :mod:`twin.units`.
+A quantity is a string with a unit (``"16.2 MPa"``, ``"541 degC"``, ``"295 kg/s"``,
+``"30 s"``), see :mod:`twin.units`; a bare number is refused on every dimensional key
+(it was once taken as SI: ``pressure = 16.2`` meant 16.2 Pa). Ratios may be bare numbers.
 
 The package: :mod:`twin.config.types` (errors, quantity types),
 :mod:`twin.config.schema` (the sections), :mod:`twin.config.checks`

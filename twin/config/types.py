@@ -1,4 +1,4 @@
-"""Plant-file value types: errors and quantities with units (a number in SI or ``"16.2 MPa"``)."""
+"""Plant-file value types: errors and quantities with units (``"16.2 MPa"``; bare numbers only for ratios)."""
 
 from __future__ import annotations
 
@@ -28,18 +28,32 @@ class _Problems(ValueError):
 
 
 def _to_si(value: Any, dimension: str, barometric: float | None = None) -> float:
-    """A config value (number = SI, or ``"<number> <unit>"``) to SI; ValueError if wrong."""
+    """A config value ``"<number> <unit>"`` to SI; ValueError if wrong.
+
+    A number without a unit is refused on every dimensional key (a bare
+    ``pressure = 16.2`` would otherwise be taken as 16.2 Pa); only ratios
+    (dimensionless) may be bare numbers.
+    """
     if isinstance(value, bool) or not isinstance(value, int | float | str):
         raise ValueError(
             f"wrong type {type(value).__name__} ({value!r}); "
-            f"expected a number or a {dimension} string such as {_EXAMPLE[dimension]!r}"
+            f"expected a {dimension} string such as {_EXAMPLE[dimension]!r}"
         )
     if isinstance(value, str):
         number, unit = split_quantity(value)
+        if unit == "" and dimension not in DIMENSIONLESS:
+            raise ValueError(f"{value!r} has no unit; expected a {dimension} with its unit such as "
+                             f"{_EXAMPLE[dimension]!r}")
         if unit == "":
             return number
         return float(conversion(unit, dimension, barometric_pressure=barometric).to_si(number))
+    if dimension not in DIMENSIONLESS:
+        raise ValueError(f"bare number {value!r} has no unit; expected a {dimension} with its unit such as "
+                         f"{_EXAMPLE[dimension]!r}")
     return float(value)
+
+
+DIMENSIONLESS = frozenset({"ratio"})
 
 
 _EXAMPLE = {
@@ -69,9 +83,14 @@ def _si(dimension: str, minimum: float | None = None) -> BeforeValidator:
 
 
 def _doc(dimension: str) -> WithJsonSchema:
+    if dimension in DIMENSIONLESS:
+        return WithJsonSchema({
+            "anyOf": [{"type": "number"}, {"type": "string"}],
+            "description": f"{dimension}: a number or a string with a unit, e.g. {_EXAMPLE[dimension]!r}",
+        })
     return WithJsonSchema({
-        "anyOf": [{"type": "number"}, {"type": "string"}],
-        "description": f"{dimension}: a number in SI or a string with a unit, e.g. {_EXAMPLE[dimension]!r}",
+        "type": "string",
+        "description": f"{dimension}: a number with its unit, e.g. {_EXAMPLE[dimension]!r} (a bare number is refused)",
     })
 
 
