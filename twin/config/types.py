@@ -37,7 +37,8 @@ def _to_si(value: Any, dimension: str, barometric: float | None = None) -> float
     if isinstance(value, bool) or not isinstance(value, int | float | str):
         raise ValueError(
             f"wrong type {type(value).__name__} ({value!r}); "
-            f"expected a {dimension} string such as {_EXAMPLE[dimension]!r}"
+            f"expected {'a number or ' if dimension in DIMENSIONLESS else ''}a {dimension} string such as "
+            f"{_EXAMPLE[dimension]!r}"
         )
     if isinstance(value, str):
         number, unit = split_quantity(value)
