@@ -28,7 +28,7 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
     ("L9 commands", ("twin.cli", "twin.commands.*", "twin.bench.*")),
     ("L8 orchestrators", ("twin.daemon", "twin.backfill", "twin.demo.*")),
     ("L7b cycle", ("twin.cycle",)),
-    ("L7 adapters", ("twin.mqtt", "twin.metrics", "twin.history", "twin.ingest.*", "twin.diagram", "twin.state")),
+    ("L7 adapters", ("twin.mqtt", "twin.metrics", "twin.history.*", "twin.ingest.*", "twin.diagram", "twin.state")),
     ("L6 monitor", ("twin.monitor.*",)),
     ("L5 performance", ("twin.performance.*",)),
     ("L4 reconcile", ("twin.reconcile.*",)),
@@ -55,6 +55,9 @@ GATEWAYS: dict[str, str] = {
     "pydantic": "twin.config.*",
     "amqtt": "twin.demo._broker_main",
     "matplotlib": "twin.diagram",
+    "pyarrow": "twin.history.*",
+    "distributed": "twin.backfill",
+    "dask": "twin.backfill",
 }
 
 

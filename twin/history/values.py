@@ -1,4 +1,4 @@
-"""Files of tag values: one-shot value files (``twin reconcile``).
+"""One-window value files (``twin reconcile``).
 
 A values file holds one window of tag values in the engineering units of the
 plant configuration: CSV with a ``tag,value`` header (one tag per line) or a
@@ -60,7 +60,7 @@ def _entries(path: Path) -> list[tuple[int, str, Any]]:
                     lines[key] = i
         return [(lines.get(k, 0), str(k), v) for k, v in doc.items()]
     rows = list(csv.reader(text.splitlines()))
-    out = []
+    out: list[tuple[int, str, Any]] = []
     header_seen = False
     for i, row in enumerate(rows, 1):
         if not row or not "".join(row).strip() or row[0].strip().startswith("#"):
