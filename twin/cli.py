@@ -30,6 +30,8 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "demo": ("twin.commands.demo", "run the self-contained live demo"),
     "diagram": ("twin.commands.diagram", "draw the cycle on T-s and h-s charts (PNG or SVG)"),
     "state": ("twin.commands.state", "show or reset the per-unit state file of twin run"),
+    "simulate": ("twin.commands.simulate", "write the demo scenario as a historian export"),
+    "backfill": ("twin.commands.backfill", "back-fill a historian span: reconciled series, events, OpenMetrics"),
     "bench": ("twin.commands.bench", "run a benchmark and print JSON figures"),
 }
 
