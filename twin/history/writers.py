@@ -123,3 +123,29 @@ STRING = pa.string()
 FLOAT = pa.float64()
 INT = pa.int64()
 BOOL = pa.bool_()
+
+
+_KINDS = {"timestamp": pa.timestamp("us", tz="UTC"), "string": STRING, "float": FLOAT, "bool": BOOL, "int": INT}
+
+
+def csv_to_parquet(src: str | Path, dst: str | Path, columns: Sequence[tuple[str, str]],
+                   block_size: int = 16 << 20) -> Path:
+    """Stream a CSV with a header into Parquet with the given column kinds; atomic rename.
+
+    ``columns`` are ``(name, kind)`` with kind ``timestamp`` (RFC 3339 text),
+    ``string``, ``float``, ``bool`` or ``int``; an empty cell is null.
+    """
+    schema = pa.schema([(n, _KINDS[k]) for n, k in columns])
+    reader = pcsv.open_csv(
+        str(src), read_options=pcsv.ReadOptions(block_size=block_size),
+        convert_options=pcsv.ConvertOptions(column_types={n: t for n, t in zip(schema.names, schema.types, strict=True)},
+                                            true_values=["true"], false_values=["false"]),
+    )
+    dst = Path(dst)
+    tmp = dst.with_name(dst.name + ".part")
+    with pq.ParquetWriter(str(tmp), schema, compression="zstd") as w:
+        for batch in reader:
+            w.write_batch(pa.record_batch([batch.column(n).cast(schema.field(n).type) for n in schema.names],
+                                          schema=schema))
+    os.replace(tmp, dst)
+    return dst
