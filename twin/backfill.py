@@ -148,14 +148,35 @@ def make_plan(t_from: float, t_to: float, cycle: float, window: float, chunk_win
 
 
 # ----------------------------------------------------------------------------- window statistics
+def _stats(tg: np.ndarray, vg: np.ndarray, tb: np.ndarray, t_end: float, width: float, held_from: float,
+           max_age: float) -> WindowStats:
+    """:meth:`twin.ingest.store.TagStore.window` of one tag over ``[t_end - width, t_end)`` on sorted arrays."""
+    hi = int(np.searchsorted(tg, t_end, "left"))
+    lo = int(np.searchsorted(tg, t_end - width, "left"))
+    held = hi > 0 and tg[hi - 1] >= held_from
+    n_bad = int(np.searchsorted(tb, t_end, "left") - np.searchsorted(tb, t_end - width, "left"))
+    count = hi - lo
+    last_time = float(tg[hi - 1]) if held else math.nan
+    age = t_end - last_time if held else math.inf
+    if count:
+        x = vg[lo:hi]
+        mean, mn, mx = float(x.mean()), float(x.min()), float(x.max())
+        std = float(x.std(ddof=1)) if count > 1 else math.nan
+    else:
+        mean = std = mn = mx = math.nan
+    return WindowStats(mean, std, count, n_bad, last_time, age, mn, mx, age > max_age)
+
+
 def window_inputs(samples: Samples, tags: Sequence[str], ends: np.ndarray, window: float, cycle: float,
-                  max_age: Sequence[float], gate_tags: Sequence[str], lookback: float) -> list[tuple[float, dict[str, WindowStats], dict[str, float]]]:
-    """Per window end: (t_end, stats by tag, gate means), as the live tag store computes them.
+                  max_age: Sequence[float], gate_tags: Sequence[str],
+                  lookback: float) -> list[tuple[float, dict[str, WindowStats], dict[str, WindowStats]]]:
+    """Per window end: (t_end, stats by tag, gate stats), as the daemon computes them from its tag store.
 
     ``stats`` follow :meth:`twin.ingest.store.TagStore.window` over
-    ``[t_end - window, t_end)``; a sample is "held" for staleness when it is
-    at most ``lookback`` seconds before the window start (the live ring holds
-    the newest samples). Gate means are over ``[t_end - cycle, t_end)``.
+    ``[t_end - window, t_end)``; the gate statistics are over the last cycle
+    ``[t_end - cycle, t_end)`` (the steady-state key signals only). A sample
+    counts as held for staleness when it is at most ``lookback`` seconds
+    before the window start (the live ring holds the newest samples).
     """
     order = np.lexsort((samples.t, samples.tag))
     tag_sorted = samples.tag[order]
@@ -165,31 +186,13 @@ def window_inputs(samples: Samples, tags: Sequence[str], ends: np.ndarray, windo
         sl = order[bounds[i]:bounds[i + 1]]
         t, v, ok = samples.t[sl], samples.value[sl], samples.ok[sl]
         per_tag.append((t[ok], v[ok], t[~ok]))
-    gate_idx = {tags.index(g) for g in gate_tags if g in tags}
+    gate_idx = [(tags.index(g), g) for g in gate_tags if g in tags]
     out = []
     for t_end in ends:
         t_end = float(t_end)
-        stats: dict[str, WindowStats] = {}
-        gate: dict[str, float] = {}
-        for i, tag in enumerate(tags):
-            tg, vg, tb = per_tag[i]
-            hi = int(np.searchsorted(tg, t_end, "left"))
-            lo = int(np.searchsorted(tg, t_end - window, "left"))
-            held = hi > 0 and tg[hi - 1] >= t_end - window - lookback
-            n_bad = int(np.searchsorted(tb, t_end, "left") - np.searchsorted(tb, t_end - window, "left"))
-            count = hi - lo
-            last_time = float(tg[hi - 1]) if held else math.nan
-            age = t_end - last_time if held else math.inf
-            if count:
-                x = vg[lo:hi]
-                mean, mn, mx = float(x.mean()), float(x.min()), float(x.max())
-                std = float(x.std(ddof=1)) if count > 1 else math.nan
-            else:
-                mean = std = mn = mx = math.nan
-            stats[tag] = WindowStats(mean, std, count, n_bad, last_time, age, mn, mx, age > max_age[i])
-            if i in gate_idx:
-                g0 = int(np.searchsorted(tg, t_end - cycle, "left"))
-                gate[tag] = float(vg[g0:hi].mean()) if hi > g0 else math.nan
+        held_from = t_end - window - lookback
+        stats = {tag: _stats(*per_tag[i], t_end, window, held_from, max_age[i]) for i, tag in enumerate(tags)}
+        gate = {tag: _stats(*per_tag[i], t_end, cycle, held_from, max_age[i]) for i, tag in gate_idx}
         out.append((t_end, stats, gate))
     return out
 
@@ -239,9 +242,9 @@ def event_row(tr: Any) -> str:
 _WORKER: dict[str, Any] = {}
 
 
-def _cycle_for(config_path: str) -> tuple[Any, Any, dict[str, Any], dict[str, str]]:
-    """(config, UnitCycle, its fresh snapshot, KPI units), built once per process."""
-    key = config_path
+def _cycle_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, Any], dict[str, str]]:
+    """(config, UnitCycle, its fresh snapshot, KPI units), built once per process and grid."""
+    key = f"{config_path}|{cycle!r}|{window!r}"
     if key not in _WORKER:
         os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
         from twin.config import load_config
@@ -249,6 +252,7 @@ def _cycle_for(config_path: str) -> tuple[Any, Any, dict[str, Any], dict[str, st
         from twin.performance.plant_reconcile import PlantReconciler
 
         config = load_config(config_path)
+        config.monitoring.cycle, config.monitoring.window = cycle, window
         # no wall-clock time budget: the result must not depend on the machine's load
         reconciler = PlantReconciler(config, time_budget=math.inf)
         cyc = UnitCycle(config, reconciler=reconciler)
@@ -275,9 +279,13 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
     """
     from twin.cycle import WindowInput
 
-    config, cyc, fresh, units = _cycle_for(spec.config_path)
+    config, cyc, fresh, units = _cycle_for(spec.config_path, spec.cycle, spec.window)
     cyc.restore(fresh)
     cyc.reconciler.reset()
+    if cyc.steady is not None and not hasattr(cyc.steady, "snapshot"):
+        cyc.steady.reset()  # not in the snapshot yet: start it afresh by hand
+    if not hasattr(cyc.drift, "snapshot"):
+        cyc.drift.reset()
     samples = load_spool(spec.spool)
     tags = [s.tag for s in config.sensors]
     max_age = [float(s.max_age) for s in config.sensors]
@@ -298,7 +306,7 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
         for k, (t_end, stats, gate) in enumerate(inputs):
             warm = k < spec.warmup
             msgs = spec.messages_before + int(np.searchsorted(sample_t, t_end, "left")) - base_index
-            out = cyc.run(WindowInput(t_end=t_end, window_seconds=spec.window, stats=stats, gate_means=gate,
+            out = cyc.run(WindowInput(t_end=t_end, window_seconds=spec.window, stats=stats, gate_stats=gate,
                                       inputs=InputStats(messages=max(msgs, 0), rejected=rejected)))
             if warm:
                 continue
