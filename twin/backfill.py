@@ -141,7 +141,7 @@ def make_plan(t_from: float, t_to: float, cycle: float, window: float, chunk_win
         raise BackfillError("chunk must hold at least one window and the warm-up may not be negative")
     first = math.ceil((t_from + window) / cycle) * cycle
     last = math.floor(t_to / cycle) * cycle
-    count = int(round((last - first) / cycle)) + 1 if last >= first else 0
+    count = round((last - first) / cycle) + 1 if last >= first else 0
     if count <= 0:
         raise BackfillError(f"the range holds no whole {window:g} s window on the {cycle:g} s grid")
     return Plan(t_from, t_to, cycle, window, (first, last, count), chunk_windows, warmup)
@@ -490,8 +490,8 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
         from twin.config import load_config
 
         config = load_config(config_path)
-    histories = [Path(p) for p in histories]
-    for p in histories:
+    paths = [Path(p) for p in histories]
+    for p in paths:
         if not p.exists():
             raise FileNotFoundError(str(p))
     bad = [f for f in opts.formats if f not in FORMATS]
@@ -511,7 +511,7 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
     if t_from is None or t_to is None:  # the span of the data
         probe = HistoryReader(config, **reader_kw)
         lo, hi = math.inf, -math.inf
-        for p in histories:
+        for p in paths:
             for b in probe.read(p):
                 lo, hi = min(lo, float(b.t.min())), max(hi, float(b.t.max()))
         if not math.isfinite(lo):
@@ -521,10 +521,10 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
     lookback = max(float(s.max_age) for s in config.sensors if math.isfinite(float(s.max_age))) if any(
         math.isfinite(float(s.max_age)) for s in config.sensors) else window
     lookback = min(max(lookback, cycle), 3600.0)
-    chunk_windows = max(1, int(round(opts.chunk_seconds / cycle)))
-    warmup = int(round(opts.warmup_seconds / cycle))
+    chunk_windows = max(1, round(opts.chunk_seconds / cycle))
+    warmup = round(opts.warmup_seconds / cycle)
     plan = make_plan(t_from, t_to, cycle, window, chunk_windows, warmup)
-    key = _input_key(config_path, histories, plan, opts)
+    key = _input_key(config_path, paths, plan, opts)
     manifest_path = out / "manifest.json"
     manifest: dict[str, Any] = {"version": MANIFEST_VERSION, "key": key, "chunks": {}, "spooled": False}
     if manifest_path.exists():
@@ -547,9 +547,9 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
     if manifest.get("spooled"):
         before, summary = manifest["before"], BackfillSummary(**manifest["read"])
     else:
-        echo(f"reading {len(histories)} file(s) for {plan.ends[2]} windows "
+        echo(f"reading {len(paths)} file(s) for {plan.ends[2]} windows "
              f"({rfc3339(plan.ends[0])} .. {rfc3339(plan.ends[1])}, {cycle:g} s cycle, {window:g} s window)")
-        before, summary = _spool(reader, histories, proto, plan.t_from, plan.t_to, spool_dir)
+        before, summary = _spool(reader, paths, proto, plan.t_from, plan.t_to, spool_dir)
         for rep in reader.reports.values():
             echo(rep.summary())
             for line in rep.errors:

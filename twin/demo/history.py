@@ -43,7 +43,7 @@ def _stamp(epoch_s: float, kind: str) -> Any:
         return float(round(epoch_s * 1000.0))
     if kind == "epoch_s":
         return round(epoch_s, 3)
-    ms = int(round(epoch_s * 1000.0))
+    ms = round(epoch_s * 1000.0)
     return str(np.datetime64(ms, "ms")) + "Z"
 
 
@@ -85,7 +85,7 @@ def write_history(config: Any, out: str | Path, *, hours: float, start: float, s
     sim = Simulator(config, client=None, start_time=start, rng_seed=seed, sample_interval=sample_interval,
                     model_interval=model_interval)
     tags = [s.tag for s in config.sensors]
-    steps = int(math.floor(hours * 3600.0 / sample_interval + 1e-9))
+    steps = math.floor(hours * 3600.0 / sample_interval + 1e-9)
     tcol = STRING if timestamps == "rfc3339" else FLOAT
     if layout == "long":
         schema = [("timestamp", tcol), ("tag", STRING), ("value", FLOAT), ("quality", STRING)]

@@ -189,7 +189,16 @@ class HistoryReader:
     # ------------------------------------------------------------------ CSV
     def _csv(self, path: Path, rep: FileReport) -> Iterator[Samples]:
         stream = pa.input_stream(str(path), compression="gzip" if path.name.lower().endswith(".gz") else None)
-        reader = pcsv.open_csv(
+        try:
+            reader = self._open_csv(stream)
+        except pa.ArrowInvalid as exc:
+            if "Empty CSV file" in str(exc):
+                raise HistoryError(f"{path}: empty file; expected a header line {_LONG_EXPECT} or timestamp,<TAG>,...") from None
+            raise
+        yield from self._csv_lines(path, reader, rep)
+
+    def _open_csv(self, stream: Any) -> Any:
+        return pcsv.open_csv(
             stream,
             read_options=pcsv.ReadOptions(block_size=self.block_size, autogenerate_column_names=True),
             parse_options=pcsv.ParseOptions(delimiter="\x01", quote_char=False, escape_char=False,
@@ -197,6 +206,8 @@ class HistoryReader:
             convert_options=pcsv.ConvertOptions(column_types={"f0": pa.string()}, strings_can_be_null=False,
                                                 quoted_strings_can_be_null=False),
         )
+
+    def _csv_lines(self, path: Path, reader: Any, rep: FileReport) -> Iterator[Samples]:
         header: list[str] | None = None
         line0 = 1  # file line of the first row of the next batch
         layout: _Layout | None = None
