@@ -387,6 +387,8 @@ def prometheus_factory(tmp_path: Path) -> Iterator[PrometheusFactory]:
         rule_files: tuple[Path, ...] = (),
         scrape_interval: str = "1s",
         job: dict[str, object] | None = None,
+        storage: Path | None = None,
+        extra_args: tuple[str, ...] = (),
     ) -> PrometheusServer:
         n = len(servers)
         port = free_port()
@@ -410,9 +412,10 @@ def prometheus_factory(tmp_path: Path) -> Iterator[PrometheusFactory]:
         args = [
             PROMETHEUS,
             f"--config.file={conf}",
-            f"--storage.tsdb.path={tmp_path / f'prometheus{n}-data'}",
+            f"--storage.tsdb.path={storage or tmp_path / f'prometheus{n}-data'}",
             f"--web.listen-address={PrometheusServer.host}:{port}",
             "--log.level=warn",
+            *extra_args,
         ]
         server = PrometheusServer(args, port, tmp_path / f"prometheus{n}.log")
         servers.append(server)

@@ -242,25 +242,36 @@ def event_row(tr: Any) -> str:
 _WORKER: dict[str, Any] = {}
 
 
-def _cycle_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, Any], dict[str, str]]:
-    """(config, UnitCycle, its fresh snapshot, KPI units), built once per process and grid."""
+def _model_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, str]]:
+    """(config, reconciler, KPI units), built once per process and grid (the costly part)."""
     key = f"{config_path}|{cycle!r}|{window!r}"
     if key not in _WORKER:
         os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
         from twin.config import load_config
-        from twin.cycle import UnitCycle
         from twin.performance.plant_reconcile import PlantReconciler
 
         config = load_config(config_path)
         config.monitoring.cycle, config.monitoring.window = cycle, window
         # no wall-clock time budget: the result must not depend on the machine's load
         reconciler = PlantReconciler(config, time_budget=math.inf)
-        cyc = UnitCycle(config, reconciler=reconciler)
-        units = {d.name: d.unit for d in reconciler.kpi_defs}
-        units = {k: {"ratio": "1"}.get(u, u) for k, u in units.items()}
+        units = {d.name: {"ratio": "1"}.get(d.unit, d.unit) for d in reconciler.kpi_defs}
         _WORKER.clear()
-        _WORKER[key] = (config, cyc, cyc.snapshot(), units)
+        _WORKER[key] = (config, reconciler, units)
     return _WORKER[key]
+
+
+def fresh_cycle(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, str]]:
+    """A new :class:`twin.cycle.UnitCycle` in its initial state on the process's reconciler.
+
+    New for every chunk: every warm start and filter (also those not in the
+    snapshot, e.g. the expected model's) starts from the same state, so a
+    chunk's output does not depend on which chunks its process ran before.
+    """
+    from twin.cycle import UnitCycle
+
+    config, reconciler, units = _model_for(config_path, cycle, window)
+    reconciler.reset()
+    return config, UnitCycle(config, reconciler=reconciler), units
 
 
 def load_spool(spool: str | Path) -> Samples:
@@ -279,13 +290,7 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
     """
     from twin.cycle import WindowInput
 
-    config, cyc, fresh, units = _cycle_for(spec.config_path, spec.cycle, spec.window)
-    cyc.restore(fresh)
-    cyc.reconciler.reset()
-    if cyc.steady is not None and not hasattr(cyc.steady, "snapshot"):
-        cyc.steady.reset()  # not in the snapshot yet: start it afresh by hand
-    if not hasattr(cyc.drift, "snapshot"):
-        cyc.drift.reset()
+    config, cyc, units = fresh_cycle(spec.config_path, spec.cycle, spec.window)
     samples = load_spool(spec.spool)
     tags = [s.tag for s in config.sensors]
     max_age = [float(s.max_age) for s in config.sensors]

@@ -17,6 +17,7 @@ BENCHMARKS: dict[str, str] = {
     "heat-balance": "twin.bench.heat_balance",
     "reconcile": "twin.bench.reconcile",
     "ingest": "twin.bench.ingest",
+    "backfill": "twin.bench.backfill",
 }
 
 

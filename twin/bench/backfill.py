@@ -1,0 +1,156 @@
+"""``twin bench backfill``: back-fill windows per second (1 and N workers), live per-window cost, reading rate.
+
+Three parts, one JSON document:
+
+* ``reading``: rows per second of :class:`twin.history.HistoryReader` on a
+  synthetic long-layout CSV (``--read-rows`` rows over the plant's tags, epoch
+  seconds and RFC 3339 timestamps), one process, CPU seconds beside wall time;
+* ``backfill``: the simulated demo scenario (``--hours`` at ``--sample-interval``)
+  back-filled at ``--cycle`` second windows with 1 and ``--workers`` worker
+  processes; windows per second (wall, including process start-up and the
+  one-off model build per worker) and the steady-state rate excluding
+  start-up, peak resident memory of the main process and of the workers;
+* ``live``: the cost of one live window in the same run (the daemon's tag
+  store window + :class:`twin.cycle.UnitCycle` on the same history), and
+  where it goes (reconciliation share).
+
+The goal of the issue is 500 windows/s on 2 cores; the figures say by how
+much it is missed (``goal_ratio``). A week at 1-minute windows is 10 080
+windows: ``week_minutes`` extrapolates from the measured rate (marked as an
+extrapolation, not a measurement).
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import os
+import resource
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+GOAL_WINDOWS_PER_S = 500.0
+WEEK_WINDOWS_1MIN = 7 * 24 * 60
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--config", default="configs/demo-u1.toml", help="plant config (default demo-u1)")
+    parser.add_argument("--hours", type=float, default=2.0, help="simulated span back-filled [h] (default 2)")
+    parser.add_argument("--cycle", type=float, default=60.0, help="window grid and length [s] (default 60)")
+    parser.add_argument("--sample-interval", type=float, default=10.0, help="history sample interval [s] (default 10)")
+    parser.add_argument("--workers", type=int, default=2, help="workers of the parallel run (default 2)")
+    parser.add_argument("--read-rows", type=int, default=2_000_000, help="rows of the reading benchmark (default 2e6)")
+    parser.add_argument("--live-windows", type=int, default=10, help="windows of the live-path measurement (default 10)")
+    parser.add_argument("--skip-backfill", action="store_true", help="reading rate only")
+
+
+def _reading(config: Any, rows: int, d: Path) -> dict[str, Any]:
+    from twin.history import HistoryReader
+
+    tags = [s.tag for s in config.sensors]
+    rng = np.random.default_rng(1)
+    n_t = max(1, rows // len(tags))
+    t = 1767571200.0 + np.repeat(np.arange(n_t, dtype=float), len(tags))
+    tag = np.tile(np.array(tags), n_t)
+    lo = np.array([(s.range or s.span or (0.0, 1.0))[0] for s in config.sensors])
+    hi = np.array([(s.range or s.span or (0.0, 1.0))[1] for s in config.sensors])
+    v = np.tile(lo + 0.5 * (hi - lo), n_t) * (1 + 1e-3 * rng.standard_normal(n_t * len(tags)))
+    out: dict[str, Any] = {"rows": int(n_t * len(tags))}
+    for kind in ("epoch_s", "rfc3339"):
+        p = d / f"read-{kind}.csv"
+        with open(p, "w") as f:
+            f.write("timestamp,tag,value\n")
+            if kind == "epoch_s":
+                stamps = [repr(x) for x in t.tolist()]
+            else:
+                base = np.datetime64("2026-01-05T00:00:00", "s")
+                stamps = [str(base + np.timedelta64(int(x - 1767571200.0), "s")) + "Z" for x in t]
+            f.writelines(f"{a},{b},{c!r}\n" for a, b, c in zip(stamps, tag, v.tolist(), strict=True))
+        size = p.stat().st_size
+        reader = HistoryReader(config)
+        c0, w0 = time.process_time(), time.perf_counter()
+        n = sum(len(b) for b in reader.read(p))
+        wall, cpu = time.perf_counter() - w0, time.process_time() - c0
+        out[kind] = {"samples": n, "wall_s": round(wall, 3), "cpu_s": round(cpu, 3),
+                     "rows_per_s_wall": round(out["rows"] / wall), "rows_per_s_cpu": round(out["rows"] / cpu),
+                     "mb_per_s_cpu": round(size / 1e6 / cpu, 1), "file_mb": round(size / 1e6, 1)}
+        p.unlink()
+    return out
+
+
+def _live(config_path: str, history: Path, cycle: float, n: int) -> dict[str, Any]:
+    """The daemon's per-window cost on the same history: tag-store window + UnitCycle.run."""
+    from twin.config import load_config
+    from twin.daemon import Daemon, DaemonOptions, ManualClock
+    from twin.history import HistoryReader, read_samples
+    from twin.performance.plant_reconcile import PlantReconciler
+
+    cfg = load_config(config_path)
+    cfg.monitoring.cycle = cfg.monitoring.window = cycle
+    samples = read_samples(HistoryReader(cfg), [history])
+    t0 = math.ceil(float(samples.t.min()) / cycle) * cycle
+    daemon = Daemon(cfg, clock=ManualClock(t0), options=DaemonOptions(metrics=False, republish=False),
+                    reconciler=PlantReconciler(cfg, time_budget=math.inf))
+    tags = [s.tag for s in cfg.sensors]
+    order = np.argsort(samples.t, kind="stable")
+    k, per, rec = 0, [], []
+    for j in range(1, n + 1):
+        t_end = t0 + j * cycle
+        while k < len(order) and samples.t[order[k]] < t_end:
+            i = order[k]
+            daemon.store.add(tags[samples.tag[i]], float(samples.t[i]), float(samples.value[i]), bool(samples.ok[i]))
+            k += 1
+        w0 = time.perf_counter()
+        outp = daemon.cycle.run(daemon.window_input(t_end))
+        per.append(time.perf_counter() - w0)
+        rec.append(outp.reconcile_seconds)
+    return {"windows": n, "per_window_ms_median": round(1e3 * float(np.median(per)), 1),
+            "per_window_ms_mean": round(1e3 * float(np.mean(per)), 1),
+            "reconcile_share": round(float(np.sum(rec) / np.sum(per)), 3)}
+
+
+def run(args: argparse.Namespace) -> dict[str, Any]:
+    from twin.backfill import BackfillOptions, backfill
+    from twin.config import load_config
+    from twin.demo.history import write_history
+
+    config = load_config(args.config)
+    result: dict[str, Any] = {"openblas_num_threads": os.environ.get("OPENBLAS_NUM_THREADS"),
+                              "cpu_count": os.cpu_count(), "load_average": [round(x, 2) for x in os.getloadavg()]}
+    with tempfile.TemporaryDirectory(prefix="twin-bench-backfill-") as tmp:
+        d = Path(tmp)
+        result["reading"] = _reading(config, args.read_rows, d)
+        if args.skip_backfill:
+            return result
+        hist = d / "history.csv.gz"
+        w0 = time.perf_counter()
+        write_history(config, hist, hours=args.hours, start=1767571200.0, sample_interval=args.sample_interval,
+                      seed=1, model_interval=max(15.0, args.cycle))
+        result["history"] = {"hours": args.hours, "sample_interval_s": args.sample_interval,
+                             "simulate_s": round(time.perf_counter() - w0, 1)}
+        runs = {}
+        for workers in sorted({1, args.workers}):
+            out = d / f"out-{workers}"
+            chunk = args.hours * 3600.0 / max(2 * workers, 2)
+            opts = BackfillOptions(cycle=args.cycle, window=args.cycle, workers=workers, chunk_seconds=chunk,
+                                   warmup_seconds=10 * args.cycle, formats=("csv", "openmetrics"))
+            w0 = time.perf_counter()
+            s = backfill(args.config, [hist], out, opts, echo=lambda _: None)
+            wall = time.perf_counter() - w0
+            runs[str(workers)] = {"windows": s.windows, "chunks": s.chunks, "wall_s": round(wall, 1),
+                                  "windows_per_s": round(s.windows / wall, 3),
+                                  "goal_ratio": round(s.windows / wall / GOAL_WINDOWS_PER_S, 5),
+                                  "week_minutes_extrapolated": round(WEEK_WINDOWS_1MIN / (s.windows / wall) / 60, 1)}
+        result["backfill"] = runs
+        result["live"] = _live(args.config, hist, args.cycle, args.live_windows)
+        live_rate = 1e3 / result["live"]["per_window_ms_median"]
+        result["live"]["windows_per_s_one_core"] = round(live_rate, 3)
+    ru_self = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    ru_children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    result["peak_rss_mb"] = {"main": round(ru_self, 1), "largest_worker": round(ru_children, 1)}
+    result["goal_windows_per_s"] = GOAL_WINDOWS_PER_S
+    return result
