@@ -290,9 +290,18 @@ def test_prometheus_on_backfilled_blocks(reference, tmp_path, prometheus_factory
         res = _query_range(prom, e, START + 20 * 60, end)
         if not res:
             empty.append(e)
-    # conditional panels: suspects and their z only exist when a transmitter fails the test
-    allowed = [e for e in empty if "suspect" in e]
-    assert empty == allowed, empty
+    # allowed to be empty here, each for a stated reason
+    reasons = {
+        "suspect": "conditional: no transmitter fails the test in the first 30 minutes",
+        "twin_alarm_active": "conditional: no alarm is raised in the first 30 minutes",
+        "twin_kpi_drift_alarm": "conditional: no drift alarm in the first 30 minutes",
+        "twin_payloads_rejected": "conditional: the simulated history has no rejected values",
+        "twin_cycle_duration_seconds": "live only: the daemon's wall-clock histogram is not back-filled",
+        "twin_result_compute_seconds": "live only: wall-clock figures are not written (byte-identical output)",
+        'kpi="gross_efficiency"': "gross efficiency is not one of the drift-chart KPIs (twin.cycle.DRIFT_KPIS)",
+    }
+    unexplained = [e for e in empty if not any(k in e for k in reasons)]
+    assert not unexplained, "\n".join(unexplained)
     assert len(exprs) - len(empty) >= 30
 
 

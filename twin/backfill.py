@@ -615,7 +615,15 @@ def _run_pool(workers: int, todo: list[ChunkSpec], finished: Callable[[ChunkSpec
             done, _ = wait(pending, return_when=FIRST_COMPLETED)
             for f in done:
                 s = pending.pop(f)
-                finished(s, f.result())
+                finished(s, _chunk_result(s, f))
+
+
+def _chunk_result(s: ChunkSpec, fut: Any) -> dict[str, Any]:
+    try:
+        return dict(fut.result())
+    except Exception as exc:  # a worker's failure becomes one line naming the chunk
+        raise BackfillError(f"chunk {s.name} ({rfc3339(s.first_end)}, {s.n} windows) failed in its worker: "
+                            f"{type(exc).__name__}: {exc}; finished chunks are kept, run again to resume") from None
 
 
 def _run_dask(address: str, todo: list[ChunkSpec], finished: Callable[[ChunkSpec, dict[str, Any]], None]) -> None:
@@ -631,7 +639,7 @@ def _run_dask(address: str, todo: list[ChunkSpec], finished: Callable[[ChunkSpec
         futures = {client.submit(run_chunk, s, key=f"twin-backfill-{s.name}-{s.first_end:.0f}", pure=False): s
                    for s in todo}
         for fut in as_completed(list(futures)):
-            finished(futures[fut], fut.result())
+            finished(futures[fut], _chunk_result(futures[fut], fut))
     finally:
         client.close()
 

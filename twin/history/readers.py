@@ -227,7 +227,7 @@ class HistoryReader:
             if layout is None or not len(rows):
                 line0 += n
                 continue
-            body = stripped.take(pa.array(rows))
+            body = stripped if len(rows) == n else stripped.take(pa.array(rows))
             fields = pc.split_pattern(body, ",")
             nf = pc.list_value_length(fields).to_numpy(zero_copy_only=False)
             want = layout.n_columns
@@ -245,9 +245,9 @@ class HistoryReader:
             if not len(rows):
                 line0 += n
                 continue
-            cols = [pc.utf8_trim(pc.list_element(fields, j) if j < want - 1 or not layout.optional_quality
-                                 else _element_or_empty(fields, j, nf), characters=' "\t')
-                    for j in range(want)]
+            cols = [pc.list_element(fields, j) if j < want - 1 or not layout.optional_quality
+                    else _element_or_empty(fields, j, nf) for j in range(want)]
+            cols = [pc.utf8_trim(c, characters=' "\t') for c in cols]
             yield from self._decode(layout, cols, line0 + rows, parser, rep, path)
             line0 += n
         if header is None:
