@@ -44,7 +44,9 @@ def summary_report(cfg: PlantConfig) -> list[str]:
         f"sensors: {len(cfg.sensors)} ({_counts(Counter(s.quantity for s in cfg.sensors))})",
         f"broker: {b.host}:{b.port} MQTT {b.protocol} {tls}{auth}, client id {b.client_id}, "
         f"qos {b.qos}, republish under {b.republish_prefix}/",
-        f"metrics: http://{m.address}:{m.port}/metrics",
+        f"metrics: {'https' if m.tls is not None else 'http'}://{m.address}:{m.port}/metrics"
+        + (" (client certificates required)" if m.tls is not None and m.tls.client_ca_file else ""),
+        f"state file: {cfg.state.file if cfg.state.enabled else 'off'}",
         f"monitoring: cycle {mon.cycle:g} s, window {mon.window:g} s, "
         f"steady signals {len(mon.steady_signals)}",
     ]
