@@ -194,13 +194,21 @@ def test_broker_kill_and_restart_ten_times_reconnects_within_the_backoff_cap(mos
         pub.stop()
 
 
-@pytest.mark.parametrize(("password", "ca", "reason"), [
-    ("wrong-pw", "ca", "bad_credentials|not_authorized"),
-    ("s3cret-pw", "other_ca", "tls_verify_failed"),
-])
-def test_daemon_logs_the_refusal_once_and_exports_it(tmp_path: Path, mosquitto_factory: Any, password: str,
-                                                     ca: str, reason: str, caplog: pytest.LogCaptureFixture) -> None:
-    broker = mosquitto_factory(users={"twin": "s3cret-pw"}, tls=True)
+@pytest.mark.parametrize(("password", "ca", "reason", "expired"), [
+    ("wrong-pw", "ca", "bad_credentials|not_authorized", False),
+    ("s3cret-pw", "other_ca", "tls_verify_failed", False),
+    ("s3cret-pw", "ca", "tls_verify_failed", True),  # the broker's certificate expired yesterday
+], ids=["wrong-password", "untrusted-ca", "expired-certificate"])
+def test_daemon_logs_the_refusal_once_and_exports_it(tmp_path: Path, mosquitto_factory: Any, tls_files: Any,
+                                                     password: str, ca: str, reason: str, expired: bool,
+                                                     caplog: pytest.LogCaptureFixture) -> None:
+    if expired:
+        crt, key = _expired_server_cert(tls_files, tmp_path)
+        broker = mosquitto_factory(config=f"listener {{port}} 127.0.0.1\nallow_anonymous true\n"
+                                   f"cafile {tls_files.ca}\ncertfile {crt}\nkeyfile {key}\n")
+        broker.tls = tls_files
+    else:
+        broker = mosquitto_factory(users={"twin": "s3cret-pw"}, tls=True)
     config = _tls_config(tmp_path, broker, getattr(broker.tls, ca), password)
     with caplog.at_level(logging.INFO, logger="twin.daemon"):
         daemon = start_daemon(config, connected=False)
@@ -216,6 +224,8 @@ def test_daemon_logs_the_refusal_once_and_exports_it(tmp_path: Path, mosquitto_f
     assert any(ln.startswith("event=mqtt_connecting ") for ln in lines)
     failed = [ln for ln in lines if ln.startswith("event=mqtt_connect_failed ")]
     assert len(failed) == 1 and re.search(rf"reason=({reason}) ", failed[0]), failed
+    if expired:
+        assert "certificate has expired" in failed[0]
     assert m.get("twin_mqtt_connected") == 0.0
     exported = {dict(ls)["reason"]: v for (n, ls), v in m.samples.items() if n == "twin_mqtt_connect_failures_total"}
     assert set(exported) == set(CONNECT_FAILURE_REASONS)
