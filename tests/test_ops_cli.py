@@ -88,3 +88,18 @@ def test_json_log_lines_are_one_object_each(capsys: pytest.CaptureFixture[str]) 
     doc = json.loads(line)
     assert doc["event"] == "windows_skipped" and doc["count"] == 2 and doc["level"] == "WARNING"
     assert re.fullmatch(RFC3339_UTC, doc["time"]) and re.fullmatch(RFC3339_UTC, doc["window_end"])
+
+
+def test_run_with_an_unusable_ca_file_exits_1_with_one_line(tmp_path: Path) -> None:
+    """A CA file that exists but holds no certificate: MqttError at start, one line, no traceback."""
+    from tests.test_daemon_e2e import demo_config_text
+
+    ca = tmp_path / "garbage.crt"
+    ca.write_text("not a certificate\n")
+    plant = tmp_path / "plant.toml"
+    plant.write_text(demo_config_text(broker=f'host = "127.0.0.1"\nport = 1\ntls = {{ ca_file = "{ca}" }}\n'))
+    p = _twin("run", str(plant), "--no-state")
+    _, err = p.communicate(timeout=180)
+    assert p.returncode == 1
+    assert err.splitlines() == [f"twin run: {plant}: MQTT TLS set-up for 127.0.0.1:1 failed: CA file "
+                                f"'{ca}': no certificate or crl found"]

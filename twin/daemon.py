@@ -350,6 +350,9 @@ class Daemon:
 
     def start(self) -> None:
         """Restore the state file, connect to the broker and start the metrics endpoint."""
+        # built first: a bad CA or certificate file fails here, before anything listens
+        self.mqtt = MqttClient(self.mqtt_settings, self.ingestor, clock=self.clock.now,
+                               on_event=self._on_connection)
         self.restore_state()
         for text in exposure_warnings(self.config, self.mqtt_settings):
             log_event(logging.WARNING, "exposure", text=text)
@@ -363,8 +366,6 @@ class Daemon:
             self.metrics.start()
             log_event(logging.INFO, "metrics_listening", address=m.address, port=self.metrics.port,
                       scheme=self.metrics.scheme, client_certificates=bool(tls and tls.client_ca_file))
-        self.mqtt = MqttClient(self.mqtt_settings, self.ingestor, clock=self.clock.now,
-                               on_event=self._on_connection)
         self.mqtt.subscribe({t: int(self.mqtt_settings.qos) for t in self.topic_map.topics})
         self.mqtt.start()
         log_event(logging.INFO, "started", unit=self.config.unit.id, broker=f"{self.mqtt_settings.host}:{self.mqtt_settings.port}",

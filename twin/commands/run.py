@@ -27,6 +27,16 @@ def install_stop_handlers(stop: threading.Event) -> None:
     signal.signal(signal.SIGINT, handler)
 
 
+def _quiet_stop(daemon: object) -> None:
+    """After a failed start: stop what did start (the metrics thread keeps the model alive otherwise)."""
+    metrics = getattr(daemon, "metrics", None)
+    if metrics is not None:
+        metrics.stop()
+    mqtt = getattr(daemon, "mqtt", None)
+    if mqtt is not None:
+        mqtt.stop()
+
+
 def run(args: argparse.Namespace) -> int:
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     # before anything slow: a SIGTERM during start-up is a clean exit, not a kill
@@ -47,6 +57,7 @@ def run(args: argparse.Namespace) -> int:
 
     if stop.is_set():
         return 0
+    daemon = None
     try:
         daemon = Daemon(config, environ=os.environ,
                         options=DaemonOptions(republish=not args.no_republish,
@@ -56,9 +67,11 @@ def run(args: argparse.Namespace) -> int:
         daemon.start()
     except (ValueError, OSError, MqttError) as exc:
         print(f"twin run: {args.config}: {exc}", file=sys.stderr)
+        _quiet_stop(daemon)
         return 1
     except Exception as exc:  # e.g. the design point does not solve: still one line, no traceback
         print(f"twin run: {args.config}: cannot start: {type(exc).__name__}: {exc}", file=sys.stderr)
+        _quiet_stop(daemon)
         return 1
     try:
         daemon.run(stop)
