@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import argparse
+import json
+import logging
 import os
 import signal
 import sys
@@ -52,6 +54,10 @@ def run(args: argparse.Namespace) -> int:
     except ConfigError as exc:
         print(str(exc), file=sys.stderr)
         return 1
+    # say something at once: the imports and the model build take seconds
+    logging.getLogger("twin.run").info("event=starting unit=%s config=%s text=%s", config.unit.id,
+                                       json.dumps(str(args.config)) if " " in str(args.config) else args.config,
+                                       json.dumps("building the model and the reconciliation problem"))
     from twin.daemon import Daemon, DaemonOptions
     from twin.mqtt import MqttError
 
