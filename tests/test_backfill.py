@@ -344,3 +344,30 @@ def _query_range(prom, expr: str, start: float, end: float) -> list[dict]:
         body = json.load(resp)
     assert body["status"] == "success", (expr, body)
     return body["data"]["result"]
+
+
+def test_openmetrics_writer_equals_the_metrics_module():
+    """The back-fill's fast writer gives exactly the text of twin.metrics.openmetrics_lines."""
+    from twin.backfill import openmetrics_text
+    from twin.metrics import openmetrics_lines
+    from twin.result import AlarmView, CycleResult, DriftView, Estimate, InputStats, TagResult
+
+    results = []
+    for k in range(3):
+        t = START + 60.0 * (k + 1)
+        results.append(CycleResult(
+            unit_id="demo-u1", window_start=t - 60.0, window_end=t, steady=k > 0, steady_status="steady",
+            reconcile_status="converged", iterations=3 + k, global_test=1.5 + k, global_test_dof=7,
+            tags={"FW-F1": TagResult("FW-F1", "mass_flow", measured=300.0 + k, reconciled=299.5, reconciled_sigma=0.7,
+                                     valid=True, normalised_adjustment=0.4, suspect=k == 2),
+                  "HP-MS-T1": TagResult("HP-MS-T1", "temperature", measured=814.15, valid=False, reason="stale")},
+            kpis={"gross_efficiency": Estimate(0.4123 + 1e-4 * k, 0.004, True),
+                  "section_efficiency.HP": Estimate(0.86, 0.01, True), "net_power": Estimate()},
+            expected={"gross_efficiency": 0.415}, heat_rate_deviation=1e-3 * k,
+            heat_rate_deviation_by_cause={"condenser": 4e-4, "unaccounted": 1e-4},
+            alarms={"exhaust_moisture": AlarmView("exhaust_moisture", "active" if k else "normal",
+                                                  "warning" if k else "", active=bool(k))},
+            drift={"turbine_heat_rate": DriftView("turbine_heat_rate", 0.1, -1.0, 1.0, 2.0, 0.0, False, "up")},
+            inputs=InputStats(messages=1000 * k, rejected={"out_of_range": k}), compute_seconds=1e7 * k,
+        ))
+    assert openmetrics_text(results) == openmetrics_lines(results)

@@ -238,8 +238,69 @@ def event_row(tr: Any) -> str:
             f"\"{reason}\"\n")
 
 
+def _go_float(d: float) -> str:
+    """A sample value as the Prometheus client writes it (Go's float formatting)."""
+    if d == math.inf:
+        return "+Inf"
+    if d == -math.inf:
+        return "-Inf"
+    if math.isnan(d):
+        return "NaN"
+    text = repr(d)
+    dot = text.find(".")
+    if d > 0 and dot > 6:
+        mantissa = f"{text[0]}.{text[1:dot]}{text[dot + 1:]}".rstrip("0.")
+        return f"{mantissa}e+{dot - 1:02d}"
+    return text
+
+
+def _esc(text: str) -> str:
+    return text.replace("\\", "\\\\").replace("\n", "\\n").replace('"', '\\"')
+
+
+def openmetrics_text(results: Sequence[CycleResult]) -> str:
+    """OpenMetrics text of several results, samples stamped with each window end [s].
+
+    The families come from the live collector (:func:`twin.metrics.build_families`,
+    so the names are the live ones); this writer only formats them, once per
+    family, series grouped in time order, ``# EOF`` at the end — the same text
+    as :func:`twin.metrics.openmetrics_lines`, written without building one
+    registry per chunk (about 10 times faster on a day of windows).
+    """
+    from twin.metrics import build_families
+
+    families: dict[str, tuple[str, str, str, dict[tuple[str, tuple[tuple[str, str], ...]], list[str]]]] = {}
+    for r in sorted(results, key=lambda r: r.window_end):
+        if not math.isfinite(r.window_end):
+            raise ValueError(f"result of unit {r.unit_id!r} has no finite window_end")
+        for fam in build_families(r, r.window_end):
+            if fam.name == "twin_cycle_result_available":
+                continue  # a live-endpoint liveness signal, meaningless in history
+            entry = families.get(fam.name)
+            if entry is None:
+                entry = families[fam.name] = (fam.type, fam.documentation, fam.unit, {})
+            series = entry[3]
+            for smp in fam.samples:
+                key = (smp.name, tuple(sorted(smp.labels.items())))
+                lines = series.get(key)
+                if lines is None:
+                    labels = ",".join(f'{k}="{_esc(v)}"' for k, v in key[1])
+                    lines = series[key] = [f"{smp.name}{{{labels}}}" if labels else smp.name]
+                lines.append(f"{lines[0]} {_go_float(float(smp.value))} {smp.timestamp}\n")
+    out: list[str] = []
+    for name, (kind, doc, unit, series) in families.items():
+        out.append(f"# HELP {name} {_esc(doc)}\n# TYPE {name} {kind}\n")
+        if unit:
+            out.append(f"# UNIT {name} {unit}\n")
+        for lines in series.values():
+            out.extend(lines[1:])
+    out.append("# EOF\n")
+    return "".join(out)
+
+
 # ----------------------------------------------------------------------------- the chunk function
 _WORKER: dict[str, Any] = {}
+_MEASURED = ("seconds", "peak_rss_mb")  # machine figures of a chunk: reported, never written to outputs
 
 
 def _model_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, str]]:
@@ -272,6 +333,17 @@ def fresh_cycle(config_path: str, cycle: float, window: float) -> tuple[Any, Any
     config, reconciler, units = _model_for(config_path, cycle, window)
     reconciler.reset()
     return config, UnitCycle(config, reconciler=reconciler), units
+
+
+def _peak_rss_mb() -> float:
+    """This process's peak resident memory [MiB] (VmHWM; unlike ru_maxrss it is not inherited across exec)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return float(line.split()[1]) / 1024.0
+    except OSError:
+        pass
+    return math.nan
 
 
 def load_spool(spool: str | Path) -> Samples:
@@ -330,12 +402,11 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
             if "openmetrics" in spec.formats:
                 results.append(r)
     if "openmetrics" in spec.formats and results:
-        from twin.metrics import openmetrics_lines
-
-        (tmp / "metrics.om").write_text(openmetrics_lines(results), encoding="utf-8")
+        (tmp / "metrics.om").write_text(openmetrics_text(results), encoding="utf-8")
     summary["seconds"] = time.perf_counter() - started
-    (tmp / "summary.json").write_text(json.dumps({k: v for k, v in summary.items() if k != "seconds"},
+    (tmp / "summary.json").write_text(json.dumps({k: v for k, v in summary.items() if k not in _MEASURED},
                                                  sort_keys=True), encoding="utf-8")
+    summary["peak_rss_mb"] = _peak_rss_mb()
     final = Path(spec.out)
     shutil.rmtree(final, ignore_errors=True)
     os.replace(tmp, final)
@@ -376,6 +447,8 @@ class BackfillSummary:
     bad_rows: int = 0
     rejected: dict[str, int] = field(default_factory=dict)
     seconds: float = 0.0
+    chunk_seconds: float = 0.0  # compute time inside the chunks run now (no start-up, no reading)
+    worker_peak_rss_mb: float = 0.0
     t_first: float = math.nan
     t_last: float = math.nan
 
@@ -574,7 +647,9 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
     results: dict[str, dict[str, Any]] = dict(manifest["chunks"])
 
     def finished(s: ChunkSpec, res: dict[str, Any]) -> None:
-        results[s.name] = {k: v for k, v in res.items() if k != "seconds"}
+        results[s.name] = {k: v for k, v in res.items() if k not in _MEASURED}
+        summary.chunk_seconds += float(res.get("seconds", 0.0))
+        summary.worker_peak_rss_mb = max(summary.worker_peak_rss_mb, float(res.get("peak_rss_mb", 0.0)))
         manifest["chunks"] = results
         _write_json_atomic(manifest_path, manifest)
         progress.add(s.n)
