@@ -371,3 +371,31 @@ def test_openmetrics_writer_equals_the_metrics_module():
             inputs=InputStats(messages=1000 * k, rejected={"out_of_range": k}), compute_seconds=1e7 * k,
         ))
     assert openmetrics_text(results) == openmetrics_lines(results)
+
+
+def test_backfill_command_bad_input_is_one_line_and_nonzero(tmp_path, capsys):
+    from twin.cli import main
+
+    def run(*argv: str) -> tuple[int, list[str]]:
+        rc = main(["backfill", str(CONFIG), *argv])
+        err = [ln for ln in capsys.readouterr().err.splitlines() if ln.startswith("twin backfill:")]
+        return rc, err
+
+    rc, err = run(str(tmp_path / "missing.csv"), "--out", str(tmp_path / "o1"))
+    assert rc == 2 and len(err) == 1 and "missing.csv: no such file" in err[0]
+    rc, err = run(str(tmp_path / "missing.csv"), "--out", str(tmp_path / "o2"), "--format", "csv,xml")
+    assert rc == 2 and len(err) == 1 and "expected some of csv,parquet,openmetrics" in err[0]
+    bad = tmp_path / "bad.csv"
+    bad.write_text("when,what\n1,2\n")
+    rc, err = run(str(bad), "--out", str(tmp_path / "o3"))
+    assert rc == 1 and len(err) == 1 and "expected timestamp,tag,value" in err[0]
+    rc, err = run(str(bad), "--out", str(tmp_path / "o4"), "--from", "yesterday")
+    assert rc == 2 and len(err) == 1 and "--from 'yesterday'" in err[0]
+
+
+def test_simulate_command_bad_input_is_one_line(tmp_path, capsys):
+    from twin.cli import main
+
+    rc = main(["simulate", str(CONFIG), "--hours", "1", "--out", str(tmp_path / "x.txt")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 2 and len(err) == 1 and "expected a name ending .csv, .csv.gz or .parquet" in err[0]
