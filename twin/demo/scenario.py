@@ -18,6 +18,10 @@ The default timeline (:meth:`DemoScenario.default`), simulated minutes:
   feed-pump suction and condensate flows and the balances all cross-check it).
 * 0-80 the HP group's dry efficiency falls by 2 points (0.860 → 0.840).
 
+With the demo's steady-state gate the plateau is steady some 3-4 minutes after it is
+reached and the moisture warning follows the 10 % crossing (about minute 31.5) within
+about 3 minutes (README, "Steady state").
+
 Note that a *high* back-pressure makes the exhaust drier, not wetter; the
 moisture warning is reached with *cold* cooling water (low back-pressure).
 """
