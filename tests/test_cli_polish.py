@@ -107,7 +107,7 @@ def hb_json():
 
 def test_heat_balance_json_keys_name_their_unit(hb_json):
     r = hb_json
-    structural = {"unit_id", "formulation", "pressure_mode", "section_efficiency", "heaters", "condensers",
+    structural = {"unit_id", "formulation", "pressure_mode", "fuel_basis", "section_efficiency", "heaters", "condensers",
                   "equipment", "streams", "newton_iterations", "newton_iterations_design",
                   "newton_iterations_operating_point"}
     ids = set(r["streams"]) | set(r["heaters"]) | set(r["condensers"]) | set(r["equipment"]) | set(r["section_efficiency"])

@@ -39,7 +39,7 @@ DASHBOARD = DEPLOY / "grafana" / "twin-dashboard.json"
 # Every KPI key documented on CycleResult, keyed ones with one invented key each.
 ALL_KPIS = (
     "gross_power", "net_power", "heat_input", "gross_efficiency", "net_efficiency",
-    "turbine_heat_rate", "plant_heat_rate", "load_fraction", "exhaust_quality_elep",
+    "turbine_heat_rate", "turbine_net_heat_rate", "plant_heat_rate", "net_plant_heat_rate", "load_fraction", "exhaust_quality_elep",
     "exhaust_quality_ueep", "exhaust_moisture_elep", "exhaust_moisture_ueep",
     "section_efficiency.hp", "heater_ttd.fwh7", "heater_dca.fwh7",
     "heater_temperature_rise.fwh7", "extraction_flow.fwh7", "condenser_pressure.main",

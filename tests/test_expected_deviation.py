@@ -165,3 +165,33 @@ def test_a_failed_cause_is_named_and_not_folded_into_unaccounted(setup: Any) -> 
     d = window_deviation(setup[2], _reconciled(setup, constants=_efficiency("HP", 0.45)))
     assert d.status.startswith("partial") and "hp_efficiency" in d.status
     assert "hp_efficiency" not in d.by_cause and "unaccounted" not in d.by_cause
+
+
+def test_twin_reconcile_json_prints_expected_and_the_split(tmp_path: Any, capsys: Any) -> None:
+    """A values file of a forward-model truth (hot reheat −10 K) through the command a plant engineer runs."""
+    import json
+
+    from tests.model_helpers import DEMO
+    from twin.cli import main
+    from twin.demo.plant import to_engineering
+
+    cfg = demo_config()
+    fs, op, design = demo_design()
+    hb = solve_off_design(fs, op, design, 1.0, "sliding", overrides={(RH, "temperature"): 803.15})
+    truth = sensor_truth(cfg, hb, barometric_pressure=float(cfg.unit.barometric_pressure))
+    values = tmp_path / "values.csv"
+    values.write_text("".join(f"{t},{float(to_engineering(cfg, t, v))!r}\n" for t, v in truth.items()))
+    assert main(["reconcile", str(DEMO), str(values), "--json"]) == 0
+    r = json.loads(capsys.readouterr().out)
+    assert set(r["expected"]) <= set(r["kpis"]) and "turbine_heat_rate" in r["expected"]
+    hd = r["heat_rate_deviation"]
+    assert hd["status"] == "complete"
+    assert hd["total"] == pytest.approx(r["kpis"]["turbine_heat_rate"]["value"] - r["expected"]["turbine_heat_rate"],
+                                        abs=1e-12)
+    assert sum(hd["by_cause"].values()) == pytest.approx(hd["total"], abs=1e-12)
+    assert max(hd["by_cause"], key=lambda c: abs(hd["by_cause"][c])) == "reheat_temperature"
+    assert 10.0 < hd["total"] * 3600.0 < 35.0  # DOMAIN.md §2 [memory]: −10 K reheat ≈ +0.25 %
+    assert hd["currency"] == "EUR" and set(hd["cost_per_hour_by_cause"]) == set(hd["by_cause"])
+    assert main(["reconcile", str(DEMO), str(values)]) == 0
+    text = capsys.readouterr().out
+    assert "kJ/kWh" in text and "Btu/kWh" in text and "reheat_temperature" in text

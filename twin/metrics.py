@@ -165,8 +165,10 @@ _KPIS: dict[str, tuple[str, str, str | None, str]] = {
     "heat_input": ("heat_input", "watts", None, "Heat added to the water-steam cycle (feedwater to main steam plus reheat)"),
     "gross_efficiency": ("gross_efficiency", "ratio", None, "Gross cycle efficiency, gross power / heat input"),
     "net_efficiency": ("net_efficiency", "ratio", None, "Net cycle efficiency, net power / heat input"),
-    "turbine_heat_rate": ("turbine_heat_rate", "ratio", None, "Turbine-cycle heat rate, heat input / gross power, dimensionless (x3600 = kJ/kWh)"),
-    "plant_heat_rate": ("plant_heat_rate", "ratio", None, "Plant heat rate on a fuel basis (turbine heat rate / boiler efficiency), dimensionless"),
+    "turbine_heat_rate": ("turbine_heat_rate", "ratio", None, "Turbine-cycle gross heat rate, cycle heat input / generator output, dimensionless (x3600 = kJ/kWh)"),
+    "turbine_net_heat_rate": ("turbine_net_heat_rate", "ratio", None, "Turbine-cycle net heat rate (ASME PTC 6), cycle heat input / (generator output - motor-driven feed-pump power), dimensionless (x3600 = kJ/kWh)"),
+    "plant_heat_rate": ("plant_heat_rate", "ratio", None, "Plant heat rate, turbine-cycle gross heat rate / boiler efficiency, on the plant file's fuel basis (HHV or LHV), dimensionless (x3600 = kJ/kWh)"),
+    "net_plant_heat_rate": ("net_plant_heat_rate", "ratio", None, "Net plant heat rate, (cycle heat input / boiler efficiency) / (generator output - auxiliary power), on the plant file's fuel basis (HHV or LHV), dimensionless (x3600 = kJ/kWh)"),
     "load_fraction": ("load", "ratio", None, "Load as a fraction of design"),
     "section_efficiency": ("section_efficiency", "ratio", "section", "Turbine section (enthalpy-drop) isentropic efficiency"),
     "heater_ttd": ("heater_ttd", "celsius", "heater", "Feedwater heater terminal temperature difference, Tsat(shell) - feedwater outlet" + _DIFF),
@@ -356,9 +358,9 @@ def _kpis(f: _Families, r: CycleResult) -> None:
 
 
 def _deviation(f: _Families, r: CycleResult) -> None:
-    f.gauge("twin_heat_rate_deviation_ratio", "Turbine heat rate, actual - expected, dimensionless (x3600 = kJ/kWh)", r.heat_rate_deviation)
+    f.gauge("twin_heat_rate_deviation_ratio", "Turbine-cycle gross heat rate, actual - expected at the present load and boundary conditions, dimensionless (x3600 = kJ/kWh)", r.heat_rate_deviation)
     for cause, value in r.heat_rate_deviation_by_cause.items():
-        f.gauge("twin_heat_rate_deviation_by_cause_ratio", "Share of the turbine heat-rate deviation attributed to a cause, dimensionless; causes and 'unaccounted' sum to the total", value, cause=cause)
+        f.gauge("twin_heat_rate_deviation_by_cause_ratio", "Turbine-cycle gross heat-rate deviation attributed to a cause, dimensionless; causes and 'unaccounted' of the same window sum to the total", value, cause=cause)
 
 
 def _alarms(f: _Families, r: CycleResult) -> None:

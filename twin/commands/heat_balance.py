@@ -111,8 +111,11 @@ def report(config: Any, hb: HeatBalance, design: HeatBalance | None = None) -> d
         "turbine_heat_rate": k["turbine_heat_rate"],
         "turbine_heat_rate_kilojoules_per_kilowatt_hour": k["turbine_heat_rate_kj_per_kwh"],
         "turbine_heat_rate_btu_per_kilowatt_hour": k["turbine_heat_rate_btu_per_kwh"],
-        "net_heat_rate_kilojoules_per_kilowatt_hour": k["net_heat_rate_kj_per_kwh"],
+        "turbine_net_heat_rate_kilojoules_per_kilowatt_hour": k["turbine_net_heat_rate_kj_per_kwh"],
+        "feed_pump_power_watts": _num(k["feed_pump_power"]),
         "plant_heat_rate_kilojoules_per_kilowatt_hour": k["plant_heat_rate_kj_per_kwh"],
+        "net_plant_heat_rate_kilojoules_per_kilowatt_hour": k["net_plant_heat_rate_kj_per_kwh"],
+        "fuel_basis": config.performance.fuel_basis,
         "boiler_efficiency": k["boiler_efficiency"],
         "exhaust_moisture_elep": k.get("exhaust_moisture_elep"),
         "exhaust_quality_elep": k.get("exhaust_quality_elep"),
@@ -147,8 +150,12 @@ def _print_text(r: dict[str, Any]) -> None:
     w(f"  gross / net efficiency {r['gross_efficiency']:.4f} / {r['net_efficiency']:.4f}\n")
     w(f"  turbine heat rate      {r['turbine_heat_rate_kilojoules_per_kilowatt_hour']:9.1f} kJ/kWh  "
       f"({r['turbine_heat_rate_btu_per_kilowatt_hour']:.1f} Btu/kWh)\n")
-    w(f"  plant heat rate (fuel) {r['plant_heat_rate_kilojoules_per_kilowatt_hour']:9.1f} kJ/kWh  "
-      f"(boiler efficiency {r['boiler_efficiency']:.3f})\n")
+    w(f"  turbine net heat rate  {r['turbine_net_heat_rate_kilojoules_per_kilowatt_hour']:9.1f} kJ/kWh  "
+      f"(ASME PTC 6: feed-pump power {r['feed_pump_power_watts'] / 1e6:.3f} MW deducted)\n")
+    w(f"  plant heat rate        {r['plant_heat_rate_kilojoules_per_kilowatt_hour']:9.1f} kJ/kWh  "
+      f"(turbine heat rate / boiler efficiency {r['boiler_efficiency']:.3f}, {r['fuel_basis']})\n")
+    w(f"  net plant heat rate    {r['net_plant_heat_rate_kilojoules_per_kilowatt_hour']:9.1f} kJ/kWh  "
+      f"(fuel heat / net output, {r['fuel_basis']})\n")
     for sec, eta in r["section_efficiency"].items():
         w(f"  section efficiency {sec:<8} {eta:.4f}\n")
     if r["exhaust_quality_elep"] is not None:

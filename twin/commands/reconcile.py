@@ -121,6 +121,9 @@ def _print_text(r: dict[str, Any]) -> None:
         else:
             w(f"  {k:<36} unavailable (unobservable)\n")
     w(f"\nresults depend on the model relations: {', '.join(r['depends_on'])}\n")
+    from twin.commands._deviation import print_deviation
+
+    print_deviation(r)
 
 
 def run(args: argparse.Namespace) -> int:
@@ -150,6 +153,9 @@ def run(args: argparse.Namespace) -> int:
     reconciler = PlantReconciler(config, alpha=args.alpha, max_eliminations=args.max_eliminations)
     rec = reconciler.reconcile(vf.values, excluded=vf.excluded)
     r = report(config, vf, rec, reconciler)
+    from twin.commands._deviation import deviation_report
+
+    r.update(deviation_report(config, reconciler, rec))
     if args.json:
         print(json.dumps(r, indent=1))
     else:

@@ -188,6 +188,10 @@ def _check_performance(cfg: PlantConfig, streams: set[str], add: Any) -> None:
             add(f"performance.boiler_efficiency[{i}]", f"[{load}, {eff}] out of order or range; expected "
                 "[load_fraction, efficiency] with load increasing and efficiency in (0, 1]")
         last = max(last, load)
+    for pid in perf.motor_driven_feed_pumps or ():
+        pe = cfg.equipment_by_id.get(pid)
+        if pe is None or pe.kind != "pump":
+            add("performance.motor_driven_feed_pumps", f"{pid!r} is not pump equipment; expected the id of a pump")
     sched = perf.pressure_schedule
     if perf.pressure_control == "schedule" and len(sched) < 2:
         add("performance.pressure_schedule", f"{len(sched)} rows; expected at least two [load_fraction, "

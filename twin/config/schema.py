@@ -82,6 +82,11 @@ class PerformanceConfig(_Model):
         default_factory=list,
         description="[load_fraction, throttle pressure] rows, load increasing (pressure_control = 'schedule')",
     )
+    motor_driven_feed_pumps: list[str] | None = Field(
+        default=None,
+        description="motor-driven feed pumps whose power the ASME PTC 6 net turbine heat rate deducts; "
+        "default: pumps with a discharge_reference (the boiler feed pump); [] for a turbine-driven pump",
+    )
     fuel_price: float | None = Field(
         default=None, ge=0.0,
         description="fuel price in currency per GJ of fuel heat (on fuel_basis), for the cost of each loss",

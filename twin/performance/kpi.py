@@ -49,6 +49,8 @@ class CyclePerformanceSettings:
     auxiliary_variable: float  # [W] at design flow
     boiler_efficiency: tuple[tuple[float, float], ...]  # (load fraction, efficiency)
     sections: tuple[Section, ...]
+    feed_pumps: tuple[str, ...] = ()  # motor-driven feed pumps, deducted in the ASME PTC 6 net heat rate
+    fuel_basis: str = "HHV"  # of the boiler efficiency and the plant heat rates
 
     @classmethod
     def from_config(cls, config: Any) -> CyclePerformanceSettings:
@@ -60,7 +62,21 @@ class CyclePerformanceSettings:
             auxiliary_variable=float(perf.auxiliary_variable),
             boiler_efficiency=tuple((float(a), float(b)) for a, b in perf.boiler_efficiency),
             sections=tuple(Section(s.id, s.inlet, s.outlet) for s in config.sections),
+            feed_pumps=tuple(feed_pump_ids(config)),
+            fuel_basis=str(perf.fuel_basis),
         )
+
+
+def feed_pump_ids(config: Any) -> list[str]:
+    """Motor-driven feed pumps: ``[performance] motor_driven_feed_pumps``, else pumps with a discharge rule.
+
+    A pump whose discharge follows the throttle pressure (``discharge_reference``) is
+    the boiler feed pump; an empty list in the plant file means turbine-driven (nothing deducted).
+    """
+    listed = getattr(config.performance, "motor_driven_feed_pumps", None)
+    if listed is not None:
+        return list(listed)
+    return [e.id for e in config.equipment if e.kind == "pump" and e.params.get("discharge_reference")]
 
 
 def section_efficiency(ctx: Context, inlet: str, outlet: str) -> float:
@@ -141,13 +157,12 @@ def interpolate_boiler_efficiency(table: Sequence[tuple[float, float]], load: fl
     return float(np.interp(load, xs, ys))
 
 
-def cycle_kpis(
-    fs: Flowsheet,
-    ctx: Context,
-    settings: CyclePerformanceSettings,
-    cooling_water: dict[str, tuple[float, float]] | None = None,
-) -> dict[str, Any]:
-    """All cycle KPIs at one state.
+def cycle_kpis(fs: Flowsheet, ctx: Context, settings: CyclePerformanceSettings) -> dict[str, Any]:
+    """All cycle KPIs at one forward-model state, for the heat-balance report.
+
+    The values are the flat :func:`kpi_definitions` (the same functions the
+    reconciliation and the metrics use), arranged by equipment, plus a few
+    report-only figures (shaft and auxiliary power, exhaust loss, condenser duty, LMTD, UA).
 
     Parameters
     ----------
@@ -156,9 +171,6 @@ def cycle_kpis(
         The state (``fs.context(z, constants)``); constants give the condensers'
         design cooling-water flow and clean U when present.
     settings : CyclePerformanceSettings
-    cooling_water : dict, optional
-        Measured (inlet, outlet) cooling-water temperatures [K] by condenser id;
-        without them the forward model's values (design flow, configured inlet) are used.
 
     Returns
     -------
@@ -166,65 +178,44 @@ def cycle_kpis(
         Flat numbers [SI] and nested dicts ``section_efficiency``, ``heaters``,
         ``condensers``, ``extraction_flow``.
     """
+    flat = evaluate_kpis(kpi_definitions(fs, settings), ctx)
+    out: dict[str, Any] = {k: v for k, v in flat.items() if "." not in k}
     gens = [e for e in fs.equipment if isinstance(e, Generator)]
-    p_gen = sum(float(ctx.z[ctx.layout.extra(f"{g.id}.power")]) for g in gens)
-    p_shaft = sum(float(ctx.z[ctx.layout.extra(f"{g.id}.shaft_power")]) for g in gens)
-    pumps = [e for e in fs.equipment if isinstance(e, Pump)]
-    pump_power = sum(float(ctx.z[ctx.layout.extra(f"{e.id}.power")]) for e in pumps)
-    load = ctx.m(settings.load_stream) / settings.design_flow
-    aux = settings.auxiliary_fixed + settings.auxiliary_variable * load + pump_power
-    q_in = sum(e.duty(ctx) for e in fs.equipment if isinstance(e, Boiler | Reheater))
-    net = p_gen - aux
-    eta = p_gen / q_in
-    eta_net = net / q_in
-    eta_boiler = interpolate_boiler_efficiency(settings.boiler_efficiency, load)
-    out: dict[str, Any] = {
-        "load_fraction": load,
-        "gross_power": p_gen,
-        "shaft_power": p_shaft,
-        "auxiliary_power": aux,
-        "net_power": net,
-        "heat_input": q_in,
-        "gross_efficiency": eta,
-        "net_efficiency": eta_net,
-        "turbine_heat_rate": q_in / p_gen,
-        "turbine_heat_rate_kj_per_kwh": KJ_PER_KWH / eta,
-        "turbine_heat_rate_btu_per_kwh": BTU_PER_KWH / eta,
-        "net_heat_rate_kj_per_kwh": KJ_PER_KWH / eta_net,
-        "boiler_efficiency": eta_boiler,
-        "plant_heat_rate_kj_per_kwh": KJ_PER_KWH / (eta_net * eta_boiler),
-    }
-    sections: dict[str, float] = {}
+    out["shaft_power"] = sum(float(ctx.z[ctx.layout.extra(f"{g.id}.shaft_power")]) for g in gens)
+    out["auxiliary_power"] = out["gross_power"] - out["net_power"]
+    out["feed_pump_power"] = sum(float(ctx.z[ctx.layout.extra(f"{p}.power")]) for p in settings.feed_pumps)
+    out["boiler_efficiency"] = interpolate_boiler_efficiency(settings.boiler_efficiency, out["load_fraction"])
+    for name in ("turbine_heat_rate", "turbine_net_heat_rate", "plant_heat_rate", "net_plant_heat_rate"):
+        out[f"{name}_kj_per_kwh"] = KJ_PER_KWH * out[name]
+        out[f"{name}_btu_per_kwh"] = BTU_PER_KWH * out[name]
+
+    def keyed(prefix: str) -> dict[str, float]:
+        return {k.removeprefix(prefix): v for k, v in flat.items() if k.startswith(prefix)}
+
+    out["section_efficiency"] = keyed("section_efficiency.")
     for s in settings.sections:
-        sections[s.id] = section_efficiency(ctx, s.inlet, s.outlet)
         loss = next((e for e in fs.of_kind(ExhaustLoss) if e.port("inlet") == s.outlet), None)
         if loss is not None:
-            ueep = loss.port("outlet")
-            sections[f"{s.id}_UEEP"] = section_efficiency(ctx, s.inlet, ueep)
-            out["exhaust_quality_elep"] = quality(ctx, s.outlet)
-            out["exhaust_moisture_elep"] = 1.0 - out["exhaust_quality_elep"]
-            out["exhaust_quality_ueep"] = quality(ctx, ueep)
-            out["exhaust_moisture_ueep"] = 1.0 - out["exhaust_quality_ueep"]
-            out["exhaust_loss"] = ctx.h(ueep) - ctx.h(s.outlet)
-    out["section_efficiency"] = sections
-    out["heaters"] = {e.id: heater_kpis(ctx, e) for e in fs.of_kind(ClosedHeater) if isinstance(e, ClosedHeater)}
-    extraction = {hid: v["extraction_flow"] for hid, v in out["heaters"].items()}
-    for e in fs.of_kind(OpenHeater):
-        extraction[e.id] = ctx.m(e.port("steam_in"))
-    out["extraction_flow"] = extraction
+            out["exhaust_loss"] = ctx.h(loss.port("outlet")) - ctx.h(s.outlet)
+    heaters: dict[str, dict[str, float]] = {}
+    for e in fs.of_kind(ClosedHeater):
+        heaters[e.id] = {k: flat[f"heater_{k}.{e.id}"] for k in ("ttd", "dca", "temperature_rise")}
+        heaters[e.id]["extraction_flow"] = flat[f"extraction_flow.{e.id}"]
+    out["heaters"] = heaters
+    out["extraction_flow"] = keyed("extraction_flow.")
     condensers = {}
     for e in fs.of_kind(Condenser):
         assert isinstance(e, Condenser)
         k = ctx.constants.get(e.id, {})
-        if cooling_water and e.id in cooling_water:
-            cw_in, cw_out = cooling_water[e.id]
-        elif "cw_flow" in k:
-            cw_in = e.params["cooling_water_inlet_temperature"]
+        cw_in = k.get("cw_inlet", e.params["cooling_water_inlet_temperature"])
+        if "cw_flow" in k:
             cw_out = cw_in + e.duty(ctx) / (k["cw_flow"] * e.params["cooling_water_cp"])
         else:
-            cw_in = e.params["cooling_water_inlet_temperature"]
             cw_out = cw_in + e.params["cooling_water_rise"]
-        condensers[e.id] = condenser_kpis(ctx, e, cw_in, cw_out, k.get("u_clean"))
+        c = condenser_kpis(ctx, e, cw_in, cw_out, k.get("u_clean"))
+        for key in ("pressure", "itd", "ttd", "cleanliness"):
+            c[key] = flat[f"condenser_{key}.{e.id}"]
+        condensers[e.id] = c
     out["condensers"] = condensers
     return out
 
@@ -290,6 +281,11 @@ def kpi_definitions(
         aux = settings.auxiliary_fixed + settings.auxiliary_variable * load(ctx)
         return p_gen(ctx) - aux - sum(float(ctx.z[c]) for c in pump_cols)
 
+    fp_cols = tuple(lay.extra(f"{p.id}.power") for p in pumps if p.id in settings.feed_pumps)
+
+    def net_turbine(ctx: Context) -> float:  # ASME PTC 6: motor-driven feed-pump power deducted
+        return p_gen(ctx) - sum(float(ctx.z[c]) for c in fp_cols)
+
     def boiler_eff(ctx: Context) -> float:
         return interpolate_boiler_efficiency(settings.boiler_efficiency, load(ctx))
 
@@ -301,8 +297,15 @@ def kpi_definitions(
         KpiDef("heat_input", q_in, q_cols, "W"),
         KpiDef("gross_efficiency", lambda c: p_gen(c) / q_in(c), gen_cols + q_cols, "ratio"),
         KpiDef("net_efficiency", lambda c: net(c) / q_in(c), net_cols + q_cols, "ratio"),
+        # turbine-cycle gross heat rate: cycle heat input / generator output
         KpiDef("turbine_heat_rate", lambda c: q_in(c) / p_gen(c), gen_cols + q_cols, "ratio"),
-        KpiDef("plant_heat_rate", lambda c: q_in(c) / (net(c) * boiler_eff(c)), net_cols + q_cols, "ratio"),
+        # turbine-cycle net heat rate (ASME PTC 6): motor-driven feed-pump power deducted
+        KpiDef("turbine_net_heat_rate", lambda c: q_in(c) / net_turbine(c), gen_cols + fp_cols + q_cols, "ratio"),
+        # plant heat rate (fuel basis): turbine heat rate / boiler efficiency
+        KpiDef("plant_heat_rate", lambda c: q_in(c) / (p_gen(c) * boiler_eff(c)), gen_cols + q_cols + load_col,
+               "ratio"),
+        # net plant heat rate (fuel basis): (heat input / boiler efficiency) / (gross − auxiliaries)
+        KpiDef("net_plant_heat_rate", lambda c: q_in(c) / (net(c) * boiler_eff(c)), net_cols + q_cols, "ratio"),
     ]
 
     def section(inlet: str, outlet: str) -> Callable[[Context], float]:
