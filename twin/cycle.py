@@ -30,7 +30,7 @@ from typing import Any
 
 from twin.config import PlantConfig
 from twin.ingest.store import WindowStats
-from twin.model.solve import Operation, SolveError, solve_design
+from twin.model.solve import Operation, solve_design
 from twin.monitor import (
     DriftBank,
     DriftSettings,
@@ -180,20 +180,11 @@ class UnitCycle:
 
     # ------------------------------------------------------------------ set-up
     def _drift_bank(self) -> DriftBank:
-        """Drift charts on actual − expected, σ from the design-point KPI uncertainty."""
-        from twin.performance.redundancy import redundancy
-
+        """Drift charts on actual − expected; μ0 and σ learned from the unit's own steady windows."""
         mon = self.config.monitoring.drift
-        try:
-            rr = redundancy(self.config, self.reconciler)
-            sig = {name: u / 1.96 for name, ok, u, _ in rr.kpis if ok and math.isfinite(u) and u > 0}
-        except (SolveError, ValueError):
-            sig = {}
-        settings = {}
-        for k in DRIFT_KPIS:
-            if k in sig:
-                settings[k] = DriftSettings(0.0, sig[k], mon.ewma_lambda, mon.ewma_L, mon.cusum_k, mon.cusum_h)
-        return DriftBank(settings)
+        return DriftBank(learn=DRIFT_KPIS, params=DriftSettings(0.0, 1.0, mon.ewma_lambda, mon.ewma_L, mon.cusum_k,
+                                                                mon.cusum_h),
+                         reference_windows=mon.reference_windows)
 
     # ------------------------------------------------------------------ one window
     def run(self, window: WindowInput) -> CycleOutput:
@@ -294,8 +285,8 @@ class UnitCycle:
                     for tr in self.suspects.update(rec.suspects, t, steady=steady and suppress is None, tested=tested)]
         if len(self.drift):
             devs = {k: _value(kpis, k) - expected.get(k, math.nan) for k in DRIFT_KPIS}
-            self.drift.update({k: v for k, v in devs.items() if k in self.drift.statuses()},
-                              steady and suppress is None, t)
+            # non-overlapping windows only: the bank skips one that starts before the last used one ended
+            self.drift.update(devs, steady and suppress is None, t, window_start=t - self.window_seconds)
         return out
 
     def _alarm_views(self) -> dict[str, AlarmView]:

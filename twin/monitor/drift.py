@@ -10,6 +10,17 @@ The step functions (:func:`ewma_step`, :func:`cusum_step`,
 :func:`ewma_halfwidth`) work elementwise on arrays, so the same arithmetic
 serves one live chart and a vectorised Monte Carlo of many charts.
 
+Calibration (:class:`DriftBank` in learning mode): μ0 and σ come from the
+unit's own steady windows over a reference period (``reference_windows``
+non-overlapping windows): μ0 their mean (the as-built offset from expected),
+σ the window-to-window random part from the average moving range,
+σ = MR̄/1.128 (Montgomery's individuals chart), so slow changes and the
+instruments' systematic uncertainty do not enter it. Windows that overlap the
+last one used are skipped (overlapping windows are autocorrelated and
+shorten the in-control run length). The whole bank is one JSON-able value
+(:meth:`DriftBank.snapshot` / :meth:`DriftBank.restore`) and can be reset to
+learn again.
+
 References
 ----------
 .. [1] Montgomery, D. C. Introduction to Statistical Quality Control, chapter
@@ -99,6 +110,43 @@ def cusum_step(c_high, c_low, x, target: float, K: float):
     return np.maximum(0.0, x - target - K + c_high), np.maximum(0.0, target - K - x + c_low)
 
 
+#: d2 of the moving range of two observations: E|x_t − x_{t−1}| = 1.128 σ (Montgomery, from memory).
+D2_MOVING_RANGE = 1.128
+
+
+def reference_estimate(values):
+    """In-control mean μ0 and σ from a reference period, along the last axis.
+
+    μ0 = mean; σ = mean |x_t − x_{t−1}| / 1.128 (average moving range), the
+    window-to-window random part (Montgomery's individuals chart, from memory).
+
+    Parameters
+    ----------
+    values : array_like
+        Reference observations (unit of the KPI), at least two along the last axis.
+
+    Returns
+    -------
+    (mu0, sigma)
+    """
+    x = np.asarray(values, dtype=float)
+    if x.shape[-1] < 2:
+        raise ValueError(f"a reference period needs at least 2 observations, got {x.shape[-1]}")
+    return x.mean(axis=-1), np.abs(np.diff(x, axis=-1)).mean(axis=-1) / D2_MOVING_RANGE
+
+
+def chart_signals(ewma, count, c_high, c_low, target, sigma, lam: float, L: float, h: float):
+    """Which charts signal: (EWMA up, EWMA down, CUSUM up, CUSUM down), elementwise.
+
+    The EWMA limits are the time-varying ones of :func:`ewma_halfwidth` after
+    ``count`` observations; the CUSUM decision interval is ``h·σ``.
+    """
+    hw = np.where(np.asarray(count) > 0, ewma_halfwidth(sigma, lam, L, np.maximum(count, 1)), 0.0)
+    live = np.asarray(count) > 0
+    return (live & (ewma > target + hw), live & (ewma < target - hw),
+            np.asarray(c_high) > h * sigma, np.asarray(c_low) > h * sigma)
+
+
 @dataclass(frozen=True)
 class DriftStatus:
     """State of one KPI's drift charts after a window.
@@ -137,6 +185,7 @@ class DriftStatus:
     ewma_signal: str
     cusum_signal: str
     direction: str
+    phase: str = "monitoring"  # or "learning" (reference period not complete: no chart yet)
 
     @property
     def alarm(self) -> bool:
@@ -229,6 +278,21 @@ class DriftMonitor:
         self.cusum_low = 0.0
         self.last_time: float | None = None
 
+    def snapshot(self) -> dict:
+        """Parameters and statistics as a JSON-able dict (see :meth:`restore`)."""
+        return {"target": self.target, "sigma": self.sigma, "lam": self.lam, "L": self.L, "k": self.k,
+                "h": self.h, "count": self.count, "ewma": self.ewma, "cusum_high": self.cusum_high,
+                "cusum_low": self.cusum_low, "last_time": self.last_time}
+
+    @classmethod
+    def from_snapshot(cls, d: Mapping) -> DriftMonitor:
+        """A monitor in the state of a :meth:`snapshot`."""
+        m = cls(d["target"], d["sigma"], d["lam"], d["L"], d["k"], d["h"])
+        m.count, m.ewma = int(d["count"]), float(d["ewma"])
+        m.cusum_high, m.cusum_low = float(d["cusum_high"]), float(d["cusum_low"])
+        m.last_time = None if d.get("last_time") is None else float(d["last_time"])
+        return m
+
     def status(self, used: bool = False) -> DriftStatus:
         """Current statistics without feeding a window."""
         if self.count:
@@ -236,18 +300,10 @@ class DriftMonitor:
         else:
             hw = 0.0
         lo, hi = self.target - hw, self.target + hw
-        if self.count and self.ewma > hi:
-            e_sig = UP
-        elif self.count and self.ewma < lo:
-            e_sig = DOWN
-        else:
-            e_sig = NONE
-        if self.cusum_high > self.H:
-            c_sig = UP
-        elif self.cusum_low > self.H:
-            c_sig = DOWN
-        else:
-            c_sig = NONE
+        eu, ed, cu, cd = chart_signals(self.ewma, self.count, self.cusum_high, self.cusum_low, self.target,
+                                       self.sigma, self.lam, self.L, self.h)
+        e_sig = UP if eu else (DOWN if ed else NONE)
+        c_sig = UP if cu else (DOWN if cd else NONE)
         signals = {e_sig, c_sig} - {NONE}
         if not signals:
             direction = NONE
@@ -310,18 +366,35 @@ class DriftSettings:
     h: float = 5.0
 
 
+#: Layout version of :meth:`DriftBank.snapshot`.
+SNAPSHOT_VERSION = 1
+
+
 class DriftBank:
-    """Drift monitors for several KPIs, keyed by name.
+    """Drift monitors for several KPIs, keyed by name, optionally calibrated on the unit's own data.
 
     Parameters
     ----------
-    settings : mapping of str to DriftSettings or DriftMonitor
-        One entry per KPI.
+    settings : mapping of str to DriftSettings or DriftMonitor, optional
+        KPIs with a known target and σ (charts start at once).
+    learn : iterable of str
+        KPIs whose μ0 and σ are learned from the first ``reference_windows`` used
+        windows (:func:`reference_estimate`); until then their status has
+        ``phase = "learning"`` and no chart.
+    params : DriftSettings, optional
+        Chart parameters (λ, L, k, h) of the learned KPIs; its target and σ are not used.
+    reference_windows : int
+        Length of the reference period in used windows (≥ 2).
+    sigma_floor : float
+        Smallest σ a reference period may give (unit of the KPI); a flatter
+        reference (a frozen signal) keeps the KPI learning.
     """
 
-    def __init__(self, settings: Mapping[str, DriftSettings | DriftMonitor]) -> None:
+    def __init__(self, settings: Mapping[str, DriftSettings | DriftMonitor] | None = None, *,
+                 learn: Iterable[str] = (), params: DriftSettings | None = None, reference_windows: int = 100,
+                 sigma_floor: float = 1e-9) -> None:
         self.monitors: dict[str, DriftMonitor] = {}
-        for name, s in settings.items():
+        for name, s in (settings or {}).items():
             if isinstance(s, DriftMonitor):
                 self.monitors[name] = s
             elif isinstance(s, DriftSettings):
@@ -331,6 +404,16 @@ class DriftBank:
                     f"drift settings for {name!r} must be DriftSettings or DriftMonitor, "
                     f"got {type(s).__name__}"
                 )
+        if int(reference_windows) < 2:
+            raise ValueError(f"reference_windows must be at least 2, got {reference_windows!r}")
+        self.params = params or DriftSettings(0.0, 1.0)
+        DriftMonitor(0.0, 1.0, self.params.lam, self.params.L, self.params.k, self.params.h)  # validates them
+        self.reference_windows = int(reference_windows)
+        self.sigma_floor = float(sigma_floor)
+        self.learned = tuple(learn)
+        self.reference: dict[str, list[float]] = {n: [] for n in self.learned if n not in self.monitors}
+        self.last_end: float | None = None  # end of the last window used [s]
+        self.skipped_overlapping = 0  # steady windows left out because they overlap the last one used
 
     def __getitem__(self, name: str) -> DriftMonitor:
         try:
@@ -340,26 +423,112 @@ class DriftBank:
                 f"no drift monitor named {name!r}; known: {sorted(self.monitors)}"
             ) from None
 
+    def names(self) -> list[str]:
+        """Every KPI of the bank, learning or monitoring."""
+        return [*self.monitors, *(n for n in self.reference if n not in self.monitors)]
+
     def __iter__(self):
-        return iter(self.monitors)
+        return iter(self.names())
 
     def __len__(self) -> int:
-        return len(self.monitors)
+        return len(self.names())
+
+    def _learning_status(self, name: str, used: bool) -> DriftStatus:
+        nan = math.nan
+        return DriftStatus(used, len(self.reference[name]), nan, nan, nan, nan, nan, nan, NONE, NONE, NONE,
+                           "learning")
 
     def update(
-        self, values: Mapping[str, float], steady: bool, time: float | None = None
+        self, values: Mapping[str, float], steady: bool, time: float | None = None,
+        window_start: float | None = None,
     ) -> dict[str, DriftStatus]:
-        """Feed one window to every monitor; a KPI absent from ``values`` counts as NaN."""
-        return {
-            name: m.update(values.get(name, math.nan), steady, time)
-            for name, m in self.monitors.items()
-        }
+        """Feed one window to every chart; a KPI absent from ``values`` counts as NaN.
+
+        Parameters
+        ----------
+        values : mapping
+            KPI name → value of the window (unit of the KPI).
+        steady : bool
+            Whether the window was steady (others are ignored).
+        time : float, optional
+            Window end [s].
+        window_start : float, optional
+            Window start [s]; a window starting before the end of the last used one
+            overlaps it and is skipped (counted in :attr:`skipped_overlapping`).
+        """
+        use = bool(steady)
+        if use and window_start is not None and self.last_end is not None and window_start < self.last_end - 1e-9:
+            use = False
+            self.skipped_overlapping += 1
+        if use and time is not None and any(math.isfinite(float(values.get(n, math.nan))) for n in self.names()):
+            self.last_end = float(time)
+        out = {name: m.update(values.get(name, math.nan), use, time) for name, m in self.monitors.items()}
+        for name in [n for n in self.reference if n not in self.monitors]:
+            x = float(values.get(name, math.nan))
+            ref = self.reference[name]
+            if use and math.isfinite(x):
+                ref.append(x)
+            if len(ref) >= self.reference_windows:
+                mu, sig = reference_estimate(ref)
+                if float(sig) > self.sigma_floor:
+                    p = self.params
+                    self.monitors[name] = DriftMonitor(float(mu), float(sig), p.lam, p.L, p.k, p.h)
+                    self.monitors[name].last_time = None if time is None else float(time)
+                    del self.reference[name]
+                    out[name] = self.monitors[name].status(used=use and math.isfinite(x))
+                    continue
+                del ref[: len(ref) - self.reference_windows + 1]  # too flat: keep a sliding reference
+            out[name] = self._learning_status(name, use and math.isfinite(x))
+        return out
 
     def statuses(self) -> dict[str, DriftStatus]:
-        """Current statistics of every monitor, for metrics."""
-        return {name: m.status() for name, m in self.monitors.items()}
+        """Current statistics of every KPI, for metrics (learning ones with ``phase = "learning"``)."""
+        out = {name: m.status() for name, m in self.monitors.items()}
+        out.update({n: self._learning_status(n, False) for n in self.reference if n not in self.monitors})
+        return out
 
-    def reset(self, names: Iterable[str] | None = None) -> None:
-        """Restart the named monitors (all when ``names`` is None)."""
-        for name in self.monitors if names is None else names:
-            self[name].reset()
+    def reset(self, names: Iterable[str] | None = None, *, relearn: bool = False) -> None:
+        """Restart the named charts (all when ``names`` is None).
+
+        ``relearn=True`` drops their μ0 and σ too: a new reference period starts
+        (for example after an overhaul changed the as-built offset).
+        """
+        for name in list(self.names()) if names is None else list(names):
+            if relearn:
+                if name not in self.monitors and name not in self.reference:
+                    raise KeyError(f"no drift chart named {name!r}; known: {sorted(self.names())}")
+                self.monitors.pop(name, None)
+                self.reference[name] = []
+            elif name in self.monitors:
+                self.monitors[name].reset()
+            elif name in self.reference:
+                self.reference[name] = []
+            else:
+                raise KeyError(f"no drift chart named {name!r}; known: {sorted(self.names())}")
+        if names is None:
+            self.last_end = None
+
+    def snapshot(self) -> dict:
+        """The whole bank as one JSON-able value (charts, reference periods, last window used)."""
+        p = self.params
+        return {
+            "version": SNAPSHOT_VERSION,
+            "params": {"lam": p.lam, "L": p.L, "k": p.k, "h": p.h},
+            "reference_windows": self.reference_windows,
+            "monitors": {n: m.snapshot() for n, m in self.monitors.items()},
+            "reference": {n: list(v) for n, v in self.reference.items()},
+            "last_end": self.last_end,
+            "skipped_overlapping": self.skipped_overlapping,
+        }
+
+    def restore(self, d: Mapping) -> None:
+        """Resume from a :meth:`snapshot`; ValueError for another layout version."""
+        if d.get("version") != SNAPSHOT_VERSION:
+            raise ValueError(f"drift snapshot version {d.get('version')!r}; expected {SNAPSHOT_VERSION}")
+        self.monitors = {n: DriftMonitor.from_snapshot(m) for n, m in d["monitors"].items()}
+        self.reference = {n: [float(x) for x in v] for n, v in d["reference"].items()}
+        for n in self.learned:
+            if n not in self.monitors and n not in self.reference:
+                self.reference[n] = []
+        self.last_end = None if d.get("last_end") is None else float(d["last_end"])
+        self.skipped_overlapping = int(d.get("skipped_overlapping", 0))
