@@ -110,12 +110,18 @@ def test_fixed_pressure_unit_against_a_sliding_plant_file(setup: Any, load: floa
     assert hp == pytest.approx(d.expected["section_efficiency.HP"], abs=2e-4)
 
 
-def test_fixed_pressure_unit_against_a_fixed_plant_file(setup: Any) -> None:
-    """The same fixed-pressure truth against its own operating mode: nothing to explain."""
+@pytest.mark.parametrize(("truth_mode", "control"), [
+    ("fixed", PressureControl("fixed", 16.2e6)),
+    ("fixed", PressureControl("schedule", 16.2e6, ((0.2, 16.2e6), (1.2, 16.2e6)))),
+    # a schedule below what the HP group swallows leaves the valves wide open: sliding
+    ("sliding", PressureControl("schedule", 16.2e6, ((0.2, 5e6), (1.2, 5e6)))),
+])
+def test_a_unit_against_its_own_operating_mode(setup: Any, truth_mode: str, control: PressureControl) -> None:
+    """Forward-model truth at 70 % load in the plant file's own pressure operation: nothing to explain."""
     _, _, em = setup
     fs, op, design = demo_design()
-    fixed = ExpectedModel(fs, op, design, em.settings, PressureControl("fixed", 16.2e6))
-    d = _split(setup, _reconciled(setup, load=0.7, mode="fixed"), fixed)
+    fixed = ExpectedModel(fs, op, design, em.settings, control)
+    d = _split(setup, _reconciled(setup, load=0.7, mode=truth_mode), fixed)
     assert abs(d.total) * 3600.0 < 0.05  # [kJ/kWh]
     assert all(abs(v) * 3600.0 < 0.05 for v in d.by_cause.values())
 

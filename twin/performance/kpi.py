@@ -272,7 +272,7 @@ def kpi_definitions(
         return sum(float(ctx.z[c]) for c in gen_cols)
 
     def q_in(ctx: Context) -> float:
-        return sum(e.duty(ctx) for e in heat)  # type: ignore[attr-defined]
+        return sum(e.duty(ctx) for e in heat)
 
     def load(ctx: Context) -> float:
         return ctx.m(settings.load_stream) / settings.design_flow
@@ -334,17 +334,14 @@ def kpi_definitions(
         assert isinstance(e, ClosedHeater)
         ti, to, st, do = e.port("tube_in"), e.port("tube_out"), e.port("steam_in"), e.port("drain_out")
         defs += [
-            KpiDef(f"heater_ttd.{e.id}", lambda c, st=st, to=to: c.water.T_sat(c.p(st)) - c.ph(to).T,
-                   _stream_cols(fs, [st], "p") + _stream_cols(fs, [to], "ph"), "K"),
-            KpiDef(f"heater_dca.{e.id}", lambda c, do=do, ti=ti: c.ph(do).T - c.ph(ti).T,
-                   _stream_cols(fs, [do, ti], "ph"), "K"),
-            KpiDef(f"heater_temperature_rise.{e.id}", lambda c, ti=ti, to=to: c.ph(to).T - c.ph(ti).T,
-                   _stream_cols(fs, [to, ti], "ph"), "K"),
-            KpiDef(f"extraction_flow.{e.id}", lambda c, st=st: c.m(st), _stream_cols(fs, [st], "m"), "kg/s"),
+            KpiDef(f"heater_ttd.{e.id}", _ttd(st, to), _stream_cols(fs, [st], "p") + _stream_cols(fs, [to], "ph"), "K"),
+            KpiDef(f"heater_dca.{e.id}", _rise(ti, do), _stream_cols(fs, [do, ti], "ph"), "K"),
+            KpiDef(f"heater_temperature_rise.{e.id}", _rise(ti, to), _stream_cols(fs, [to, ti], "ph"), "K"),
+            KpiDef(f"extraction_flow.{e.id}", _flow(st), _stream_cols(fs, [st], "m"), "kg/s"),
         ]
     for e in fs.of_kind(OpenHeater):
         st = e.port("steam_in")
-        defs.append(KpiDef(f"extraction_flow.{e.id}", lambda c, st=st: c.m(st), _stream_cols(fs, [st], "m"), "kg/s"))
+        defs.append(KpiDef(f"extraction_flow.{e.id}", _flow(st), _stream_cols(fs, [st], "m"), "kg/s"))
 
     for e in fs.of_kind(Condenser):
         assert isinstance(e, Condenser)
@@ -370,12 +367,30 @@ def kpi_definitions(
 
         cw_cols = tuple(cw) if cw is not None else ()
         defs += [
-            KpiDef(f"condenser_pressure.{e.id}", lambda c, ex=ex: c.p(ex), _stream_cols(fs, [ex], "p"), "Pa"),
+            KpiDef(f"condenser_pressure.{e.id}", _pressure(ex), _stream_cols(fs, [ex], "p"), "Pa"),
             KpiDef(f"condenser_itd.{e.id}", cond("itd"), _stream_cols(fs, [ex], "p") + cw_cols[:1], "K"),
             KpiDef(f"condenser_ttd.{e.id}", cond("ttd"), _stream_cols(fs, [ex], "p") + cw_cols[1:], "K"),
             KpiDef(f"condenser_cleanliness.{e.id}", cond("cleanliness"), duty_cols + cw_cols, "ratio"),
         ]
     return defs
+
+
+def _ttd(steam: str, out: str) -> Callable[[Context], float]:
+    """Tsat(p_steam) − T_out [K]."""
+    return lambda c: c.water.T_sat(c.p(steam)) - c.ph(out).T
+
+
+def _rise(cold: str, warm: str) -> Callable[[Context], float]:
+    """T_warm − T_cold [K]."""
+    return lambda c: c.ph(warm).T - c.ph(cold).T
+
+
+def _flow(stream: str) -> Callable[[Context], float]:
+    return lambda c: c.m(stream)
+
+
+def _pressure(stream: str) -> Callable[[Context], float]:
+    return lambda c: c.p(stream)
 
 
 def evaluate_kpis(defs: Sequence[KpiDef], ctx: Context) -> dict[str, float]:
