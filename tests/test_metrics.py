@@ -48,6 +48,7 @@ ALLOWED_LABELS = {
     "unit_id", "section", "heater", "condenser", "cause", "tag", "stream", "alarm", "level",
     "state", "status", "reason", "kpi", "point", "le",  # le: histogram buckets
     "version", "formulation",  # twin_build_info only
+    "currency",  # the plant file's fuel-price currency: one value per unit
 }
 
 WINDOW_END = 1_700_000_000.0  # Unix time [s], 2023-11-14T22:13:20Z
@@ -114,6 +115,8 @@ def full_result(window_end: float = WINDOW_END, efficiency: float = 0.4) -> Cycl
         heat_rate_deviation=0.05,
         heat_rate_deviation_by_cause={"condenser_pressure": 0.03, "main_steam_temperature": 0.005,
                                       "unaccounted": 0.015},
+        heat_rate_deviation_fuel_power_by_cause={"condenser_pressure": 1.2e7},
+        heat_rate_deviation_cost_by_cause={"condenser_pressure": 240.0}, currency="EUR",
         alarms={
             "exhaust_moisture": AlarmView("exhaust_moisture", "active", "warning", 0.105, True),
             "gross_efficiency_margin": AlarmView("gross_efficiency_margin", "pending", "", 0.4, False),
@@ -210,6 +213,8 @@ twin_expected_condenser_pressure_pascals{condenser="main",unit_id="demo-u1"} 600
 twin_heat_rate_deviation_ratio{unit_id="demo-u1"} 0.05
 twin_heat_rate_deviation_by_cause_ratio{cause="condenser_pressure",unit_id="demo-u1"} 0.03
 twin_heat_rate_deviation_by_cause_ratio{cause="unaccounted",unit_id="demo-u1"} 0.015
+twin_heat_rate_deviation_fuel_power_watts{cause="condenser_pressure",unit_id="demo-u1"} 1.2e+07
+twin_heat_rate_deviation_cost_per_hour{cause="condenser_pressure",currency="EUR",unit_id="demo-u1"} 240.0
 twin_alarm_state{alarm="exhaust_moisture",state="active",unit_id="demo-u1"} 1.0
 twin_alarm_state{alarm="exhaust_moisture",state="normal",unit_id="demo-u1"} 0.0
 twin_alarm_active{alarm="exhaust_moisture",level="warning",unit_id="demo-u1"} 1.0

@@ -317,11 +317,11 @@ class UnitCycle:
             "unit_id": self.config.unit.id,
             "steady_windows": self._steady_windows,
             "warm_start": None if z is None else [float(v) if math.isfinite(v) else None for v in z],
-            "steady": self.steady.snapshot() if self.steady is not None and hasattr(self.steady, "snapshot") else None,
+            "steady": self.steady.snapshot() if self.steady is not None else None,
             "moisture_alarm": self.moisture_alarm.snapshot(),
             "efficiency_alarms": {k: a.snapshot() for k, a in self.efficiency_alarms.items()},
             "suspects": self.suspects.snapshot(),
-            "drift": self.drift.snapshot() if hasattr(self.drift, "snapshot") else None,
+            "drift": self.drift.snapshot(),
         }
 
     def restore(self, snap: Mapping[str, Any]) -> None:
@@ -333,14 +333,14 @@ class UnitCycle:
         self._steady_windows = int(snap.get("steady_windows", 0))
         z = snap.get("warm_start")
         self.reconciler.warm_start = None if z is None else [math.nan if v is None else float(v) for v in z]
-        if snap.get("steady") is not None and self.steady is not None and hasattr(self.steady, "restore"):
+        if snap.get("steady") is not None and self.steady is not None:
             self.steady.restore(snap["steady"])
         self.moisture_alarm.restore(snap["moisture_alarm"])
         for k, a in self.efficiency_alarms.items():
             if k in snap.get("efficiency_alarms", {}):
                 a.restore(snap["efficiency_alarms"][k])
         self.suspects.restore(snap["suspects"])
-        if snap.get("drift") is not None and hasattr(self.drift, "restore"):
+        if snap.get("drift") is not None:
             self.drift.restore(snap["drift"])
 
 

@@ -361,6 +361,10 @@ def _deviation(f: _Families, r: CycleResult) -> None:
     f.gauge("twin_heat_rate_deviation_ratio", "Turbine-cycle gross heat rate, actual - expected at the present load and boundary conditions, dimensionless (x3600 = kJ/kWh)", r.heat_rate_deviation)
     for cause, value in r.heat_rate_deviation_by_cause.items():
         f.gauge("twin_heat_rate_deviation_by_cause_ratio", "Turbine-cycle gross heat-rate deviation attributed to a cause, dimensionless; causes and 'unaccounted' of the same window sum to the total", value, cause=cause)
+    for cause, value in r.heat_rate_deviation_fuel_power_by_cause.items():
+        f.gauge("twin_heat_rate_deviation_fuel_power_watts", "Extra fuel power (boiler heat input basis) a heat-rate deviation cause costs at the present output, W; negative is a gain", value, cause=cause)
+    for cause, value in r.heat_rate_deviation_cost_by_cause.items():
+        f.gauge("twin_heat_rate_deviation_cost_per_hour", "Fuel cost per hour of a heat-rate deviation cause at the configured fuel price, in the configured currency; negative is a saving", value, cause=cause, currency=r.currency or "none")
 
 
 def _alarms(f: _Families, r: CycleResult) -> None:
