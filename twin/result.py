@@ -55,13 +55,37 @@ class TagResult:
     flagged_vdi: bool = False  # |z| > 1.96 (VDI 2048 per-measurement criterion)
 
 
+#: Status values of an :class:`Estimate` (bounded set, usable as a metric label).
+ESTIMATE_STATUSES = (
+    "reconciled",  # the instruments determine it (through the balances)
+    "model_based",  # published, but its instruments are invalid: the model relations carry it
+    "unavailable",  # unobservable or not computed: no value
+)
+
+
 @dataclass(frozen=True)
 class Estimate:
-    """A derived value with its expanded uncertainty (≈95 %); ``available`` false means unobservable."""
+    """A derived value with its expanded uncertainty (≈95 %); ``available`` false means unobservable.
+
+    ``status`` is one of :data:`ESTIMATE_STATUSES` (default: ``reconciled`` when
+    available, else ``unavailable``); a ``model_based`` estimate is available (it has
+    a value and an uncertainty) but is carried by the model relations rather than the
+    instruments. ``soft_share`` is the share of its variance that comes from the soft
+    model relations' pseudo-measurements rather than from instruments [-] (NaN when
+    not computed).
+    """
 
     value: float = NAN
     uncertainty: float = NAN
     available: bool = False
+    status: str = ""
+    soft_share: float = NAN
+
+    def __post_init__(self) -> None:
+        if not self.status:
+            object.__setattr__(self, "status", "reconciled" if self.available else "unavailable")
+        elif self.status not in ESTIMATE_STATUSES:
+            raise ValueError(f"Estimate status must be one of {ESTIMATE_STATUSES}, got {self.status!r}")
 
 
 @dataclass(frozen=True)

@@ -36,6 +36,12 @@ def _num(x: float) -> float | None:
     return float(x) + 0.0 if isinstance(x, float | int) and math.isfinite(x) else None  # + 0.0: no -0.0
 
 
+def _estimate(e: Any) -> dict[str, Any]:
+    """One estimate: value, U95, status (reconciled / model_based / unavailable), soft-relation share."""
+    return {"value": _num(e.value), "uncertainty_95": _num(e.uncertainty), "available": e.available,
+            "status": e.status, "soft_share": _num(e.soft_share)}
+
+
 def report(config: Any, vf: Any, rec: Any, reconciler: Any) -> dict[str, Any]:
     """The reconciliation as a JSON-ready dict (tags in engineering units, KPIs in SI)."""
     sensors = {s.tag: s for s in config.sensors}
@@ -72,12 +78,19 @@ def report(config: Any, vf: Any, rec: Any, reconciler: Any) -> dict[str, Any]:
         "depends_on": list(rec.depends_on),
         "input_errors": vf.errors,
         "tags": tags,
-        "unmeasured": {k: {"value": _num(e.value), "uncertainty_95": _num(e.uncertainty), "available": e.available}
-                       for k, e in rec.unmeasured.items()},
-        "kpis": {k: {"value": _num(e.value), "uncertainty_95": _num(e.uncertainty), "available": e.available}
-                 for k, e in rec.kpis.items()},
+        "unmeasured": {k: _estimate(e) for k, e in rec.unmeasured.items()},
+        "kpis": {k: _estimate(e) for k, e in rec.kpis.items()},
         "kpi_units": {d.name: d.unit for d in reconciler.kpi_defs},
     }
+
+
+def _share(e: dict[str, Any]) -> str:
+    return "-" if e["soft_share"] is None else f"{e['soft_share']:4.0%}"
+
+
+def _marker(e: dict[str, Any]) -> str:
+    return "  MODEL-BASED (its instruments are invalid: the model relations carry it)" \
+        if e["status"] == "model_based" else ""
 
 
 def _print_text(r: dict[str, Any]) -> None:
@@ -104,20 +117,23 @@ def _print_text(r: dict[str, Any]) -> None:
     w(f"\nsuspect instruments: {', '.join(r['suspects']) or 'none'}\n")
     if r["model_suspects"]:
         w(f"model relations disagreeing with the data: {', '.join(r['model_suspects'])}\n")
-    w("\nunmeasured estimates (±95 %)\n")
+    w("\nz = adjustment / σ(adjustment), adjustment = measured − reconciled; '-': not redundant (not tested)\n")
+    w("\nunmeasured estimates (±95 %; soft: share of the variance from model relations)\n")
     for k, e in r["unmeasured"].items():
         if e["available"]:
             scale, unit = (1e-3, "kJ/kg") if k.endswith("enthalpy") else (1.0, "")
-            w(f"  {k:<34} {e['value'] * scale:12.4f} ± {e['uncertainty_95'] * scale:.4f} {unit}\n")
+            w(f"  {k:<34} {e['value'] * scale:12.4f} ± {e['uncertainty_95'] * scale:.4f} {unit:<6} "
+              f"soft {_share(e)}{_marker(e)}\n")
         else:
             w(f"  {k:<34} unobservable\n")
-    w("\nKPIs (±95 %)\n")
+    w("\nKPIs (±95 %; soft: share of the variance from model relations)\n")
     for k, e in r["kpis"].items():
         scale, unit = _KPI_DISPLAY.get(r["kpi_units"].get(k, ""), (1.0, ""))
         if k.endswith("heat_rate"):
             scale, unit = 3600.0, "kJ/kWh"
         if e["available"]:
-            w(f"  {k:<36} {e['value'] * scale:12.4f} ± {e['uncertainty_95'] * scale:.4f} {unit}\n")
+            w(f"  {k:<36} {e['value'] * scale:12.4f} ± {e['uncertainty_95'] * scale:.4f} {unit:<6} "
+              f"soft {_share(e)}{_marker(e)}\n")
         else:
             w(f"  {k:<36} unavailable (unobservable)\n")
     w(f"\nresults depend on the model relations: {', '.join(r['depends_on'])}\n")

@@ -1,9 +1,11 @@
 """The plant's reconciliation problem: flowsheet balances, sensors and soft model relations.
 
 Variables (one vector ``z``): the flowsheet's ``[m, p, h]`` per stream and
-equipment powers; one efficiency factor per wet expansion line (stage groups
-with a Baumann factor, by section: each group's dry efficiency is its design
-value times the factor); the cooling-water inlet and outlet
+equipment powers; efficiency level factors of the expansion lines (stage groups
+with a Baumann factor; each group's dry efficiency is its design value times its
+factor): one of its own for each directly measured group (superheated inlet and
+outlet with pressure and temperature sensors: ``<group>_group``) and one shared
+by the section's other groups (``<section>_line``); the cooling-water inlet and outlet
 temperature of each condenser; one variable per sensor (its true value);
 one variable per soft relation (its residual).
 
@@ -15,10 +17,12 @@ Constraints:
   temperature ``T(p, h)`` (``T_sat(p)`` when wet), an equipment power, or a
   condenser's cooling-water temperature — hard;
 - model relations that carry their own uncertainty (VDI 2048 practice; see
-  the domain notes): the wet LP expansion line (design shape, one level factor
-  per line, Baumann correction), the exhaust-loss curve, the generator loss curve,
-  pressure-drop fractions and pump efficiencies. Each is written
-  ``r_j(z) = e_j`` with a pseudo-measurement ``e_j = 0 ± σ_j``.
+  the domain notes): the wet LP expansion line (design shape around the line's
+  level factor, Baumann correction), a weak prior on each level factor, the
+  exhaust-loss curve, the generator loss curve, pressure-drop fractions and pump
+  efficiencies. Each is written ``r_j(z) = e_j`` with a pseudo-measurement
+  ``e_j = 0 ± σ_j``, σ_j a 95 % half-width / 1.96. A directly measured group's
+  expansion relation is hard (its own factor absorbs any loss there).
 
 The sensor variables and the pseudo-measurements are the measured variables
 of the weighted least-squares problem; everything else is unmeasured and
@@ -77,39 +81,77 @@ class SoftRelation:
     unit: str
 
 
-def soft_relation_sigmas(fs: Flowsheet, design: HeatBalance) -> dict[str, tuple[float, str]]:
+#: Soft-relation allowances, each a half-width of the 95 % interval (σ = U95 / 1.96);
+#: sized by the coverage Monte Carlo (tests/test_lp_coverage_mc.py) against truths
+#: outside the model family. Shape of a wet expansion line: a group's efficiency may
+#: depart from the line's common level by this much [points of efficiency, as a ratio].
+EXPANSION_SHAPE_U95 = 0.03
+#: Level factor of an expansion line (or of a directly measured group) against its
+#: design value: a weak prior that keeps the line defined when its instruments are lost
+#: (the KPIs it carries are then marked ``model_based``) [-].
+LINE_LEVEL_U95 = 0.10
+#: Exhaust-loss curve: fraction of the design-point loss [-].
+EXHAUST_LOSS_U95 = 0.25
+
+
+def line_keys(fs: Flowsheet, measured_groups: frozenset[str] = frozenset()) -> dict[str, tuple[str, tuple[str, ...]]]:
+    """Level factors of the expansion lines: ``{key: (section, groups)}``.
+
+    A directly measured group (see :func:`directly_measured_groups`) has its own,
+    ``<group>_group``; the other wet-rule groups of a section share ``<section>_line``.
+    """
+    out: dict[str, tuple[str, tuple[str, ...]]] = {}
+    for e in fs.of_kind(TurbineGroup):
+        if e.params["baumann_factor"] > 0:
+            section = str(e.params["section"])
+            key = f"{e.id}_group" if e.id in measured_groups else f"{section}_line"
+            sec, groups = out.get(key, (section, ()))
+            out[key] = (sec, (*groups, e.id))
+    return out
+
+
+def soft_relation_sigmas(fs: Flowsheet, design: HeatBalance,
+                         measured_groups: frozenset[str] = frozenset()) -> dict[str, tuple[float, str]]:
     """Default standard uncertainties of the soft model relations, from the design state.
 
-    Returns ``{relation name: (sigma, unit)}``. Values are practice-based
-    allowances (``# common practice``), not sourced constants:
+    Returns ``{relation name: (sigma, unit)}``. Every value is a 95 % half-width
+    divided by 1.96; they are practice-based allowances (``# common practice``),
+    the LP ones sized by a coverage Monte Carlo, not sourced constants:
 
-    - wet expansion line: one point of efficiency (1 % of the group's isentropic drop);
-    - exhaust-loss curve: 25 % of the design loss (95 %);
-    - generator and mechanical losses: 10 % of the design losses (95 %);
-    - pressure drops (pipes, reheater, heater tubes): 50 % of the design drop (95 %) + 1 kPa;
+    - wet expansion line shape: :data:`EXPANSION_SHAPE_U95` points of efficiency (95 %)
+      of each group's isentropic drop; a directly measured group's expansion is a hard
+      relation with a free level factor instead;
+    - line level factors (``<key>.level``): :data:`LINE_LEVEL_U95` around 1 (95 %);
+    - exhaust-loss curve: :data:`EXHAUST_LOSS_U95` of the design loss (95 %) + 980 J/kg;
+    - generator and mechanical losses: 10 % of the design losses + 20 kW (95 %);
+    - pressure drops (pipes, reheater, heater tubes): 50 % of the design drop + 2 kPa (95 %);
     - pump isentropic efficiency: 5 points (95 %); pump discharge rule: 2 % (95 %);
     - supply pressure of a boundary inflow (make-up): 50 % of its design value (95 %).
     """
     ctx = design.context()
     out: dict[str, tuple[float, str]] = {}
+    for key in line_keys(fs, measured_groups):
+        out[f"{key}.level"] = (LINE_LEVEL_U95 / K95, "-")
     for e in fs.equipment:
         if isinstance(e, TurbineGroup) and e.params["baumann_factor"] > 0:
+            if e.id in measured_groups:
+                continue
             a, b = e.port("inlet"), e.port("outlet")
             si = ctx.ph(a)
             drop_s = si.h - ctx.water.h_ps(ctx.p(b), si.s)
-            out[e.relation("expansion")] = (0.01 * drop_s, "J/kg")
+            out[e.relation("expansion")] = (EXPANSION_SHAPE_U95 * drop_s / K95, "J/kg")
         elif isinstance(e, ExhaustLoss):
             el = ctx.h(e.port("outlet")) - ctx.h(e.port("inlet"))
-            out[e.relation("curve")] = (0.25 * abs(el) / K95 + 500.0, "J/kg")
+            out[e.relation("curve")] = ((EXHAUST_LOSS_U95 * abs(el) + 980.0) / K95, "J/kg")
         elif isinstance(e, Generator):
             loss, _ = e.losses(float(design.z[fs.layout.extra(f"{e.id}.power")]))
-            out[e.relation("losses")] = (0.10 * loss / K95 + 1e4, "W")
+            out[e.relation("losses")] = ((0.10 * loss + 2e4) / K95, "W")
         elif isinstance(e, Pipe | Reheater):
             drop = ctx.p(e.port("inlet")) - ctx.p(e.port("outlet"))
-            out[e.relation("pressure_drop")] = (0.5 * abs(drop) / K95 + 1e3, "Pa")
+            out[e.relation("pressure_drop")] = ((0.5 * abs(drop) + 2e3) / K95, "Pa")
         elif isinstance(e, ClosedHeater):
             drop = abs(e.params["tube_pressure_drop"])
-            out[e.relation("tube_pressure_drop")] = (0.5 * drop / K95 + 1e3, "Pa")
+            out[e.relation("tube_pressure_drop")] = ((0.5 * drop + 2e3) / K95, "Pa")
         elif isinstance(e, Source):
             # the supply pressure of a boundary inflow is known roughly (its design value)
             p = ctx.p(e.port("outlet"))
@@ -169,6 +211,48 @@ def sensor_temperature(ctx: Any, stream: str) -> tuple[float, float, float]:
     return T, dT_dp, dT_dh
 
 
+def _same_state(fs: Flowsheet, stream: str) -> set[str]:
+    """Streams at the same pressure and enthalpy as ``stream`` (joined by splitters)."""
+    group, todo = {stream}, [stream]
+    splitters = [e for e in fs.equipment if e.kind == "splitter"]
+    while todo:
+        s = todo.pop()
+        for e in splitters:
+            ends = [e.port("inlet"), *e.port_list("outlets")]
+            if s in ends:
+                for t in ends:
+                    if t not in group:
+                        group.add(t)
+                        todo.append(t)
+    return group
+
+
+def directly_measured_groups(fs: Flowsheet, sensors: Sequence[Any], design: HeatBalance) -> frozenset[str]:
+    """Wet-rule turbine groups whose efficiency the instruments give directly.
+
+    A group qualifies when its inlet and outlet are superheated at the design point
+    and each carries a pressure and a temperature sensor (on the stream itself or on
+    a branch of it at the same state): then ``T(p, h)`` fixes both enthalpies and the
+    group's efficiency is measured, so it gets a level factor of its own instead of
+    sharing the wet line's (a loss elsewhere on the line is then not spread over it).
+    """
+    ctx = design.context()
+    out = set()
+    for e in fs.of_kind(TurbineGroup):
+        if e.params["baumann_factor"] <= 0:
+            continue
+        ok = True
+        for port in ("inlet", "outlet"):
+            st = ctx.ph(e.port(port))
+            states = _same_state(fs, e.port(port))
+            have = {s.quantity for s in sensors if getattr(s, "stream", None) in states}
+            superheated = not st.two_phase and st.x > 1.0  # equivalent quality above 1
+            ok &= superheated and {"pressure", "temperature"} <= have
+        if ok:
+            out.add(e.id)
+    return frozenset(out)
+
+
 class PlantSystem:
     """Constraints of the plant's reconciliation (a :class:`twin.reconcile.ConstraintSystem`).
 
@@ -190,16 +274,21 @@ class PlantSystem:
         self.design = design
         lay = fs.layout
         n = lay.n_vars
-        # one efficiency factor per wet expansion line (section): η_i = factor · η_i,design
-        self.line_columns: dict[str, int] = {}
+        # efficiency level factors, η_i = factor · η_i,design: one per directly measured
+        # group of an expansion line (``<group>_group``) and one shared by the section's
+        # other (wet) groups (``<section>_line``)
         self.constants: dict[str, dict] = {k: dict(v) for k, v in design.constants.items()}
-        for e in fs.of_kind(TurbineGroup):
-            if e.params["baumann_factor"] > 0:
-                key = f"{e.params['section']}_line"
-                if key not in self.line_columns:
-                    self.line_columns[key] = n
-                    n += 1
-                self.constants.setdefault(e.id, {})["efficiency_factor_column"] = self.line_columns[key]
+        self.measured_groups = directly_measured_groups(fs, sensors, design)
+        #: ``{key: (section, groups)}`` of every level factor (``<section>_line``, ``<group>_group``)
+        self.line_groups = line_keys(fs, self.measured_groups)
+        self.line_columns: dict[str, int] = {}
+        for key, (_, groups) in self.line_groups.items():
+            self.line_columns[key] = n
+            n += 1
+            for g in groups:
+                self.constants.setdefault(g, {})["efficiency_factor_column"] = self.line_columns[key]
+        # a directly measured group's expansion relation is hard (its factor is free)
+        self.hard_relations = frozenset(f"{g}.expansion" for g in self.measured_groups)
         self.cooling_water_columns: dict[str, tuple[int, int]] = {}
         for e in fs.of_kind(Condenser):
             self.cooling_water_columns[e.id] = (n, n + 1)
@@ -211,7 +300,7 @@ class PlantSystem:
                 self.sensors.append(b)
                 n += 1
         self.sensor_by_tag = {b.tag: b for b in self.sensors}
-        sig = soft if soft is not None else soft_relation_sigmas(fs, design)
+        sig = soft if soft is not None else soft_relation_sigmas(fs, design, self.measured_groups)
         self.soft: list[SoftRelation] = []
         for name, (sigma, unit) in sig.items():
             self.soft.append(SoftRelation(name, sigma, n, unit))
@@ -219,6 +308,8 @@ class PlantSystem:
         self.soft_by_name = {r.name: r for r in self.soft}
         self._supply = [(e, self.soft_by_name[f"{e.id}.supply_pressure"]) for e in fs.of_kind(Source)
                         if f"{e.id}.supply_pressure" in self.soft_by_name]
+        self._levels = [(col, self.soft_by_name[f"{key}.level"]) for key, col in self.line_columns.items()
+                        if f"{key}.level" in self.soft_by_name]
         self.n_vars = n
         self.n_model = lay.n_vars
         self._skip = self._non_soft_relations()
@@ -248,7 +339,7 @@ class PlantSystem:
         rows = self.fs.evaluate(self.design.z, constants=self.design.constants)
         return frozenset(
             name for name, kind in zip(rows.names, rows.sets, strict=True)
-            if kind == "performance" and name not in self.soft_by_name
+            if kind == "performance" and name not in self.soft_by_name and name not in self.hard_relations
         )
 
     def _make_scales(self) -> tuple[np.ndarray, np.ndarray]:
@@ -321,6 +412,9 @@ class PlantSystem:
                 rows.values[i] -= float(z[r.column])
                 rows.add_entry(i, r.column, -1.0)
         lay = fs.layout
+        for col, r in self._levels:
+            rows.add(r.name, "performance", z[col] - 1.0 - z[r.column], {col: 1.0, r.column: -1.0}, 1.0)
+            scales.append(1.0)
         for e, r in self._supply:
             out = e.port("outlet")
             col = lay.p(out)

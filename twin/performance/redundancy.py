@@ -16,11 +16,12 @@ VDI 2048 Blatt 1 (2017) (redundancy, quality of reconciled values).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from typing import Any
 
-from twin.performance.plant_reconcile import PlantReconciler
-from twin.reconcile import minimum_detectable_bias, sidak_critical
+from twin.performance.plant_reconcile import MODEL_BASED_SHARE, PlantReconciler
+from twin.reconcile import REDUNDANCY_FLOOR, minimum_detectable_bias, sidak_critical
 
 
 @dataclass(frozen=True)
@@ -40,6 +41,8 @@ class RedundancyReport:
     sidak_critical: float
     tags: tuple[TagRedundancy, ...]
     kpis: tuple[tuple[str, bool, float, str], ...]  # name, observable, U95, unit
+    soft: tuple[tuple[str, float, str], ...] = ()  # soft relation, U95 (= 1.96 σ), unit
+    kpi_soft_share: Mapping[str, float] = field(default_factory=dict)  # share of the variance from soft relations
 
 
 def redundancy(config: Any, reconciler: PlantReconciler | None = None) -> RedundancyReport:
@@ -51,7 +54,7 @@ def redundancy(config: Any, reconciler: PlantReconciler | None = None) -> Redund
     pr.reset()
     if not rec.converged:
         return RedundancyReport(rec.status, 0, math.nan, (), ())
-    n_red = sum(1 for t in rec.tags.values() if t.valid and t.redundancy > 1e-6)
+    n_red = sum(1 for t in rec.tags.values() if t.valid and t.redundancy > REDUNDANCY_FLOOR)
     zc = sidak_critical(0.05, max(n_red, 1))
     sensors = {s.tag: s for s in config.sensors}
     tags = []
@@ -59,11 +62,13 @@ def redundancy(config: Any, reconciler: PlantReconciler | None = None) -> Redund
         s = sensors[tag]
         scale = abs(s.conversion.scale)
         h = max(t.redundancy, 0.0) if math.isfinite(t.redundancy) else 0.0
-        k = float(minimum_detectable_bias(h, zc, 0.9)) if h > 1e-6 else math.inf
+        k = float(minimum_detectable_bias(h, zc, 0.9)) if h > REDUNDANCY_FLOOR else math.inf
         tags.append(TagRedundancy(tag, s.unit, h, t.sigma / scale, k, k * t.sigma / scale))
     units = {d.name: d.unit for d in pr.kpi_defs}
     kpis = tuple((name, e.available, e.uncertainty, units.get(name, "")) for name, e in rec.kpis.items())
-    return RedundancyReport("converged", rec.dof, zc, tuple(tags), kpis)
+    soft = tuple((r.name, 1.96 * r.sigma, r.unit) for r in pr.system.soft)
+    shares = {name: e.soft_share for name, e in rec.kpis.items()}
+    return RedundancyReport("converged", rec.dof, zc, tuple(tags), kpis, soft, shares)
 
 
 # A bias beyond this many standard uncertainties is a broken instrument (caught by the
@@ -89,17 +94,24 @@ def report_lines(r: RedundancyReport) -> list[str]:
         lines.append(f"  {t.tag:<12} {t.unit:<7} {t.redundancy:7.3f} {t.sigma:10.4g} {mdb_s:>8} {mdb:>10}")
     lonely = [t.tag for t in r.tags if not checkable(t)]
     if lonely:
-        lines.append(f"  not checkable by the balances (redundancy 0, or a detectable bias past {PRACTICAL_MDB_SIGMA:.0f} σ; "
+        lines.append(f"  not checkable by the balances (redundancy ≤ {REDUNDANCY_FLOOR:g}: no z, never flagged; "
+                     f"or a detectable bias past {PRACTICAL_MDB_SIGMA:.0f} σ; "
                      f"one more instrument would make them redundant): {', '.join(lonely)}")
-    lines.append("expected KPI uncertainty at the design point (95 %)")
+    lines.append("soft model relations (pseudo-measurements 0 ± σ; every σ is a 95 % half-width / 1.96)")
+    for name, u95, unit in r.soft:
+        lines.append(f"  {name:<36} U95 {u95:.4g} {unit}")
+    lines.append("expected KPI uncertainty at the design point (95 %); soft: share of its variance from the "
+                 f"model relations (≥ {MODEL_BASED_SHARE:.0%}: model_based)")
     for name, ok, u, unit in r.kpis:
+        share = r.kpi_soft_share.get(name, math.nan)
         if not ok:
             lines.append(f"  {name:<36} unobservable")
             continue
         scale, label = {"ratio": (100.0, "% points"), "W": (1e-6, "MW"), "Pa": (1e-3, "kPa")}.get(unit, (1.0, unit))
         if name.endswith("heat_rate"):
             scale, label = 3600.0, "kJ/kWh"
-        lines.append(f"  {name:<36} ± {u * scale:.4g} {label}")
+        soft = f"{share:4.0%}" if math.isfinite(share) else "-"
+        lines.append(f"  {name:<36} ± {u * scale:<10.4g} {label:<9} soft {soft}")
     return lines
 
 

@@ -17,6 +17,7 @@ from twin.reconcile.elimination import (
 )
 from twin.reconcile.linear import (
     DEFAULT_RANK_TOL,
+    REDUNDANCY_FLOOR,
     Classification,
     InconsistentConstraintsError,
     LinearResult,
@@ -45,6 +46,7 @@ from twin.reconcile.synthetic import SyntheticNetwork, synthetic_network
 
 __all__ = [
     "DEFAULT_RANK_TOL",
+    "REDUNDANCY_FLOOR",
     "VDI_CRITICAL",
     "Classification",
     "ConstraintSystem",

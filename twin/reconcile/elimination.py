@@ -150,7 +150,7 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
         if len(log) >= max_eliminations:
             break
         Vk = V[np.ix_(keep, keep)]
-        bias, drop = glr_bias(res.adjustments, res.cov_a, Vk, res.redundant)
+        bias, drop = glr_bias(res.adjustments, res.cov_a, Vk, np.isfinite(res.z))
         order = [j for j in np.argsort(-np.nan_to_num(drop, nan=-1.0)) if flags[j]]
         J = _dense(system.jacobian(res.z_warm))
         chosen = None

@@ -43,6 +43,15 @@ class InconsistentConstraintsError(ValueError):
     """The constraints have no solution for any value of the measured variables."""
 
 
+#: Redundancy ``h = 1 − Var(x̂)/Var(y)`` at or below which a measurement gets no normalised
+#: adjustment (``z`` NaN: not tested). ``σ(a) = sqrt(h)·σ``, so at ``h = 1e-3`` the
+#: adjustment's standard deviation is 3 % of the instrument's σ: below that ``z`` divides
+#: rounding, solver-tolerance and linearisation residues by a vanishing σ (a thermometer
+#: with ``h = 1.4e-9`` got ``z = −41`` from a 0.0004 K adjustment), and a bias would have
+#: to exceed about 110 σ to be detected with 90 % power at the Šidák limit anyway.
+REDUNDANCY_FLOOR = 1e-3
+
+
 @dataclass(frozen=True)
 class Classification:
     """Redundancy of measurements and observability of unmeasured variables.
@@ -114,7 +123,8 @@ class LinearResult:
     p_value : float
         ``P(χ²(dof) ≥ gamma)``; NaN when ``dof == 0`` (nothing to test).
     z : ndarray, shape (n,)
-        Normalised adjustments ``a_j / sqrt(cov_a_jj)``; NaN where not redundant.
+        Normalised adjustments ``a_j / sqrt(cov_a_jj)``; NaN where not redundant or where the
+        redundancy is at or below :data:`REDUNDANCY_FLOOR` (not tested).
     redundant : ndarray of bool, shape (n,)
     observable : ndarray of bool, shape (p,)
     redundancy : ndarray, shape (n,)
@@ -484,9 +494,9 @@ def _build_result(core: _Core, A, y, classification, measured, unmeasured, tol) 
     s = _statistics(core, A, red, obs)
     a = y - core.x_hat
     z = s["z"]
-    ok = s["z_ok"]
-    z[ok] = a[ok] / np.sqrt(s["va"][ok])
     h = np.where(red, 1.0 - np.diag(s["cov_x"]) / s["Vd"], 0.0)
+    ok = s["z_ok"] & (h > REDUNDANCY_FLOOR)
+    z[ok] = a[ok] / np.sqrt(s["va"][ok])
     dof = s["dof"]
     p_value = float(chdtrc(dof, core.gamma)) if dof > 0 else float("nan")
     return LinearResult(

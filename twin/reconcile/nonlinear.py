@@ -28,6 +28,7 @@ from scipy import stats as sps
 from twin.reconcile.kkt import KKTFactorisationError, ScaledKKT
 from twin.reconcile.linear import (
     DEFAULT_RANK_TOL,
+    REDUNDANCY_FLOOR,
     Classification,
     InconsistentConstraintsError,
     _build_result,
@@ -50,7 +51,10 @@ class ConstraintSystem(Protocol):
     convergence tests and the merit function.
     """
 
-    n_vars: int
+    @property
+    def n_vars(self) -> int:
+        """Number of variables in ``z``."""
+        ...
 
     def residuals(self, z: np.ndarray) -> np.ndarray:
         """Constraint residuals f(z), shape (m,)."""
@@ -111,6 +115,11 @@ class SolveOptions:
         Step-length reduction factor on each backtrack.
     max_backtracks : int
         Backtracks before the line search gives up.
+    min_step : float
+        Floor on the step length: a search that would need ``α < min_step`` has failed
+        at once (status ``line_search_failed``, unless the iterate is at the model's
+        noise floor), so a hopeless start fails in a few evaluations and the caller's
+        restart logic takes over instead of creeping along until ``max_iter``.
     rank_tol : float or None
         Relative rank tolerance (see :func:`twin.reconcile.linear.classify`).
     method : {"sparse", "dense"}
@@ -138,6 +147,7 @@ class SolveOptions:
     armijo: float = 1e-4
     backtrack: float = 0.5
     max_backtracks: int = 40
+    min_step: float = 1e-6
     rank_tol: float | None = None
     method: str = "sparse"
     covariance: str = "full"
@@ -146,6 +156,8 @@ class SolveOptions:
     def __post_init__(self) -> None:
         if self.method not in METHODS:
             raise ValueError(f"method must be one of {METHODS}, got {self.method!r}")
+        if not 0.0 < self.min_step <= 1.0:
+            raise ValueError(f"min_step must lie in (0, 1], got {self.min_step!r}")
         if self.covariance not in COVARIANCES:
             raise ValueError(f"covariance must be one of {COVARIANCES}, got {self.covariance!r}")
 
@@ -174,7 +186,10 @@ class Result:
     gamma, dof, p_value : float, int, float
         Global test ``aᵀV⁻¹a`` against χ²(dof); p_value NaN when dof is 0.
     z : ndarray, shape (n,)
-        Normalised adjustments; NaN where not redundant.
+        Normalised adjustments ``adjustments / sqrt(diag(cov_a))``, from the same final
+        iterate as ``adjustments`` (so they share their sign); NaN where not redundant
+        or where ``redundancy`` is at or below
+        :data:`~twin.reconcile.linear.REDUNDANCY_FLOOR` (not tested).
     redundant : ndarray of bool, shape (n,)
     observable : ndarray of bool, shape (n_vars − n,)
         For the unmeasured variables, in increasing index order (``unmeasured``).
@@ -186,6 +201,13 @@ class Result:
         The final iterate with every entry finite (unobservable entries keep a
         feasible but arbitrary value): pass it as ``z0`` next time. NaN on failure.
     classification : Classification or None
+    gain : ndarray, shape (n_vars, n), or None
+        Whitened sensitivity of the solution to the data at the solution: with
+        ``y = L w`` (``V = L Lᵀ``), ``δẑ = gain · δw`` and ``cov_z = gain · gainᵀ``
+        (unobservable rows NaN). Column ``j`` is the contribution of measurement ``j``
+        (or of a group of measurements uncorrelated with the rest, such as the
+        pseudo-measurements of soft relations); ``None`` unless the sparse method ran
+        with ``covariance="full"``.
     """
 
     status: str
@@ -207,6 +229,7 @@ class Result:
     unmeasured: np.ndarray
     z_warm: np.ndarray
     classification: Classification | None = field(default=None)
+    gain: np.ndarray | None = field(default=None)
 
     @property
     def converged(self) -> bool:
@@ -412,6 +435,8 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
         slope = gd - mu * fn1
         alpha, accepted, last_err = 1.0, False, ""
         for _ in range(opts.max_backtracks + 1):
+            if alpha < opts.min_step:
+                break
             zt = z + alpha * d
             try:
                 ft, Jt = _evaluate(system, zt, m, dense=dense)
@@ -436,7 +461,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
                 status, message = "converged", f"converged in {it} iterations (at the model's noise floor)"
                 break
             status = "line_search_failed"
-            message = "line search failed to reduce the merit function" + (
+            message = f"line search failed to reduce the merit function (step floor {opts.min_step:g})" + (
                 f" (last model error: {last_err})" if last_err else "")
             break
         if (alpha < 1e-3 and at_floor and np.max(np.abs(ft / rs)) <= opts.noise_tol
@@ -461,7 +486,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
                                   classification, tol, opts.covariance)
     except (InconsistentConstraintsError, KKTFactorisationError) as exc:
         return fail("inconsistent", f"linearised constraints inconsistent: {exc}", it)
-    cls, cov_x, cov_xu, cov_u = stats
+    cls, cov_x, cov_xu, cov_u, gain_parts = stats
     # statistics at the accepted iterate z (the final linear step is below tolerance)
     adj = y - z[measured]
     gamma = float(adj @ vinv(adj))
@@ -475,9 +500,9 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
         cov_a = V - cov_x
         cov_z[np.ix_(measured, measured)] = cov_x
         va = np.diag(cov_a)
-        ok = cls.redundant & (va > 0)
-        z_norm[ok] = adj[ok] / np.sqrt(va[ok])
         redundancy = np.where(cls.redundant, 1.0 - np.diag(cov_x) / np.diag(V), 0.0)
+        ok = cls.redundant & (va > 0) & (redundancy > REDUNDANCY_FLOOR)
+        z_norm[ok] = adj[ok] / np.sqrt(va[ok])
     if opts.covariance == "full":
         cov_u = cov_u.copy()
         cov_xu = cov_xu.copy()
@@ -487,6 +512,13 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
         cov_z[np.ix_(unmeasured, unmeasured)] = cov_u
         cov_z[np.ix_(measured, unmeasured)] = cov_xu
         cov_z[np.ix_(unmeasured, measured)] = cov_xu.T
+    gain = None
+    if gain_parts is not None and opts.covariance == "full":
+        gx, gu = gain_parts
+        gain = np.empty((n_vars, measured.size))
+        gain[measured] = gx
+        gain[unmeasured] = gu
+        gain[unmeasured[~observable]] = nan
     z_hat = z.copy()
     z_hat[unmeasured[~observable]] = np.nan
     p_value = float(sps.chi2.sf(gamma, cls.dof)) if cls.dof > 0 else nan
@@ -495,7 +527,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
         adjustments=adj, cov_a=cov_a, gamma=gamma, dof=cls.dof, p_value=p_value,
         z=z_norm, redundant=cls.redundant.copy(), observable=observable.copy(),
         redundancy=redundancy, message=message, measured=measured,
-        unmeasured=unmeasured, z_warm=z.copy(), classification=cls,
+        unmeasured=unmeasured, z_warm=z.copy(), classification=cls, gain=gain,
     )
 
 
@@ -509,7 +541,7 @@ def _final_dense(J, z, f, y, V, factor, measured, unmeasured, classification, to
     JM, JU = J[:, measured], J[:, unmeasured]
     core = _solve(JM, y, V, JU, JM @ z[measured] - f, tol, factor)
     lin = _build_result(core, JM, y, classification, measured, unmeasured, tol)
-    return lin.classification, lin.cov_x, lin.cov_xu, lin.cov_u
+    return lin.classification, lin.cov_x, lin.cov_xu, lin.cov_u, None
 
 
 def _final_sparse(J, y, V, sigma, vs, rs, sparse_step, measured, unmeasured,
@@ -524,7 +556,7 @@ def _final_sparse(J, y, V, sigma, vs, rs, sparse_step, measured, unmeasured,
         cls = classify(J, measured, sigma=sigma, var_scale=vs, residual_scale=rs, rank_tol=tol)
     n, p = measured.size, unmeasured.size
     if covariance == "none":
-        return cls, None, None, None
+        return cls, None, None, None, None
     kkt = sparse_step.factor(J)
     X, U = kkt.sensitivities()
     X = 0.5 * (X + X.T)
@@ -536,9 +568,11 @@ def _final_sparse(J, y, V, sigma, vs, rs, sparse_step, measured, unmeasured,
         cov_x = Lfac @ X @ Lfac.T
         LUt = Lfac @ U.T
     if covariance != "full":
-        return cls, cov_x, np.zeros((n, p)), np.zeros((p, p))
+        return cls, cov_x, np.zeros((n, p)), np.zeros((p, p)), None
     su = sparse_step.su
     cov_xu = LUt * su[None, :]
     SU = su[:, None] * U
     cov_u = SU @ SU.T
-    return cls, cov_x, cov_xu, cov_u
+    # whitened gains: δx̂ = L X δw, δû = S U δw (X symmetric)
+    gx = Lfac[:, None] * X if diagonal else Lfac @ X
+    return cls, cov_x, cov_xu, cov_u, (gx, SU)

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from twin.reconcile.nonlinear import LinearSystem
+from twin.reconcile.nonlinear import ConstraintSystem, LinearSystem
 
 
 @dataclass(frozen=True)
@@ -37,7 +37,7 @@ class SyntheticNetwork:
         Diagonal measurement covariance (full matrix).
     """
 
-    system: object
+    system: ConstraintSystem
     z_true: np.ndarray
     z0: np.ndarray
     measured: np.ndarray
@@ -153,7 +153,7 @@ def synthetic_network(n_measurements: int, seed: int = 0, *, kind: str = "linear
                 inc[dst[e], e] += 1.0
             if src[e] >= 0:
                 inc[src[e], e] -= 1.0
-        system = LinearSystem(inc, np.zeros(n_nodes))
+        system: ConstraintSystem = LinearSystem(inc, np.zeros(n_nodes))
         z_true = flow
         sigma = 0.01 * flow + 0.02
     else:
