@@ -16,6 +16,10 @@ def test_bench_reconcile_quick_returns_all_keys():
         assert {"median_ms", "p95_ms", "n"} <= set(demo[key])
     assert demo["warm"]["failed"] == 0 and demo["n_measured"] > 0
     assert "speedup_vs_slsqp" in demo
+    win = out["demo_u1_windows"]
+    assert win["n"] == 12 and win["not_converged"] == sum(n for st, n in win["by_status"].items() if st != "converged")
+    for clock in ("wall", "cpu"):
+        assert {"median_ms", "p99_ms", "worst_ms", "p99_over_median"} <= set(win[clock])
     for kind in ("linear", "bilinear"):
         for cov in ("covariance_full", "covariance_none"):
             row = out["synthetic"][kind][cov]

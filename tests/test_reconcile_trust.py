@@ -128,11 +128,11 @@ def test_lp_line_has_a_factor_for_the_measured_group_and_one_for_the_wet_groups(
 
 
 def test_soft_share_and_model_based_without_the_generator_power(setting):
-    cfg, rec, truth = setting
+    _, rec, truth = setting
     rec.reset()
     r = rec.reconcile(truth)
     assert r.converged
-    for name in LP_KPIS + ("gross_efficiency", "turbine_heat_rate"):
+    for name in (*LP_KPIS, "gross_efficiency", "turbine_heat_rate"):
         e = r.kpis[name]
         assert e.status == "reconciled" and e.available, name
         assert 0.0 <= e.soft_share < MODEL_BASED_SHARE, (name, e.soft_share)
