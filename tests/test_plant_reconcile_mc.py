@@ -27,7 +27,7 @@ from twin.demo.plant import sensor_truth
 from twin.model.solve import solve_off_design
 from twin.performance.kpi import CyclePerformanceSettings, evaluate_kpis, kpi_definitions
 from twin.performance.plant_reconcile import PlantReconciler
-from twin.reconcile import detection_power, sidak_critical
+from twin.reconcile import REDUNDANCY_FLOOR, detection_power, sidak_critical
 
 N_RUNS = 2000
 LOAD = 0.9
@@ -110,7 +110,7 @@ def linearised():
     tags = list(s["truth"])
     cols = [rec.system.sensor_by_tag[t].column for t in tags]
     return {"cov": r.cov[np.ix_(cols, cols)], "redundancy": {t: r.tags[t].redundancy for t in tags},
-            "n_redundant": sum(1 for t in tags if r.tags[t].redundancy > 1e-6), "dof": r.dof}
+            "n_redundant": sum(1 for t in tags if r.tags[t].redundancy > REDUNDANCY_FLOOR), "dof": r.dof}
 
 
 @pytest.mark.slow

@@ -73,9 +73,11 @@ class _Timed:
 def _stats_ms(times: list[float]) -> dict:
     a = np.asarray(times) * 1e3
     if a.size == 0:
-        return {"median_ms": None, "p95_ms": None, "n": 0}
+        return {"median_ms": None, "p95_ms": None, "p99_ms": None, "worst_ms": None, "n": 0}
     return {"median_ms": round(float(np.median(a)), 3),
-            "p95_ms": round(float(np.percentile(a, 95)), 3), "n": int(a.size)}
+            "p95_ms": round(float(np.percentile(a, 95)), 3),
+            "p99_ms": round(float(np.percentile(a, 99)), 3),
+            "worst_ms": round(float(np.max(a)), 3), "n": int(a.size)}
 
 
 def _demo_problem(config: str):
