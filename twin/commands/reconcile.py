@@ -105,7 +105,7 @@ def _print_text(r: dict[str, Any]) -> None:
     w(f"{'tag':<12} {'unit':<7} {'measured':>11} {'reconciled':>11} {'±95%':>8} {'adjust':>9} {'z':>6} {'redund':>6}  flag\n")
 
     def f(x: float | None, fmt: str) -> str:
-        return format(x, fmt) if x is not None else "-"
+        return format(x, fmt) if x is not None else "-".rjust(int(fmt.split(".")[0]))
 
     for tag, t in r["tags"].items():
         flag = "SUSPECT" if t["suspect"] else ("z>1.96" if t["flagged_vdi"] else "")

@@ -89,9 +89,9 @@ EXPANSION_SHAPE_U95 = 0.03
 #: Level factor of an expansion line (or of a directly measured group) against its
 #: design value: a weak prior that keeps the line defined when its instruments are lost
 #: (the KPIs it carries are then marked ``model_based``) [-].
-LINE_LEVEL_U95 = 0.10
+LINE_LEVEL_U95 = 0.30
 #: Exhaust-loss curve: fraction of the design-point loss [-].
-EXHAUST_LOSS_U95 = 0.25
+EXHAUST_LOSS_U95 = 0.40
 
 
 def line_keys(fs: Flowsheet, measured_groups: frozenset[str] = frozenset()) -> dict[str, tuple[str, tuple[str, ...]]]:

@@ -45,7 +45,7 @@ PROTECTED_KPIS = ("gross_efficiency", "turbine_heat_rate", "exhaust_quality_ueep
 
 #: A derived value is ``model_based`` (not ``reconciled``) when at least this share of its
 #: variance comes from the soft model relations: its instruments are invalid or missing and
-#: the model carries it. demo-u1 at 90 % load: LP efficiency 0.36 with every instrument,
+#: the model carries it. demo-u1 at design: LP efficiency 0.47 with every instrument,
 #: 0.998 without the generator-power measurements.
 MODEL_BASED_SHARE = 0.9
 
