@@ -50,6 +50,8 @@ def reference_evaluation(ps: PlantSystem, z: np.ndarray) -> tuple[np.ndarray, np
             c.append(col)
             d.append(float(dv))
 
+    for col, soft in ps._levels:  # line level priors: factor − 1 = e
+        add(z[col] - 1.0 - z[soft.column], {col: 1.0, soft.column: -1.0})
     for e, soft in ps._supply:
         col = lay.p(e.port("outlet"))
         add(z[col] - float(ps.design.z[col]) - z[soft.column], {col: 1.0, soft.column: -1.0})
