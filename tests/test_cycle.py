@@ -115,3 +115,22 @@ def test_restore_refuses_another_version_or_unit() -> None:
         cyc.restore({**snap, "version": 99})
     with pytest.raises(ValueError, match="unit"):
         cyc.restore({**snap, "unit_id": "other-unit"})
+
+
+def test_kpis_without_generator_power_are_marked_model_based_on_the_metrics() -> None:
+    # Without the generator-power transmitters the LP exhaust is observable only through
+    # the soft model relations (VDI 2048 practice): it must read model_based, not reconciled.
+    values = noisy(21)
+    for tag in [t for t in values if t.startswith("GEN-MW")]:
+        del values[tag]
+    cyc = new_cycle()
+    r = cyc.run(window(values, T0 + CYCLE)).result
+    assert r.reconcile_status == "converged", r.reconcile_message
+    lp = r.kpis["section_efficiency.LP"]
+    assert lp.available and lp.status == "model_based" and lp.soft_share >= 0.9
+    fams = {f.name: f for f in build_families(r)}
+    status = {(s.labels["kpi"], s.labels["status"]): s.value for s in fams["twin_kpi_status"].samples}
+    assert status[("section_efficiency.LP", "model_based")] == 1
+    assert status[("section_efficiency.LP", "reconciled")] == 0
+    share = {s.labels["kpi"]: s.value for s in fams["twin_kpi_soft_share_ratio"].samples}
+    assert share["section_efficiency.LP"] == lp.soft_share

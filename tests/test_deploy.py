@@ -52,7 +52,7 @@ RULE_NAME_RE = re.compile(r"(?<![\w:])twin:[a-z0-9_:]+")
 def populated_result() -> CycleResult:
     """The hand-built result with every documented KPI available and expected."""
     r = full_result()
-    kpis = {k: Estimate(0.5, 0.01, True) for k in ALL_KPIS}
+    kpis = {k: Estimate(0.5, 0.01, True, soft_share=0.25) for k in ALL_KPIS}
     return dataclasses.replace(r, kpis=kpis, expected={k: 0.5 for k in ALL_KPIS})
 
 

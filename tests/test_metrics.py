@@ -98,7 +98,7 @@ def full_result(window_end: float = WINDOW_END, efficiency: float = 0.4) -> Cycl
         kpis={
             "gross_power": Estimate(370.0e6, 2.0e6, True),
             "heat_input": Estimate(heat_input, 5.0e6, True),
-            "gross_efficiency": Estimate(efficiency, 0.004, True),
+            "gross_efficiency": Estimate(efficiency, 0.004, True, soft_share=0.12),
             "turbine_heat_rate": Estimate(1.0 / efficiency, 0.025, True),
             "load_fraction": Estimate(0.985, 0.01, True),
             "exhaust_moisture_ueep": Estimate(0.105, 0.0125, True),

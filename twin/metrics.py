@@ -56,7 +56,7 @@ from twin import __version__
 from twin.kinds import MEASURED_QUANTITIES
 from twin.monitor.alarms import STATES as ALARM_STATES
 from twin.monitor.steady import STEADY_STATUSES
-from twin.result import RECONCILE_STATUSES, CycleResult
+from twin.result import ESTIMATE_STATUSES, RECONCILE_STATUSES, CycleResult
 
 Provider = Callable[[], CycleResult | None]
 
@@ -344,6 +344,9 @@ def _sensors(f: _Families, r: CycleResult) -> None:
 def _kpis(f: _Families, r: CycleResult) -> None:
     for key, est in r.kpis.items():
         f.flag("twin_kpi_available", "1 when the KPI is observable this window; an unavailable KPI has no value sample", est.available, kpi=key)
+        f.enum("twin_kpi_status", "How the KPI was obtained this window, 1 for the current status: reconciled (instruments), model_based (carried by the soft model relations: the instruments that would observe it are invalid), unavailable", "status", est.status, ESTIMATE_STATUSES, kpi=key)
+        if est.available and math.isfinite(est.soft_share):
+            f.gauge("twin_kpi_soft_share_ratio", "Share of the KPI's variance that comes from soft model relations rather than instruments, dimensionless", est.soft_share, kpi=key)
         spec = kpi_metric(key)
         if spec is None or not est.available:
             continue
