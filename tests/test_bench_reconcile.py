@@ -20,6 +20,15 @@ def test_bench_reconcile_quick_returns_all_keys():
     assert win["n"] == 12 and win["not_converged"] == sum(n for st, n in win["by_status"].items() if st != "converged")
     for clock in ("wall", "cpu"):
         assert {"median_ms", "p99_ms", "worst_ms", "p99_over_median"} <= set(win[clock])
+    assert {"p99_ms", "worst_ms"} <= set(demo["warm"])
+    split = demo["profile_split"]
+    assert {"total_ms", "properties_ms", "model_ms", "kkt_ms", "covariance_ms", "other_ms"} <= set(split)
+    assert split["n"] > 0 and split["properties_ms"] > 0 and split["property_calls_median"] > 0
+    base = demo["evaluation_baseline"]
+    assert base["fast_ms"] > 0 and base["straightforward_ms"] > 0
+    cycle = out["cycle"]
+    assert cycle["all"]["n"] == 4 and {"median_ms", "p99_ms", "max_ms"} <= set(cycle["all"])
+    assert sum(cycle["deviation_status"].values()) == 4
     for kind in ("linear", "bilinear"):
         for cov in ("covariance_full", "covariance_none"):
             row = out["synthetic"][kind][cov]

@@ -11,6 +11,13 @@ elimination included) at design, 75 % and 50 % load, sliding and fixed pressure,
 worker processes: the not-converged count and the median, p99 and worst solve times.
 (d) synthetic steam-metering networks of 100…2000 measurements (linear and bilinear),
 median time per reconciliation, and the fitted log-log slope of time against size.
+(e) where a warm demo-u1 solve spends its time (properties / model / KKT / covariance /
+other, an instrumented pass), the model evaluation against the straightforward one in the
+same process (the baseline that tells machine load from code speed), and the per-window
+cycle (:class:`twin.cycle.UnitCycle` driven directly: window close → result, median, p99
+and worst, with and without the heat-rate deviation split).
+
+The machine is shared: quote medians, and compare figures only within one run.
 """
 
 from __future__ import annotations
@@ -34,6 +41,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="noisy demo-u1 windows through the plant reconciler, over design, 75 %% and 50 %% "
                              "load, sliding and fixed pressure (default 3000)")
     parser.add_argument("--workers", type=int, default=2, help="worker processes for the noisy windows (default 2)")
+    parser.add_argument("--cycles", type=int, default=60, help="UnitCycle windows for the cycle figure (default 60)")
     parser.add_argument("--quick", action="store_true", help="tiny sizes (smoke test)")
 
 
@@ -149,6 +157,10 @@ def _demo(args, rng) -> dict:
                       options=SolveOptions(covariance="none"))
         none_t.append(time.perf_counter() - t0)
     out["warm_no_covariance"] = _stats_ms(none_t)
+    from twin.bench.reconcile_profile import evaluation_baseline, profile_split
+
+    out["profile_split"] = profile_split(ps, z_warm, measured, y_true, sigma, cls, rng, max(3, args.runs // 2))
+    out["evaluation_baseline"] = evaluation_baseline(ps, z_warm, 5 if args.quick else 30)
     out["slsqp"] = _slsqp(system, z_warm, measured, y_true, sigma, rng, args)
     med = out["warm"]["median_ms"]
     sl = out["slsqp"]["median_ms"]
@@ -328,10 +340,15 @@ def run(args: argparse.Namespace) -> dict:
         args.runs = min(args.runs, 3)
         args.slsqp_runs = 1
         args.repeat = 1
+    from twin.bench.reconcile_profile import cycle_figures
+
     windows = 12 if args.quick else args.windows
+    demo = _demo(args, rng)
+    cycle = cycle_figures(args.config, 4 if args.quick else max(1, args.cycles), args.seed)
     return {
         "openblas_num_threads": os.environ.get("OPENBLAS_NUM_THREADS"),
-        "demo_u1": _demo(args, rng),
+        "demo_u1": demo,
         "demo_u1_windows": noisy_windows(args.config, windows, seed=args.seed, workers=args.workers),
+        "cycle": cycle,
         "synthetic": _synthetic(args),
     }

@@ -278,10 +278,14 @@ class _SparseStep:
         self.Lfac, self.diagonal = Lfac, diagonal
         self.su, self.rs = vs[unmeasured], rs
         self.kkt: ScaledKKT | None = None
+        self._factored: object | None = None  # the Jacobian self.kkt was built from
 
     def factor(self, J) -> ScaledKKT:
-        self.kkt = ScaledKKT(J, self.measured, self.unmeasured, self.Lfac, self.diagonal,
-                             self.su, self.rs)
+        """The factored KKT system of ``J``; the last one again when ``J`` is the same matrix."""
+        if self.kkt is None or J is not self._factored:
+            self.kkt = ScaledKKT(J, self.measured, self.unmeasured, self.Lfac, self.diagonal,
+                                 self.su, self.rs)
+            self._factored = J
         return self.kkt
 
     def __call__(self, J, z, f, a, n_vars) -> np.ndarray:

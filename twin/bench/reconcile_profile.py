@@ -1,0 +1,210 @@
+"""Parts of ``twin bench reconcile``: where one warm reconciliation spends its time, and the cycle.
+
+:func:`profile_split` repeats warm demo-u1 solves with timers on the property calls,
+the model evaluation, the KKT steps and the covariance (an instrumented pass: the
+timers add a little overhead, so its total is a bit above the plain warm median).
+:func:`evaluation_baseline` times the fast model evaluation against the straightforward
+one (a fresh property context per part, coordinate-format Jacobian) in the same
+process, so a reader can tell machine load from code speed.
+:func:`cycle_figures` drives :class:`twin.cycle.UnitCycle` directly with noisy demo-u1
+windows: the window-close → result time of every cycle, steady ones (heat-rate
+deviation split into causes) and others apart.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+
+
+class _TimedWater:
+    """Forwards every property call to a :class:`twin.properties.Water`, adding up the time (bench only)."""
+
+    def __init__(self, water: Any) -> None:
+        self._water = water
+        self.seconds = 0.0
+        self.calls = 0
+
+    def __getattr__(self, name: str) -> Any:
+        attr = getattr(self._water, name)
+        if not callable(attr):
+            return attr
+
+        def timed(*args: Any) -> Any:
+            t0 = time.perf_counter()
+            try:
+                return attr(*args)
+            finally:
+                self.seconds += time.perf_counter() - t0
+                self.calls += 1
+
+        return timed
+
+
+class _Clock:
+    def __init__(self) -> None:
+        self.seconds = 0.0
+
+    def wrap(self, fn: Callable[..., Any]) -> Callable[..., Any]:
+        def timed(*args: Any, **kwargs: Any) -> Any:
+            t0 = time.perf_counter()
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                self.seconds += time.perf_counter() - t0
+        return timed
+
+
+def profile_split(ps: Any, z_warm: np.ndarray, measured: np.ndarray, y_true: np.ndarray, sigma: np.ndarray,
+                  cls: Any, rng: np.random.Generator, runs: int) -> dict[str, Any]:
+    """Median per-solve milliseconds in properties / model / KKT steps / covariance / other."""
+    from twin.reconcile import nonlinear, reconcile
+
+    fs = ps.fs
+    water = fs.water
+    tw = _TimedWater(water)
+    model, kkt, cov = _Clock(), _Clock(), _Clock()
+    orig_eval, orig_step, orig_final = ps._evaluate, nonlinear._SparseStep.__call__, nonlinear._final_sparse
+    rows: dict[str, list[float]] = {k: [] for k in ("total", "properties", "model", "kkt", "covariance", "other")}
+    calls: list[int] = []
+    fs.water = tw
+    ps._evaluate = model.wrap(orig_eval)
+    nonlinear._SparseStep.__call__ = kkt.wrap(orig_step)  # type: ignore[method-assign]
+    nonlinear._final_sparse = cov.wrap(orig_final)
+    try:
+        V = sigma**2
+        for _ in range(max(1, runs)):
+            y = y_true + sigma * rng.standard_normal(sigma.size)
+            tw.seconds, tw.calls, model.seconds, kkt.seconds, cov.seconds = 0.0, 0, 0.0, 0.0, 0.0
+            t0 = time.perf_counter()
+            r = reconcile(ps, z_warm, measured, y, V, classification=cls)
+            total = time.perf_counter() - t0
+            if not r.converged:
+                continue
+            z_warm = r.z_warm
+            rows["total"].append(total)
+            rows["properties"].append(tw.seconds)
+            rows["model"].append(model.seconds - tw.seconds)
+            rows["kkt"].append(kkt.seconds)
+            rows["covariance"].append(cov.seconds)
+            rows["other"].append(total - model.seconds - kkt.seconds - cov.seconds)
+            calls.append(tw.calls)
+    finally:
+        fs.water = water
+        ps._evaluate = orig_eval
+        nonlinear._SparseStep.__call__ = orig_step  # type: ignore[method-assign]
+        nonlinear._final_sparse = orig_final
+    out: dict[str, Any] = {f"{k}_ms": (round(float(np.median(v)) * 1e3, 3) if v else None) for k, v in rows.items()}
+    out["property_calls_median"] = float(np.median(calls)) if calls else None
+    out["n"] = len(rows["total"])
+    return out
+
+
+def _straightforward(ps: Any, z: np.ndarray) -> tuple[np.ndarray, Any]:
+    """The plant evaluation without shared contexts or a kept Jacobian structure (same-process baseline)."""
+    import scipy.sparse as sp
+
+    from twin.performance.plant import sensor_temperature
+
+    fs = ps.fs
+    rows = fs.evaluate(z, skip=ps._skip, constants=ps.constants)
+    values = list(rows.values)
+    r, c, d = (list(a) for a in rows.entries())
+    for i, name in enumerate(rows.names):
+        soft = ps.soft_by_name.get(name)
+        if soft is not None:
+            values[i] -= float(z[soft.column])
+            r.append(i)
+            c.append(soft.column)
+            d.append(-1.0)
+    ctx = fs.context(z, ps.constants)
+    lay = fs.layout
+    for e, soft in ps._supply:
+        col = lay.p(e.port("outlet"))
+        i = len(values)
+        values.append(float(z[col] - float(ps.design.z[col]) - z[soft.column]))
+        r += [i, i]
+        c += [col, soft.column]
+        d += [1.0, -1.0]
+    for b in ps.sensors:
+        i = len(values)
+        if b.kind == "T":
+            T, dT_dp, dT_dh = sensor_temperature(ctx, b.target)
+            values.append(float(z[b.column] - T))
+            r += [i, i, i]
+            c += [b.column, lay.p(b.target), lay.h(b.target)]
+            d += [1.0, -dT_dp, -dT_dh]
+        else:
+            values.append(float(z[b.column] - z[b.target_column]))
+            r += [i, i]
+            c += [b.column, b.target_column]
+            d += [1.0, -1.0]
+    return np.asarray(values), sp.csr_matrix((d, (r, c)), shape=(len(values), ps.n_vars))
+
+
+def evaluation_baseline(ps: Any, z: np.ndarray, repeat: int = 30) -> dict[str, Any]:
+    """Median ms of one evaluation (residuals + Jacobian): fast path and straightforward path, alternated."""
+    fast, plain = [], []
+    for k in range(max(1, repeat)):
+        zk = z * (1.0 + 1e-9 * (k + 1))  # a new vector every time: no result cache
+        t0 = time.perf_counter()
+        ps.residuals(zk)
+        ps.jacobian(zk)
+        fast.append(time.perf_counter() - t0)
+        t0 = time.perf_counter()
+        _straightforward(ps, zk)
+        plain.append(time.perf_counter() - t0)
+    f, p = float(np.median(fast)) * 1e3, float(np.median(plain)) * 1e3
+    return {"fast_ms": round(f, 3), "straightforward_ms": round(p, 3), "ratio": round(p / f, 2) if f > 0 else None}
+
+
+def _percentiles(times: list[float]) -> dict[str, Any]:
+    a = np.asarray(times) * 1e3
+    if a.size == 0:
+        return {"median_ms": None, "p99_ms": None, "max_ms": None, "n": 0}
+    return {"median_ms": round(float(np.median(a)), 2), "p99_ms": round(float(np.percentile(a, 99)), 2),
+            "max_ms": round(float(a.max()), 2), "n": int(a.size)}
+
+
+def cycle_figures(config_path: str, cycles: int, seed: int) -> dict[str, Any]:
+    """Window close → result of ``UnitCycle.run`` over noisy demo-u1 windows at the design point."""
+    from twin.config import load_config
+    from twin.cycle import UnitCycle, WindowInput
+    from twin.ingest.store import WindowStats
+
+    cfg = load_config(config_path)
+    uc = UnitCycle(cfg)
+    ps = uc.reconciler.system
+    z0 = ps.initial_point(uc.reconciler.design.z)
+    truth = {b.tag: float(z0[b.column]) for b in ps.sensors}
+    sig = {t: uc.reconciler.sigma(t, v) for t, v in truth.items()}
+    rng = np.random.default_rng(seed)
+    cycle_s = float(uc.cycle_seconds)
+    t_end = 1_700_000_000.0
+    all_t: list[float] = []
+    split_t: list[float] = []
+    other_t: list[float] = []
+    rec_t: list[float] = []
+    statuses: dict[str, int] = {}
+    for _ in range(max(1, cycles)):
+        t_end += cycle_s
+        stats = {}
+        for tag, v in truth.items():
+            m = v + sig[tag] * rng.standard_normal()
+            stats[tag] = WindowStats(m, sig[tag], 300, 0, t_end - 0.05, 0.05, m, m, False)
+        t0 = time.perf_counter()
+        out = uc.run(WindowInput(t_end, float(uc.window_seconds), stats, stats))
+        dt = time.perf_counter() - t0
+        res = out.result
+        all_t.append(dt)
+        if math.isfinite(out.reconcile_seconds):
+            rec_t.append(out.reconcile_seconds)
+        status = str(getattr(res, "heat_rate_deviation_status", "") or "").split(":")[0] or "n/a"
+        statuses[status] = statuses.get(status, 0) + 1
+        (split_t if res.heat_rate_deviation_by_cause else other_t).append(dt)
+    return {"all": _percentiles(all_t), "deviation_split": _percentiles(split_t), "without_split": _percentiles(other_t),
+            "reconcile_part": _percentiles(rec_t), "deviation_status": statuses}
