@@ -15,7 +15,8 @@ import pytest
 import scipy.sparse as sp
 
 from tests.model_helpers import demo_config, demo_design
-from twin.performance.plant import PlantSystem, sensor_temperature
+from twin.bench.reconcile_profile import straightforward_evaluation
+from twin.performance.plant import PlantSystem
 
 REL = 1e-9
 
@@ -28,41 +29,8 @@ def system() -> PlantSystem:
 
 def reference_evaluation(ps: PlantSystem, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Residuals and dense Jacobian, the straightforward way (independent contexts, COO assembly)."""
-    fs = ps.fs
-    rows = fs.evaluate(z, skip=ps._skip, constants=ps.constants)
-    values = list(rows.values)
-    r, c, d = (list(a) for a in rows.entries())
-    for i, name in enumerate(rows.names):
-        soft = ps.soft_by_name.get(name)
-        if soft is not None:
-            values[i] -= float(z[soft.column])
-            r.append(i)
-            c.append(soft.column)
-            d.append(-1.0)
-    ctx = fs.context(z, ps.constants)
-    lay = fs.layout
-
-    def add(value: float, grad: dict[int, float]) -> None:
-        i = len(values)
-        values.append(float(value))
-        for col, dv in grad.items():
-            r.append(i)
-            c.append(col)
-            d.append(float(dv))
-
-    for col, soft in ps._levels:  # line level priors: factor − 1 = e
-        add(z[col] - 1.0 - z[soft.column], {col: 1.0, soft.column: -1.0})
-    for e, soft in ps._supply:
-        col = lay.p(e.port("outlet"))
-        add(z[col] - float(ps.design.z[col]) - z[soft.column], {col: 1.0, soft.column: -1.0})
-    for b in ps.sensors:
-        if b.kind == "T":
-            T, dT_dp, dT_dh = sensor_temperature(ctx, b.target)
-            add(z[b.column] - T, {b.column: 1.0, lay.p(b.target): -dT_dp, lay.h(b.target): -dT_dh})
-        else:
-            add(z[b.column] - z[b.target_column], {b.column: 1.0, b.target_column: -1.0})
-    J = sp.coo_matrix((d, (r, c)), shape=(len(values), ps.n_vars)).toarray()
-    return np.asarray(values), J
+    f, J = straightforward_evaluation(ps, z)
+    return f, J.toarray()
 
 
 def random_states(ps: PlantSystem, n: int, seed: int) -> list[np.ndarray]:

@@ -104,8 +104,11 @@ def profile_split(ps: Any, z_warm: np.ndarray, measured: np.ndarray, y_true: np.
     return out
 
 
-def _straightforward(ps: Any, z: np.ndarray) -> tuple[np.ndarray, Any]:
-    """The plant evaluation without shared contexts or a kept Jacobian structure (same-process baseline)."""
+def straightforward_evaluation(ps: Any, z: np.ndarray) -> tuple[np.ndarray, Any]:
+    """Residuals and sparse Jacobian the straightforward way: independent contexts, COO assembly.
+
+    The same-process baseline of the bench and the reference of the equivalence tests.
+    """
     import scipy.sparse as sp
 
     from twin.performance.plant import sensor_temperature
@@ -123,26 +126,26 @@ def _straightforward(ps: Any, z: np.ndarray) -> tuple[np.ndarray, Any]:
             d.append(-1.0)
     ctx = fs.context(z, ps.constants)
     lay = fs.layout
+
+    def add(value: float, grad: dict[int, float]) -> None:
+        i = len(values)
+        values.append(float(value))
+        for col, dv in grad.items():
+            r.append(i)
+            c.append(col)
+            d.append(float(dv))
+
+    for col, soft in ps._levels:  # line level priors: factor − 1 = e
+        add(z[col] - 1.0 - z[soft.column], {col: 1.0, soft.column: -1.0})
     for e, soft in ps._supply:
         col = lay.p(e.port("outlet"))
-        i = len(values)
-        values.append(float(z[col] - float(ps.design.z[col]) - z[soft.column]))
-        r += [i, i]
-        c += [col, soft.column]
-        d += [1.0, -1.0]
+        add(z[col] - float(ps.design.z[col]) - z[soft.column], {col: 1.0, soft.column: -1.0})
     for b in ps.sensors:
-        i = len(values)
         if b.kind == "T":
             T, dT_dp, dT_dh = sensor_temperature(ctx, b.target)
-            values.append(float(z[b.column] - T))
-            r += [i, i, i]
-            c += [b.column, lay.p(b.target), lay.h(b.target)]
-            d += [1.0, -dT_dp, -dT_dh]
+            add(z[b.column] - T, {b.column: 1.0, lay.p(b.target): -dT_dp, lay.h(b.target): -dT_dh})
         else:
-            values.append(float(z[b.column] - z[b.target_column]))
-            r += [i, i]
-            c += [b.column, b.target_column]
-            d += [1.0, -1.0]
+            add(z[b.column] - z[b.target_column], {b.column: 1.0, b.target_column: -1.0})
     return np.asarray(values), sp.csr_matrix((d, (r, c)), shape=(len(values), ps.n_vars))
 
 
@@ -156,7 +159,7 @@ def evaluation_baseline(ps: Any, z: np.ndarray, repeat: int = 30) -> dict[str, A
         ps.jacobian(zk)
         fast.append(time.perf_counter() - t0)
         t0 = time.perf_counter()
-        _straightforward(ps, zk)
+        straightforward_evaluation(ps, zk)
         plain.append(time.perf_counter() - t0)
     f, p = float(np.median(fast)) * 1e3, float(np.median(plain)) * 1e3
     return {"fast_ms": round(f, 3), "straightforward_ms": round(p, 3), "ratio": round(p / f, 2) if f > 0 else None}
