@@ -15,7 +15,9 @@ import os
 import sys
 import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 DEFAULT_CONFIG = Path(__file__).resolve().parents[2] / "configs" / "demo-u1.toml"
 
@@ -44,6 +46,28 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 LEGEND_PLAIN = ("dev = actual − expected turbine heat rate in kJ/kWh (+ is worse) with its top causes; "
                 "efficiencies and exhaust moisture in %; '-' = not available this window")
+
+
+class SimMinute(logging.Filter):
+    """Adds the demo's simulated minute (``sim_minute=``) to every log record."""
+
+    def __init__(self, now: Callable[[], float], start: float) -> None:
+        super().__init__()
+        self.now, self.start = now, float(start)
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        minute = round((self.now() - self.start) / 60.0, 2)
+        fields = getattr(record, "twin_fields", None)
+        if isinstance(fields, dict):
+            record.twin_fields = {**fields, "sim_minute": minute}
+        record.msg, record.args = f"{record.getMessage()} sim_minute={minute:.2f}", ()
+        return True
+
+
+def add_sim_minute(clock: Any, start: float) -> None:
+    """Put the simulated minute on the log lines of every handler of the root logger."""
+    for handler in logging.getLogger().handlers:
+        handler.addFilter(SimMinute(clock.now, start))
 
 
 def run(args: argparse.Namespace) -> int:
@@ -115,6 +139,7 @@ def run(args: argparse.Namespace) -> int:
         return 1
     sim_start = simulator.start_time
     daemon.clock = ScaledClock(sim_start, args.speed)
+    add_sim_minute(daemon.clock, sim_start)
     try:
         daemon.start()
     except OSError as exc:  # metrics port taken: fall back to any free port
