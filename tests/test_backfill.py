@@ -298,6 +298,8 @@ def test_prometheus_on_backfilled_blocks(reference, tmp_path, prometheus_factory
         "twin_payloads_rejected": "conditional: the simulated history has no rejected values",
         "twin_cycle_duration_seconds": "live only: the daemon's wall-clock histogram is not back-filled",
         "twin_result_compute_seconds": "live only: wall-clock figures are not written (byte-identical output)",
+        "twin_kpi_drift_cusum": "learning: the charts learn their baseline over the first "
+                                "[monitoring.drift] reference_windows steady windows",
         'kpi="gross_efficiency"': "gross efficiency is not one of the drift-chart KPIs (twin.cycle.DRIFT_KPIS)",
     }
     unexplained = [e for e in empty if not any(k in e for k in reasons)]

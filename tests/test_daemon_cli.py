@@ -182,9 +182,9 @@ def test_twin_demo_runs_with_the_embedded_broker() -> None:
     assert out.count("CAUTION: twin is advisory monitoring only") == 2  # at start and at the end
     assert "embedded MQTT broker on 127.0.0.1:" in out
     assert re.search(r"^metrics: http://127\.0\.0\.1:\d+/metrics$", out, re.M)
-    cycles = [ln for ln in p.stdout if re.match(r"^t=\s*\d+\.\d min (steady |transient) load", ln)]
+    cycles = [ln for ln in p.stdout if re.match(r"^t=\s*\d+\.\d min (steady|transient)\s+load", ln)]
     assert len(cycles) >= 3, out[-3000:]
-    assert all(" MW eff " in ln and "exhaust moisture" in ln for ln in cycles)
+    assert all(" MW eff " in ln and "moisture ELEP" in ln for ln in cycles)
     m = re.search(r"simulator published (\d+) messages \((\d+) dropped\); daemon received (\d+)", out)
     assert m and int(m.group(1)) > 0 and int(m.group(3)) > 0
     print(f"demo: {len(cycles)} cycle lines; {m.group(0)}")
