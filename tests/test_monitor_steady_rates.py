@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from twin.monitor.steady import SteadyStateDetector
+from tests.test_monitor_steady_gate import _gate_series
 
 K0 = 60  # first disturbed window
 GATES = {
@@ -22,28 +22,19 @@ GATES = {
 }
 
 
-def _gate(x: np.ndarray, hold_windows: int = 2, **kw) -> np.ndarray:
-    out = np.zeros(x.shape, dtype=bool)
-    for j in range(x.shape[1]):
-        det = SteadyStateDetector(["s"], hold_windows=hold_windows, warmup=5, **kw)
-        for i in range(x.shape[0]):
-            out[i, j] = det.update({"s": float(x[i, j])}, 10.0 * i).steady
-    return out
-
-
 def _rates(kw: dict, runs: int, rng: np.random.Generator) -> dict[str, float]:
     n = K0 + 60
     i = np.arange(n)[:, None]
     out: dict[str, float] = {}
-    white = _gate(rng.normal(size=(K0 + 360, runs)), **kw)[K0:]
+    white = _gate_series(rng.normal(size=(K0 + 360, runs)), **kw)[K0:]
     out["white: windows not steady"] = 1.0 - white.mean()
     out["white: gate drops per hour (10 s windows)"] = (np.diff(white.astype(int), axis=0) == -1).sum() / runs
     for a in (0.5, 1.0, 2.0, 5.0):
-        s = _gate(rng.normal(size=(n, runs)) + np.where(i >= K0, a * (i - K0 + 1), 0.0), **kw)
+        s = _gate_series(rng.normal(size=(n, runs)) + np.where(i >= K0, a * (i - K0 + 1), 0.0), **kw)
         out[f"ramp {a:g}σ/window: closed within 6 windows"] = (~s[K0 : K0 + 6]).any(axis=0).mean()
         out[f"ramp {a:g}σ/window: false steady after 6 windows"] = s[K0 + 6 :].mean()
     for d in (5.0, 10.0, 20.0):
-        s = _gate(rng.normal(size=(n, runs)) + np.where(i >= K0, d, 0.0), **kw)
+        s = _gate_series(rng.normal(size=(n, runs)) + np.where(i >= K0, d, 0.0), **kw)
         out[f"step {d:g}σ: false steady in its window"] = s[K0].mean()
     return out
 
@@ -69,7 +60,7 @@ def test_white_noise_false_transient_rate_near_design_alpha(r_critical, alpha):
     # hold, the share of white-noise windows the gate calls transient is α.
     rng = np.random.default_rng(1363)
     x = rng.normal(size=(K0 + 200, 200))
-    s = _gate(x, hold_windows=1, lambdas=(0.2, 0.1, 0.1), r_critical=r_critical)[K0:]
+    s = _gate_series(x, hold_windows=1, lambdas=(0.2, 0.1, 0.1), r_critical=r_critical)[K0:]
     rate = 1.0 - s.mean()
     print(f"\nR_crit {r_critical}: white-noise windows called transient {rate:.4f} (design α {alpha})")
     assert 0.5 * alpha <= rate <= 1.6 * alpha

@@ -11,12 +11,12 @@ a redundancy report) is added by appending its function there.
 from __future__ import annotations
 
 import argparse
-import sys
 from collections import Counter
 from collections.abc import Callable
 
+from twin.commands._plant import load_plant
 from twin.commands._text import no_negative_zero
-from twin.config import ConfigError, PlantConfig, load_config
+from twin.config import PlantConfig
 
 Report = Callable[[PlantConfig], list[str]]
 
@@ -69,15 +69,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    try:
-        cfg = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
-        return 1
-    except OSError as exc:
-        print(f"twin check: cannot read {args.config}: {exc.strerror or exc}", file=sys.stderr)
-        return 2
+    cfg = load_plant("twin check", args.config)
+    if isinstance(cfg, int):
+        return cfg
     print(f"{cfg.source_path}: OK")
     for report in REPORTS[:1] if getattr(args, "summary_only", False) else REPORTS:
         print()

@@ -19,6 +19,8 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from twin.commands._plant import load_plant
+
 DEFAULT_CONFIG = Path(__file__).resolve().parents[2] / "configs" / "demo-u1.toml"
 
 CAUTION = """\
@@ -79,16 +81,10 @@ def run(args: argparse.Namespace) -> int:
         print(f"twin demo: --speed {args.speed}: expected a positive factor", file=sys.stderr)
         return 2
     from twin.commands.run import install_stop_handlers
-    from twin.config import ConfigError, load_config
 
-    try:
-        config = load_config(args.config)
-    except FileNotFoundError:
-        print(f"twin demo: {args.config}: no such file", file=sys.stderr)
-        return 2
-    except ConfigError as exc:
-        print(str(exc), file=sys.stderr)
-        return 1
+    config = load_plant("twin demo", args.config)
+    if isinstance(config, int):
+        return config
     if args.metrics_port is not None:
         config.metrics.port = args.metrics_port
     from twin.daemon import Daemon, DaemonOptions, ScaledClock, mqtt_settings_from_config

@@ -14,6 +14,8 @@ import math
 import sys
 from pathlib import Path
 
+from twin.commands._plant import load_plant
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("config", help="plant configuration file (TOML)")
@@ -35,16 +37,10 @@ def run(args: argparse.Namespace) -> int:
     if importlib.util.find_spec("matplotlib") is None:
         print("twin diagram: needs matplotlib: pip install 'twin[plot]'", file=sys.stderr)
         return 2
-    from twin.config import ConfigError, load_config
 
-    try:
-        config = load_config(args.config)
-    except FileNotFoundError:
-        print(f"twin diagram: {args.config}: no such file", file=sys.stderr)
-        return 2
-    except ConfigError as exc:
-        print(str(exc), file=sys.stderr)
-        return 1
+    config = load_plant("twin diagram", args.config)
+    if isinstance(config, int):
+        return config
     from twin import diagram
     from twin.model.solve import SolveError
 

@@ -7,6 +7,7 @@ import json
 import sys
 from typing import TYPE_CHECKING, Any
 
+from twin.commands._plant import load_plant
 from twin.commands._text import print_text
 
 if TYPE_CHECKING:  # heavy imports (CoolProp) happen only when the command runs
@@ -169,17 +170,11 @@ def _print_text(r: dict[str, Any]) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from twin.config import ConfigError, load_config
     from twin.model.solve import SolveError
 
-    try:
-        config = load_config(args.config)
-    except FileNotFoundError:
-        print(f"twin heat-balance: {args.config}: no such file", file=sys.stderr)
-        return 2
-    except ConfigError as exc:
-        print(str(exc), file=sys.stderr)
-        return 1
+    config = load_plant("twin heat-balance", args.config)
+    if isinstance(config, int):
+        return config
     if config.performance.load_stream is None:
         print(f"{args.config}: performance.load_stream: missing; expected the stream whose flow sets the load", file=sys.stderr)
         return 1

@@ -8,6 +8,8 @@ import math
 import sys
 from typing import Any
 
+from twin.commands._plant import load_plant
+
 CAUTION = (
     "Advisory results only: not for protection or control; defer to plant procedures, "
     "manufacturers' limits, local codes and licensed engineers."
@@ -143,17 +145,11 @@ def _print_text(r: dict[str, Any]) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from twin.config import ConfigError, load_config
     from twin.history import read_values_file
 
-    try:
-        config = load_config(args.config)
-    except FileNotFoundError:
-        print(f"twin reconcile: {args.config}: no such file", file=sys.stderr)
-        return 2
-    except ConfigError as exc:
-        print(str(exc), file=sys.stderr)
-        return 1
+    config = load_plant("twin reconcile", args.config)
+    if isinstance(config, int):
+        return config
     try:
         vf = read_values_file(args.values, config)
     except FileNotFoundError:

@@ -10,6 +10,8 @@ import signal
 import sys
 import threading
 
+from twin.commands._plant import load_plant
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("config", help="plant configuration file (TOML)")
@@ -44,16 +46,10 @@ def run(args: argparse.Namespace) -> int:
     # before anything slow: a SIGTERM during start-up is a clean exit, not a kill
     stop = threading.Event()
     install_stop_handlers(stop)
-    from twin.config import ConfigError, load_config
 
-    try:
-        config = load_config(args.config)
-    except FileNotFoundError:
-        print(f"twin run: {args.config}: no such file", file=sys.stderr)
-        return 2
-    except ConfigError as exc:
-        print(str(exc), file=sys.stderr)
-        return 1
+    config = load_plant("twin run", args.config)
+    if isinstance(config, int):
+        return config
     # say something at once: the imports and the model build take seconds
     logging.getLogger("twin.run").info("event=starting unit=%s config=%s text=%s", config.unit.id,
                                        json.dumps(str(args.config)) if " " in str(args.config) else args.config,

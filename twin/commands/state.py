@@ -14,6 +14,8 @@ import sys
 import time
 from typing import Any
 
+from twin.commands._plant import load_plant
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("action", choices=("show", "reset"), help="show the state file or delete it")
@@ -38,19 +40,12 @@ def _summary(parts: dict[str, Any]) -> list[str]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from twin.config import ConfigError, load_config
     from twin.state import StateError, plant_sha256, read_state, reset_state, usable
     from twin.units import rfc3339
 
-    try:
-        config = load_config(args.config)
-    except ConfigError as exc:
-        for line in exc.problems:
-            print(line, file=sys.stderr)
-        return 1
-    except OSError as exc:
-        print(f"twin state: cannot read {args.config}: {exc.strerror or exc}", file=sys.stderr)
-        return 2
+    config = load_plant("twin state", args.config)
+    if isinstance(config, int):
+        return config
     path = config.state.file
     assert path is not None  # resolved at load
     try:
