@@ -97,6 +97,14 @@ def test_twin_state_show_and_reset(tmp_path: Path, capsys: pytest.CaptureFixture
     assert "would start fresh: the plant file changed" in capsys.readouterr().out
     assert main(["state", "show", "--json", str(plant)]) == 0
     assert json.loads(capsys.readouterr().out)["parts"] == PARTS
+    # relearn-drift drops the drift charts only; everything else (and the header) stays
+    assert main(["state", "relearn-drift", str(plant)]) == 0
+    assert "next start learns a new baseline" in capsys.readouterr().out
+    after = json.loads(state.read_text())
+    assert after["parts"]["cycle"]["drift"] is None
+    assert {k: v for k, v in after["parts"]["cycle"].items() if k != "drift"} == {
+        k: v for k, v in PARTS["cycle"].items() if k != "drift"}
+    assert after["parts"]["ingest"] == PARTS["ingest"]
     assert main(["state", "reset", str(plant)]) == 0
     assert capsys.readouterr().out.strip() == f"removed {state}"
     state.write_text("{torn")

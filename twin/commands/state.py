@@ -2,7 +2,9 @@
 
 ``show`` prints what the file holds and whether ``twin run`` would restore it
 (``--json``: the whole document); ``reset`` deletes it, so the next start is
-fresh. Exit status 0 on success, 1 when there is no usable file or it cannot
+fresh; ``relearn-drift`` keeps everything but the drift charts, so the next start
+learns a new baseline over a new reference period (after an overhaul changed the
+as-built performance, say). Stop ``twin run`` first: a running daemon rewrites the file. Exit status 0 on success, 1 when there is no usable file or it cannot
 be read or deleted (one line on stderr), 2 when the plant file cannot be read.
 """
 
@@ -18,7 +20,8 @@ from twin.commands._plant import load_plant
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("action", choices=("show", "reset"), help="show the state file or delete it")
+    parser.add_argument("action", choices=("show", "reset", "relearn-drift"),
+                        help="show the state file, delete it, or drop only its drift charts")
     parser.add_argument("config", metavar="CONFIG", help="plant config file (TOML)")
     parser.add_argument("--json", action="store_true", help="show: print the whole state document as JSON")
 
@@ -40,7 +43,7 @@ def _summary(parts: dict[str, Any]) -> list[str]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from twin.state import StateError, plant_sha256, read_state, reset_state, usable
+    from twin.state import StateError, plant_sha256, read_state, reset_state, usable, write_state
     from twin.units import rfc3339
 
     config = load_plant("twin state", args.config)
@@ -57,6 +60,17 @@ def run(args: argparse.Namespace) -> int:
         except FileNotFoundError:
             print(f"twin state: no state file at {path}", file=sys.stderr)
             return 1
+        if args.action == "relearn-drift":
+            parts = dict(saved.parts)
+            cycle = dict(parts.get("cycle") or {})
+            had = cycle.get("drift") is not None
+            cycle["drift"] = None
+            parts["cycle"] = cycle
+            write_state(path, parts, unit_id=saved.unit_id, plant_file=saved.plant_file,
+                        plant_hash=saved.plant_sha256, now=saved.saved_at)
+            print(f"drift charts dropped from {path}; the next start learns a new baseline" if had
+                  else f"no drift charts in {path}; the next start learns a baseline anyway")
+            return 0
         if args.json:
             print(json.dumps(json.loads(path.read_text(encoding="utf-8")), indent=2))
             return 0
