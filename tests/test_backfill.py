@@ -401,3 +401,9 @@ def test_simulate_command_bad_input_is_one_line(tmp_path, capsys):
     rc = main(["simulate", str(CONFIG), "--hours", "1", "--out", str(tmp_path / "x.txt")])
     err = capsys.readouterr().err.strip().splitlines()
     assert rc == 2 and len(err) == 1 and "expected a name ending .csv, .csv.gz or .parquet" in err[0]
+    # an invalid plant file is a config error (exit 1, the file and key named), not a bad argument
+    broken = tmp_path / "broken.toml"
+    broken.write_text(CONFIG.read_text().replace('[unit]', '[unit]\nbogus_key = 1', 1))
+    rc = main(["simulate", str(broken), "--hours", "1", "--out", str(tmp_path / "x.csv")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 1 and err and all(ln.startswith(str(broken)) for ln in err) and "bogus_key" in err[0]

@@ -7,6 +7,7 @@ from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
     from twin.config import PlantConfig
+    from twin.history import ValuesFile
 
 
 def load_plant(command: str, path: str) -> PlantConfig | int:
@@ -29,3 +30,25 @@ def load_plant(command: str, path: str) -> PlantConfig | int:
     except OSError as exc:
         print(f"{command}: cannot read {path}: {exc.strerror or exc}", file=sys.stderr)
         return 2
+
+
+def load_values(command: str, path: str, config: PlantConfig) -> ValuesFile | int:
+    """One window of tag values from ``path``, or the exit code after one line on stderr.
+
+    Unreadable entries are printed (one line each, file:line) and kept in
+    ``ValuesFile.errors`` so the caller's exit status can say the file was not wholly read.
+    Exit codes: 2 when the file is missing, 1 when it cannot be parsed at all.
+    """
+    from twin.history import read_values_file
+
+    try:
+        vf = read_values_file(path, config)
+    except FileNotFoundError:
+        print(f"{command}: {path}: no such file", file=sys.stderr)
+        return 2
+    except (ValueError, UnicodeDecodeError) as exc:
+        print(f"{command}: {exc}", file=sys.stderr)
+        return 1
+    for e in vf.errors:
+        print(e, file=sys.stderr)
+    return vf

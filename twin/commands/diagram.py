@@ -14,7 +14,7 @@ import math
 import sys
 from pathlib import Path
 
-from twin.commands._plant import load_plant
+from twin.commands._plant import load_plant, load_values
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -61,19 +61,11 @@ def run(args: argparse.Namespace) -> int:
                                reference_label="design point",
                                title=f"{config.unit.id} · forward heat balance at load {100 * args.load:.0f} %")
         else:
-            from twin.history import read_values_file
             from twin.performance.plant_reconcile import PlantReconciler
 
-            try:
-                vf = read_values_file(args.values, config)
-            except FileNotFoundError:
-                print(f"twin diagram: {args.values}: no such file", file=sys.stderr)
-                return 2
-            except (ValueError, UnicodeDecodeError) as exc:
-                print(f"twin diagram: {exc}", file=sys.stderr)
-                return 1
-            for e in vf.errors:
-                print(e, file=sys.stderr)
+            vf = load_values("twin diagram", args.values, config)
+            if isinstance(vf, int):
+                return vf
             rec = PlantReconciler(config).reconcile(vf.values, excluded=vf.excluded)
             if not rec.converged:
                 print(f"twin diagram: {args.values}: reconciliation {rec.status} ({rec.message}); nothing drawn",

@@ -8,7 +8,7 @@ import math
 import sys
 from typing import Any
 
-from twin.commands._plant import load_plant
+from twin.commands._plant import load_plant, load_values
 
 CAUTION = (
     "Advisory results only: not for protection or control; defer to plant procedures, "
@@ -145,21 +145,12 @@ def _print_text(r: dict[str, Any]) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from twin.history import read_values_file
-
     config = load_plant("twin reconcile", args.config)
     if isinstance(config, int):
         return config
-    try:
-        vf = read_values_file(args.values, config)
-    except FileNotFoundError:
-        print(f"twin reconcile: {args.values}: no such file", file=sys.stderr)
-        return 2
-    except (ValueError, UnicodeDecodeError) as exc:
-        print(f"twin reconcile: {exc}", file=sys.stderr)
-        return 1
-    for e in vf.errors:  # reported, and the exit status says the file was not wholly read
-        print(e, file=sys.stderr)
+    vf = load_values("twin reconcile", args.values, config)  # errors reported; the exit status says so
+    if isinstance(vf, int):
+        return vf
     from twin.performance.plant_reconcile import PlantReconciler
 
     reconciler = PlantReconciler(config, alpha=args.alpha, max_eliminations=args.max_eliminations)

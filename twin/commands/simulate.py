@@ -7,6 +7,8 @@ import sys
 import time
 from datetime import datetime
 
+from twin.commands._plant import load_plant
+
 DEFAULT_START = "2026-01-05T00:00:00Z"
 
 
@@ -43,20 +45,14 @@ def parse_time(text: str, what: str) -> float:
 
 
 def run(args: argparse.Namespace) -> int:
-    from twin.config import ConfigError, load_config
-
     try:
         start = parse_time(args.start, "--start")
-        config = load_config(args.config)
-    except FileNotFoundError:
-        print(f"twin simulate: {args.config}: no such file", file=sys.stderr)
-        return 2
     except ValueError as exc:
         print(f"twin simulate: {exc}", file=sys.stderr)
         return 2
-    except ConfigError as exc:
-        print(str(exc), file=sys.stderr)
-        return 1
+    config = load_plant("twin simulate", args.config)  # a ConfigError is a ValueError: load it apart
+    if isinstance(config, int):
+        return config
     from twin.demo.history import write_history
     from twin.history.writers import table_format
 
