@@ -20,7 +20,7 @@ def test_check_demo_exits_zero_with_summary(capsys):
     out = capsys.readouterr().out
     assert f"{DEMO}: OK" in out
     assert "unit: demo-u1" in out
-    assert "streams: 52" in out  # 52 [[streams]] tables in configs/demo-u1.toml
+    assert "streams: 54" in out  # 54 [[streams]] tables in configs/demo-u1.toml
     assert "closed_heater 6" in out and "turbine_group 8" in out
     assert "sensors: 91 (" in out and "power 4" in out
     assert "broker: 127.0.0.1:1883 MQTT 3.1.1" in out

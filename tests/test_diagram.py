@@ -133,7 +133,7 @@ def test_twin_diagram_writes_the_file(tmp_path: Path, suffix: str, capsys: Any) 
     assert main(["diagram", str(DEMO), "--load", "0.75", "-o", str(out)]) == 0
     data = out.read_bytes()
     assert data.startswith(b"\x89PNG") if suffix == "png" else b"<svg" in data[:500]
-    assert "52 stream states" in capsys.readouterr().out
+    assert "54 stream states" in capsys.readouterr().out
 
 
 def test_twin_diagram_from_values_reconciles_first(tmp_path: Path) -> None:

@@ -76,6 +76,9 @@ CASES = {
     "lp_efficiency": ({"constants": _efficiency("LP", 0.01)}, (20.0, 45.0)),
     # heater 7 TTD +3 K: a few kJ/kWh [memory]
     "feedwater_heaters": ({"constants": {"fwh7": {"ttd": -1.7 + 3.0}}}, (2.0, 20.0)),
+    # a 1 % make-up (steam lost from the main-steam line): of the order of 1 % heat rate [memory]
+    "cycle_isolation": ({"overrides": {("steam_lost", "mass_flow"): 0.01 * 295.0},
+                         "skip": frozenset({"steam_leak.flow"})}, (40.0, 120.0)),
 }
 
 

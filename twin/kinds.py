@@ -107,6 +107,20 @@ KINDS: dict[str, Kind] = {
             (_out("outlet"),),
         ),
         Kind(
+            "cycle_loss",
+            "Cycle loss sink (steam or water leaving the cycle: a leak, blowdown, steam lost): its "
+            "inlet stream leaves the water-steam cycle and the make-up replaces it. Forward heat "
+            "balance: flow = normal_fraction m[normal_reference] + normal_flow (the normal loss); "
+            "reconciliation: flow free (the make-up flow meter determines it).",
+            (_in("inlet"),),
+            (
+                Param("normal_fraction", "ratio", 0.0,
+                      "normal loss as a fraction of the flow of normal_reference [-]"),
+                Param("normal_reference", "text", "", "stream whose flow normal_fraction scales"),
+                Param("normal_flow", "mass_flow", 0.0, "normal loss as a fixed mass flow [kg/s]"),
+            ),
+        ),
+        Kind(
             "boiler",
             "Steam generator: feedwater in, main steam out; duty = m (h_steam - h_feedwater).",
             (_in("feedwater"), _out("steam")),

@@ -72,6 +72,8 @@ def check_plant(cfg: PlantConfig) -> list[tuple[str, str]]:
                     "expected one, got " + ("both" if fixed else "neither"))
             elif ref and ref not in streams:
                 add(f"{where}.discharge_reference", f"unknown stream {ref!r}; expected a stream id")
+        if e.kind == "cycle_loss":
+            _check_cycle_loss(e, streams, where, add)
         if e.kind == "generator" and isinstance(e.params.get("turbines"), list):
             for t in e.params["turbines"]:
                 if by_id.get(t) is None or by_id[t].kind not in ("turbine_group", "exhaust_loss"):
@@ -152,6 +154,25 @@ def _check_equipment(e: EquipmentConfig, streams: set[str], producers: dict[str,
         else:
             params[param.name] = param.default
     e.params = params
+
+
+def _check_cycle_loss(e: EquipmentConfig, streams: set[str], where: str, add: Any) -> None:
+    """The normal loss of a cycle_loss sink: non-negative, its fraction of a declared other stream."""
+    p = e.params
+    fraction, flow, ref = p.get("normal_fraction"), p.get("normal_flow"), p.get("normal_reference")
+    if isinstance(fraction, float) and not 0.0 <= fraction < 1.0:
+        add(f"{where}.normal_fraction", f"{fraction!r} out of range; expected a fraction 0 <= f < 1")
+    if isinstance(flow, float) and flow < 0.0:
+        add(f"{where}.normal_flow", f"{flow!r} kg/s is negative; expected a mass flow >= 0")
+    if isinstance(ref, str) and ref:
+        if ref not in streams:
+            add(f"{where}.normal_reference", f"unknown stream {ref!r}; expected a stream id")
+        elif ref == e.ports.get("inlet"):
+            add(f"{where}.normal_reference", f"{ref!r} is the loss's own inlet; expected another stream "
+                "(e.g. the main steam)")
+    elif isinstance(fraction, float) and fraction != 0.0:
+        add(f"{where}.normal_reference", "missing; expected the stream whose flow normal_fraction scales "
+            "(e.g. the main steam)")
 
 
 def _param_value(value: Any, dimension: str, baro: float | None) -> float | str | list[str]:

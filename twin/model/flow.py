@@ -1,4 +1,4 @@
-"""Flow equipment: source, boiler, reheater, valves and pipes, splitter, mixer, pump."""
+"""Flow equipment: source, cycle loss, boiler, reheater, valves and pipes, splitter, mixer, pump."""
 
 from __future__ import annotations
 
@@ -8,6 +8,7 @@ from twin.model.core import (
     PERFORMANCE,
     SCALE_ENERGY_FLOW,
     SCALE_ENTHALPY,
+    SCALE_MASS,
     SCALE_PRESSURE,
     Context,
     Rows,
@@ -24,6 +25,55 @@ class Source(Equipment):
 
     def guess(self, g: Guess) -> bool:
         return g.set(self.port("outlet"), "m", 0.0)
+
+
+class CycleLoss(Equipment):
+    """Boundary outflow: steam or water that leaves the cycle (leak, blowdown, steam lost).
+
+    No balance: the inlet stream leaves the flowsheet, and the cycle's mass
+    balance makes the make-up (a ``source``) replace it. Performance (the
+    normal loss, used by the forward heat balance and the expected model):
+    ``m_in = normal_fraction · m[normal_reference] + normal_flow`` [kg/s]. The
+    reconciliation leaves the relation out, so the loss is free and the
+    make-up flow meter determines it.
+    """
+
+    kind = "cycle_loss"
+
+    def balances(self, ctx: Context, rows: Rows) -> None:
+        return None
+
+    def _rule(self) -> tuple[float, str, float]:
+        """(fraction [-], reference stream or "" when the fraction is 0, fixed flow [kg/s])."""
+        f, ref = float(self.params["normal_fraction"]), str(self.params.get("normal_reference") or "")
+        return f, (ref if f != 0.0 else ""), float(self.params["normal_flow"])
+
+    def performance(self, ctx: Context, rows: Rows, skip: frozenset[str]) -> None:
+        name = self.relation("flow")
+        if name in skip:
+            return
+        a = self.port("inlet")
+        lay = ctx.layout
+        f, ref, m0 = self._rule()
+        r = ctx.m(a) - m0
+        grad = {lay.m(a): 1.0}
+        if ref:
+            r -= f * ctx.m(ref)
+            grad[lay.m(ref)] = grad.get(lay.m(ref), 0.0) - f
+        rows.add(name, PERFORMANCE, r, grad, SCALE_MASS)
+
+    def lost_energy(self, ctx: Context) -> float:
+        """Energy flow leaving the cycle with the loss, m h [W] (IAPWS-IF97 reference state)."""
+        a = self.port("inlet")
+        return ctx.m(a) * ctx.h(a)
+
+    def guess(self, g: Guess) -> bool:
+        f, ref, m0 = self._rule()
+        if ref:
+            if not g.has(ref, "m"):
+                return False
+            m0 += f * g.get(ref, "m")
+        return g.set(self.port("inlet"), "m", m0)
 
 
 class Boiler(Equipment):

@@ -21,7 +21,17 @@ from twin.model.core import (
     Rows,
     SparsityPattern,
 )
-from twin.model.flow import Boiler, Mixer, Pipe, Pump, Reheater, Source, Splitter, ThrottleValve
+from twin.model.flow import (
+    Boiler,
+    CycleLoss,
+    Mixer,
+    Pipe,
+    Pump,
+    Reheater,
+    Source,
+    Splitter,
+    ThrottleValve,
+)
 from twin.model.heat_exchange import ClosedHeater, Condenser, OpenHeater
 from twin.model.turbine import ExhaustLoss, Generator, TurbineGroup
 from twin.properties import Water, water
@@ -30,6 +40,7 @@ EQUIPMENT_CLASSES: dict[str, type[Equipment]] = {
     cls.kind: cls
     for cls in (
         Source,
+        CycleLoss,
         Boiler,
         Reheater,
         ThrottleValve,

@@ -27,7 +27,10 @@ model at the actual boundary conditions:
   at the *actual* condenser duty and cooling-water inlet, with the design
   cooling-water flow (extra duty from a turbine loss stays with that loss);
 - ``main_steam_temperature``, ``reheat_temperature``, ``feedwater_heaters``
-  (actual TTD and DCA of every closed heater).
+  (actual TTD and DCA of every closed heater);
+- ``cycle_isolation``: the actual flow of every ``cycle_loss`` sink (the
+  make-up the reconciliation found) against its normal loss, the flow the
+  expected model assumes (make-up beyond normal).
 
 A cause run that fails is left out of ``by_cause``; then ``unaccounted`` is
 left out too and ``status`` names the failed causes (nothing is folded into
@@ -46,7 +49,7 @@ import numpy as np
 from scipy.optimize import brentq
 
 from twin.model.core import Context
-from twin.model.flow import Reheater, ThrottleValve
+from twin.model.flow import CycleLoss, Reheater, ThrottleValve
 from twin.model.flowsheet import Flowsheet
 from twin.model.heat_exchange import ClosedHeater, Condenser
 from twin.model.solve import HeatBalance, Operation, SolveError, solve_off_design
@@ -69,6 +72,7 @@ CAUSES = (
     "ip_efficiency",
     "lp_efficiency",
     "feedwater_heaters",
+    "cycle_isolation",
 )
 
 PRESSURE_CONTROLS = ("sliding", "fixed", "schedule")
@@ -78,6 +82,7 @@ _PRESSURE_TOL = 1.0  # [Pa]
 _RATIO_TOL = 1e-6  # [-]
 _FACTOR_TOL = 1e-7  # [-]
 _TEMPERATURE_TOL = 1e-4  # [K]
+_FLOW_TOL = 1e-4  # [kg/s]
 
 
 @dataclass(frozen=True)
@@ -182,6 +187,7 @@ class ExpectedModel:
         self.condensers = [e for e in fs.of_kind(Condenser) if isinstance(e, Condenser)]
         self.reheat_stream = next((e.port("outlet") for e in fs.of_kind(Reheater)), None)
         self.heaters = [e.id for e in fs.of_kind(ClosedHeater)]
+        self.losses = [e for e in fs.of_kind(CycleLoss) if isinstance(e, CycleLoss)]
         valve = fs.by_id.get(op.throttle_valve)
         self.valve = valve if isinstance(valve, ThrottleValve) else None
         groups = [e for e in fs.of_kind(TurbineGroup) if isinstance(e, TurbineGroup)]
@@ -377,7 +383,24 @@ class ExpectedModel:
 
         if self.heaters:
             attempt("feedwater_heaters", heaters)
+        if self.losses:
+            attempt("cycle_isolation", lambda: self._isolation_run(ctx, rctx))
         return runs, failed
+
+    def _isolation_run(self, ctx: Context, rctx: Context) -> dict[str, Any]:
+        """Every cycle-loss sink at its actual flow instead of its normal loss (make-up beyond normal)."""
+        overrides: dict[tuple[str, str], float] = {}
+        for e in self.losses:
+            a = e.port("inlet")
+            m = ctx.m(a)
+            if not math.isfinite(m):
+                raise ValueError("cycle loss not observable")
+            if abs(m - rctx.m(a)) > _FLOW_TOL:
+                overrides[(a, "mass_flow")] = m
+        if not overrides:
+            return {"zero": True}
+        return {"overrides": overrides,
+                "skip": frozenset(e.relation("flow") for e in self.losses if (e.port("inlet"), "mass_flow") in overrides)}
 
     def _condenser_run(self, ctx: Context, rctx: Context, cw_inlet: float | None) -> dict[str, Any]:
         """The condenser at its actual performance: the UA that gives the actual back-pressure at the actual duty.
