@@ -28,13 +28,16 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
     ("L9 commands", ("twin.cli", "twin.commands.*", "twin.bench.*")),
     ("L8 orchestrators", ("twin.daemon", "twin.backfill", "twin.demo.*")),
     ("L7b cycle", ("twin.cycle",)),
-    ("L7 adapters", ("twin.mqtt", "twin.metrics", "twin.history.*", "twin.ingest.*", "twin.diagram", "twin.state")),
+    ("L7 adapters", ("twin.mqtt", "twin.sparkplug", "twin.metrics", "twin.history.*", "twin.ingest.*",
+                     "twin.diagram", "twin.state")),
     ("L6 monitor", ("twin.monitor.*",)),
     ("L5 performance", ("twin.performance.*",)),
     ("L4 reconcile", ("twin.reconcile.*",)),
     ("L3 model", ("twin.model.*",)),
     ("L2 properties", ("twin.properties.*",)),
-    ("L1 foundation", ("twin.config.*", "twin.units", "twin.kinds", "twin.result", "twin")),
+    # twin._sparkplug_schema: generated data (the Sparkplug B descriptor), no imports
+    ("L1 foundation", ("twin.config.*", "twin.units", "twin.kinds", "twin.result", "twin._sparkplug_schema",
+                       "twin")),
 )
 
 # Same-layer imports between different packages that the design asks for.
@@ -42,6 +45,7 @@ SIDEWAYS_ALLOWED: dict[tuple[str, str], str] = {
     ("twin.config", "twin.units"): "the schema converts plant units to SI once, at load",
     ("twin.config", "twin.kinds"): "the schema validates equipment against the kinds table",
     ("twin.cli", "twin.commands"): "one help style for every command (twin.commands._text)",
+    ("twin.ingest", "twin.sparkplug"): "the ingest decodes Sparkplug B payloads through the protobuf gateway",
 }
 
 # Packages that import nothing from twin except themselves.
@@ -51,6 +55,7 @@ ISOLATED: tuple[str, ...] = ("twin.reconcile", "twin.monitor")
 GATEWAYS: dict[str, str] = {
     "CoolProp": "twin.properties.backend",
     "paho": "twin.mqtt",
+    "google": "twin.sparkplug",  # protobuf (google.protobuf)
     "prometheus_client": "twin.metrics",
     "pydantic": "twin.config.*",
     "amqtt": "twin.demo._broker_main",

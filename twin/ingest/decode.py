@@ -65,10 +65,13 @@ REJECT_REASONS: tuple[str, ...] = (
     "out_of_range",  # the SI value lies outside the tag's valid range
     "too_old",  # timestamp older than any window still to be closed (the horizon)
     "future_timestamp",  # timestamp ahead of the receive time by more than the tolerance
+    "bad_protobuf",  # a Sparkplug B topic whose payload is not a Sparkplug B protobuf payload
+    "unknown_alias",  # a Sparkplug DATA metric by an alias the current BIRTH did not declare
+    "unknown_metric",  # a Sparkplug DATA metric by a name the current BIRTH did not declare
 )
 """Every reason a sample can be rejected for; a fixed, bounded set."""
 
-PAYLOAD_KINDS = ("number", "json", "batch")
+PAYLOAD_KINDS = ("number", "json", "batch", "sparkplug")
 TIMESTAMP_FORMATS = ("epoch_s", "epoch_ms", "rfc3339", "auto")
 DEFAULT_MAX_PAYLOAD_BYTES = 64 * 1024
 
@@ -128,6 +131,10 @@ class PayloadFormat:
         Quality values that mean good. Required when ``quality`` is set; for
         ``batch`` it applies to the ``"q"`` entries (default ``{True, "good"}``).
         Booleans and numbers are told apart (``True`` does not match ``1``).
+    metric : str or None
+        ``sparkplug`` only (and required there): the Sparkplug B metric name;
+        the binding's topic is the NDATA or DDATA topic of its edge node or
+        device (decoded by :mod:`twin.ingest.sparkplug`, not by :class:`TopicMap`).
     """
 
     kind: str = "number"
@@ -136,6 +143,7 @@ class PayloadFormat:
     timestamp_format: str = "auto"
     quality: str | None = None
     good_quality: frozenset[str | int | bool] | None = None
+    metric: str | None = None
 
     def __post_init__(self) -> None:
         if self.kind not in PAYLOAD_KINDS:
@@ -146,8 +154,11 @@ class PayloadFormat:
             )
         if self.kind == "json" and not self.value:
             raise ValueError("a 'json' payload format needs 'value' (a JSON pointer or key)")
-        if self.kind == "number" and (self.value or self.timestamp or self.quality):
-            raise ValueError("a 'number' payload format takes no value/timestamp/quality fields")
+        if self.kind in ("number", "sparkplug") and (self.value or self.timestamp or self.quality):
+            raise ValueError(f"a {self.kind!r} payload format takes no value/timestamp/quality fields")
+        if (self.kind == "sparkplug") != bool(self.metric):
+            raise ValueError("a 'sparkplug' payload format needs 'metric' (a Sparkplug metric name), "
+                             "and only it takes one")
         if self.quality is not None and self.good_quality is None:
             raise ValueError(f"quality field {self.quality!r} is set but good_quality is not")
         for name in ("value", "timestamp", "quality"):
@@ -345,6 +356,9 @@ class TopicMap:
         self._batch: dict[str, dict[str, _Compiled]] = {}
         self.bindings: dict[str, TagBinding] = {}
         for b in bindings:
+            if b.fmt.kind == "sparkplug":
+                raise ValueError(f"tag {b.tag!r}: a Sparkplug binding is decoded by "
+                                 "twin.ingest.sparkplug.SparkplugSession, not by a TopicMap")
             if b.tag in self.bindings:
                 raise ValueError(f"tag {b.tag!r} is bound twice")
             self.bindings[b.tag] = b

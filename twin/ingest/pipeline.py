@@ -12,6 +12,7 @@ import threading
 from collections.abc import Callable
 
 from twin.ingest.decode import REJECT_REASONS, DecodeOutcome, Rejection, TopicMap
+from twin.ingest.sparkplug import SPARKPLUG_PREFIX, SparkplugOutcome, SparkplugSession
 from twin.ingest.store import TagStore
 
 
@@ -84,6 +85,8 @@ class LogRateLimiter:
 
 # on_reject(rejection, n_suppressed_since_last_report)
 RejectReport = Callable[[Rejection, int], None]
+# on_sparkplug(outcome): events to log, commands to publish, historical samples to route
+SparkplugReport = Callable[[SparkplugOutcome], None]
 
 
 class Ingestor:
@@ -108,6 +111,13 @@ class Ingestor:
         Samples stamped more than this after the receive time are rejected
         as ``future_timestamp`` [s] (a publisher clock running fast would
         otherwise push good samples out of the ring buffer); ``inf`` = no limit.
+    sparkplug : SparkplugSession, optional
+        Takes every message whose topic starts with ``spBv1.0/``: its live
+        samples go to the store like any other, deaths and births mark tags
+        offline and online in the store at once.
+    on_sparkplug : callable, optional
+        ``on_sparkplug(outcome)`` after each Sparkplug message that produced
+        events, commands or historical samples; runs on the network thread.
 
     Rejected samples never reach the store, so they cannot displace good ones.
     """
@@ -120,6 +130,8 @@ class Ingestor:
         limiter: LogRateLimiter | None = None,
         horizon: float = math.inf,
         future_tolerance: float = math.inf,
+        sparkplug: SparkplugSession | None = None,
+        on_sparkplug: SparkplugReport | None = None,
     ) -> None:
         if not (horizon > 0 and future_tolerance >= 0):
             raise ValueError(
@@ -127,7 +139,8 @@ class Ingestor:
             )
         self.horizon = float(horizon)
         self.future_tolerance = float(future_tolerance)
-        missing = sorted(set(topic_map.bindings) - set(store.tags))
+        bound = set(topic_map.bindings) | (set(sparkplug.bindings) if sparkplug is not None else set())
+        missing = sorted(bound - set(store.tags))
         if missing:
             raise ValueError(f"the tag store does not hold bound tags {missing}")
         self.topic_map = topic_map
@@ -135,6 +148,8 @@ class Ingestor:
         self.on_reject = on_reject
         self.limiter = limiter if limiter is not None else LogRateLimiter()
         self.rejects = RejectCounter()
+        self.sparkplug = sparkplug
+        self.on_sparkplug = on_sparkplug
         self._decode_one = topic_map.decode_one
         self._add = store.add
         self.messages = 0
@@ -143,13 +158,29 @@ class Ingestor:
 
     def __call__(self, topic: str, payload: bytes, now: float) -> None:
         self.last_message_time = now
+        if self.sparkplug is not None and topic.startswith(SPARKPLUG_PREFIX):
+            self._sparkplug_message(self.sparkplug, topic, payload, now)
+            return
         one = self._decode_one(topic, payload, now)
         if one is not None and now - self.horizon <= one[1] <= now + self.future_tolerance:
             self._add(*one)  # the common case: one valid sample of a plausible time
             self.messages += 1
             self.samples += 1
             return
-        out = self.topic_map.decode(topic, payload, now)
+        self._take(self.topic_map.decode(topic, payload, now), now)
+
+    def _sparkplug_message(self, session: SparkplugSession, topic: str, payload: bytes, now: float) -> None:
+        sp = session.decode(topic, payload, now)
+        if sp.offline:
+            self.store.set_offline(sp.offline, True)
+        if sp.online:
+            self.store.set_offline(sp.online, False)
+        self._take(DecodeOutcome(sp.samples, sp.rejections), now)
+        if self.on_sparkplug is not None and (sp.events or sp.commands or sp.historical):
+            self.on_sparkplug(sp)
+
+    def _take(self, out: DecodeOutcome, now: float) -> None:
+        """Store the samples of one decoded message; count and report its rejections."""
         if out.samples:
             self._check_times(out, now)
         if out.samples:

@@ -39,7 +39,8 @@ class WindowStats:
     age : float
         ``t_end - last_time`` [s]; ``inf`` if no good sample is held.
     stale : bool
-        ``age`` exceeds the tag's maximum age.
+        ``age`` exceeds the tag's maximum age, or the tag's source is offline
+        (its Sparkplug edge node or device died; see :meth:`TagStore.set_offline`).
     """
 
     mean: float
@@ -97,6 +98,7 @@ class TagStore:
         for tag, a in self._max_age.items():
             if not a > 0:
                 raise ValueError(f"tag {tag!r}: max_age {a!r} must be positive")
+        self._offline: set[str] = set()
         self._lock = threading.Lock()
 
     @property
@@ -125,6 +127,23 @@ class TagStore:
                 ring.v[i] = v
                 ring.ok[i] = ok
                 ring.n += 1
+
+    def set_offline(self, tags: Iterable[str], offline: bool = True) -> None:
+        """Mark tags whose source went away (a Sparkplug death) stale until cleared (its next birth)."""
+        tags = list(tags)
+        unknown = sorted(set(tags) - set(self._rings))
+        if unknown:
+            raise KeyError(f"the tag store does not hold {unknown}")
+        with self._lock:
+            if offline:
+                self._offline.update(tags)
+            else:
+                self._offline.difference_update(tags)
+
+    def offline(self) -> frozenset[str]:
+        """Tags marked offline now."""
+        with self._lock:
+            return frozenset(self._offline)
 
     def overwritten(self) -> dict[str, int]:
         """Samples per tag lost to ring overflow since start."""
@@ -165,6 +184,7 @@ class TagStore:
         with self._lock:
             for tag, r in self._rings.items():
                 copies[tag] = (r.n, r.t.copy(), r.v.copy(), r.ok.copy())
+            offline = frozenset(self._offline)
         out: dict[str, WindowStats] = {}
         for tag, (n, t, v, ok) in copies.items():
             if n < self.capacity:
@@ -184,7 +204,7 @@ class TagStore:
             else:
                 mean = std = lo = hi = math.nan
             out[tag] = WindowStats(
-                mean, std, count, n_bad, last_time, age, lo, hi, age > self._max_age[tag]
+                mean, std, count, n_bad, last_time, age, lo, hi, age > self._max_age[tag] or tag in offline
             )
         return out
 
