@@ -18,7 +18,7 @@ from pathlib import Path
 import pytest
 
 from tests.test_metrics import full_result
-from twin.metrics import Health, MetricsServer, exposition
+from twin.metrics import Health, MetricsServer, SparkplugHealth, exposition
 from twin.mqtt import CONNECT_FAILURE_REASONS
 from twin.result import CycleResult, Estimate
 
@@ -65,7 +65,9 @@ def full_health() -> Health:
                   last_message_time=1.7e9 - 0.5, messages=10, rejected={"too_old": 1},
                   tag_last_time=tags, overwritten=dict.fromkeys(tags, 0), samples_missing=dict.fromkeys(tags, 3),
                   sample_period=dict.fromkeys(tags, 1.0), cycle_period=10.0,
-                  state_saved_time=1.7e9 - 30.0)
+                  state_saved_time=1.7e9 - 30.0,
+                  sparkplug=SparkplugHealth({"HP-MS-P1": False}, {"plant/edge1": True}, {"plant/edge1": 1},
+                                            {"plant/edge1": 1}, {"plant/edge1": 0}, 2, 3))
 
 
 def exported_names() -> set[str]:

@@ -26,10 +26,11 @@ from typing import Any
 from twin.config import PlantConfig
 from twin.cycle import DRIFT_KPIS, CycleOptions, UnitCycle, WindowInput
 from twin.ingest.decode import PayloadFormat, TagBinding, TopicMap
-from twin.ingest.pipeline import Ingestor
+from twin.ingest.pipeline import Ingestor, LogRateLimiter
 from twin.ingest.rate import SampleRateMonitor
+from twin.ingest.sparkplug import SparkplugOutcome, SparkplugSession
 from twin.ingest.store import TagStore, WindowStats
-from twin.metrics import Health, MetricsServer, MetricsTls
+from twin.metrics import Health, MetricsServer, MetricsTls, SparkplugHealth
 from twin.monitor import Transition
 from twin.mqtt import ConnectionEvent, MqttClient, MqttSettings, read_secret
 from twin.performance.plant_reconcile import PlantReconciler
@@ -119,6 +120,8 @@ def bindings_from_config(config: PlantConfig) -> list[TagBinding]:
         pl = s.payload
         if pl.format == "number":
             fmt = PayloadFormat("number")
+        elif pl.format == "sparkplug":
+            fmt = PayloadFormat("sparkplug", metric=pl.metric)
         else:
             fmt = PayloadFormat(pl.format, pl.value, pl.timestamp, pl.timestamp_format, pl.quality,
                                 frozenset(pl.good_quality) if pl.good_quality else None)
@@ -206,14 +209,20 @@ class Daemon:
         mon = config.monitoring
         self.cycle_seconds = float(mon.cycle)
         self.window_seconds = float(mon.window or mon.cycle)
-        # ingest
-        self.topic_map = TopicMap(bindings_from_config(config))
+        # ingest: Sparkplug B metrics through the Sparkplug session, every other payload through the topic map
+        bindings = bindings_from_config(config)
+        self.topic_map = TopicMap([b for b in bindings if b.fmt.kind != "sparkplug"])
+        sp = [b for b in bindings if b.fmt.kind == "sparkplug"]
+        self.sparkplug = (SparkplugSession(sp, rebirth_interval=float(config.broker.sparkplug_rebirth_interval))
+                          if sp else None)
+        self._sparkplug_log = LogRateLimiter()
         max_age = {s.tag: float(s.max_age) for s in config.sensors}
         self.store = TagStore([s.tag for s in config.sensors], capacity=self.options.store_capacity, max_age=max_age)
         # a sample older than any window still to close is useless; one far ahead is a clock fault
         horizon = self.window_seconds + self.cycle_seconds + self.options.grace_seconds
         self.ingestor = Ingestor(self.topic_map, self.store, on_reject=self._on_reject, horizon=horizon,
-                                 future_tolerance=float(config.broker.future_tolerance))
+                                 future_tolerance=float(config.broker.future_tolerance),
+                                 sparkplug=self.sparkplug, on_sparkplug=self._on_sparkplug)
         self.rates = SampleRateMonitor([s.tag for s in config.sensors],
                                        {s.tag: s.sample_period for s in config.sensors})
         self.windows_skipped = 0
@@ -240,6 +249,27 @@ class Daemon:
     def _on_reject(self, rejection: Any, suppressed: int) -> None:
         log_event(logging.WARNING, "payload_rejected", key=rejection.key, reason=rejection.reason,
                   detail=getattr(rejection, "detail", ""), suppressed_since_last=suppressed)
+
+    def _on_sparkplug(self, out: SparkplugOutcome) -> None:
+        """Sparkplug session events: one log line each (gaps rate-limited), rebirth requests published."""
+        now = self.clock.now()
+        for event, fields in out.events:
+            if event == "sparkplug_sequence_gap":
+                log, n = self._sparkplug_log.should_log(str(fields["node"]), event, now)
+                if not log:
+                    continue
+                fields = {**fields, "suppressed_since_last": n}
+            quiet = event == "sparkplug_birth" and not fields.get("missing")
+            log_event(logging.INFO if quiet else logging.WARNING, event, **fields)
+        if out.commands and self.mqtt is not None:
+            for topic, payload in out.commands:
+                self.mqtt.publish(topic, payload, qos=0)
+        if out.historical:
+            log, n = self._sparkplug_log.should_log("historical", "sparkplug_historical", now)
+            if log:
+                log_event(logging.INFO, "sparkplug_historical_routed", samples=len(out.historical),
+                          suppressed_since_last=n,
+                          text="store-and-forward samples go to back-fill, never into live windows")
 
     def current(self) -> CycleResult | None:
         """The latest result (read by the metrics collector at scrape time)."""
@@ -280,8 +310,16 @@ class Daemon:
             samples_missing=dict(self.rates.missing), sample_period=dict(self.rates.period),
             windows_skipped=self.windows_skipped, cycles_failed=self.cycles_failed,
             cycle_period=self.cycle_seconds, state_saved_time=self.state_saved_at,
-            state_write_failures=self.state_write_failures,
+            state_write_failures=self.state_write_failures, sparkplug=self._sparkplug_health(),
         )
+
+    def _sparkplug_health(self) -> SparkplugHealth | None:
+        sp = self.sparkplug
+        if sp is None:
+            return None
+        offline = self.store.offline()
+        return SparkplugHealth({t: t in offline for t in sp.bindings}, sp.online(), dict(sp.sequence_gaps),
+                               dict(sp.rebirth_requests), dict(sp.deaths_ignored), sp.historical, sp.ignored)
 
     # ------------------------------------------------------------------ state file
     def state_parts(self) -> dict[str, Any]:
@@ -366,7 +404,8 @@ class Daemon:
             self.metrics.start()
             log_event(logging.INFO, "metrics_listening", address=m.address, port=self.metrics.port,
                       scheme=self.metrics.scheme, client_certificates=bool(tls and tls.client_ca_file))
-        self.mqtt.subscribe({t: int(self.mqtt_settings.qos) for t in self.topic_map.topics})
+        topics = self.topic_map.topics + (self.sparkplug.subscriptions if self.sparkplug is not None else [])
+        self.mqtt.subscribe({t: int(self.mqtt_settings.qos) for t in topics})
         self.mqtt.start()
         log_event(logging.INFO, "started", unit=self.config.unit.id, broker=f"{self.mqtt_settings.host}:{self.mqtt_settings.port}",
                   tags=len(self.config.sensors), cycle_s=self.cycle_seconds, window_s=self.window_seconds)

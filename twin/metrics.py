@@ -62,6 +62,32 @@ Provider = Callable[[], CycleResult | None]
 
 
 @dataclass(frozen=True)
+class SparkplugHealth:
+    """Live state of the Sparkplug B session (part of :class:`Health`).
+
+    Attributes
+    ----------
+    tag_offline : mapping of str to bool
+        Per Sparkplug tag: its edge node or device is dead now (NDEATH/DDEATH, no new BIRTH yet).
+    node_online : mapping of str to bool
+        Per edge node (``<group>/<node>``): born and not dead since.
+    sequence_gaps, rebirth_requests, deaths_ignored : mapping of str to int
+        Per edge node since start: jumps of ``seq``; NCMD rebirth requests sent; NDEATHs
+        ignored because their ``bdSeq`` did not match the current NBIRTH.
+    historical, ignored : int
+        ``is_historical`` samples routed to back-fill (not live); metrics no sensor is bound to.
+    """
+
+    tag_offline: Mapping[str, bool]
+    node_online: Mapping[str, bool]
+    sequence_gaps: Mapping[str, int]
+    rebirth_requests: Mapping[str, int]
+    deaths_ignored: Mapping[str, int]
+    historical: int
+    ignored: int
+
+
+@dataclass(frozen=True)
 class Health:
     """Live state of the daemon's inputs and loop, read at scrape time (not per window).
 
@@ -105,6 +131,8 @@ class Health:
         When the state file was last written [s since the epoch]; NaN if never.
     state_write_failures : int
         Failed writes of the state file since start.
+    sparkplug : SparkplugHealth or None
+        The Sparkplug B session; None when no sensor is bound to a Sparkplug metric.
     """
 
     unit_id: str
@@ -129,6 +157,7 @@ class Health:
     cycle_period: float = math.nan
     state_saved_time: float = math.nan
     state_write_failures: int = 0
+    sparkplug: SparkplugHealth | None = None
 
 
 HealthProvider = Callable[[], Health]
@@ -435,7 +464,32 @@ def health_families(h: Health) -> list[Metric]:
     f.gauge("twin_state_saved_timestamp_seconds", "When the state file was last written, Unix time",
             h.state_saved_time)
     f.counter("twin_state_write_failures", "Failed writes of the state file since start", h.state_write_failures)
+    if h.sparkplug is not None:
+        _sparkplug(f, h.sparkplug)
     return list(f.families.values())
+
+
+def _sparkplug(f: _Families, h: SparkplugHealth) -> None:
+    """Sparkplug B session health (only when the plant file binds Sparkplug metrics)."""
+    for tag, off in h.tag_offline.items():
+        f.flag("twin_sensor_offline", "1 while the sensor's Sparkplug edge node or device is dead (NDEATH or "
+               "DDEATH received, no new BIRTH yet): its readings are stale at once", off, tag=tag)
+    for node, up in h.node_online.items():
+        f.flag("twin_sparkplug_node_online", "1 while the Sparkplug edge node is born (NBIRTH) and not dead",
+               up, node=node)
+    for node, n in h.sequence_gaps.items():
+        f.counter("twin_sparkplug_sequence_gaps", "Sparkplug messages of the edge node whose seq did not follow "
+                  "the previous one (lost or reordered messages), since start", n, node=node)
+    for node, n in h.rebirth_requests.items():
+        f.counter("twin_sparkplug_rebirth_requests", "Rebirth requests (NCMD Node Control/Rebirth) sent to the "
+                  "edge node, since start", n, node=node)
+    for node, n in h.deaths_ignored.items():
+        f.counter("twin_sparkplug_deaths_ignored", "NDEATH messages ignored because their bdSeq did not match "
+                  "the current NBIRTH (a late will of an older session), since start", n, node=node)
+    f.counter("twin_sparkplug_historical_samples", "Sparkplug is_historical samples routed to back-fill, never "
+              "into live windows, since start", h.historical)
+    f.counter("twin_sparkplug_metrics_ignored", "Sparkplug metrics received that no sensor of the plant file is "
+              "bound to, since start", h.ignored)
 
 
 class HealthCollector:

@@ -287,7 +287,14 @@ def _check_sensors(cfg: PlantConfig, streams: set[str], baro: float | None, add:
         if bad is not None:
             add(f"{where}.topic", f"{s.topic!r} is not a valid sensor topic ({bad}); expected an MQTT "
                 "topic name such as \"plant/u1/hp/pressure\": UTF-8, no wildcards, no leading '/'")
-        loc: tuple[str, ...] = {"number": (s.topic,), "batch": (s.topic, s.tag)}.get(
+        if bad is None and s.payload.format == "sparkplug":
+            why = sparkplug_topic_problem(s.topic)
+            if why is not None:
+                add(f"{where}.topic", f"{s.topic!r} {why}; expected the NDATA topic of the edge node "
+                    "(\"spBv1.0/<group>/NDATA/<edge node>\") or the DDATA topic of the device "
+                    "(\"spBv1.0/<group>/DDATA/<edge node>/<device>\") that publishes the metric")
+        loc: tuple[str, ...] = {"number": (s.topic,), "batch": (s.topic, s.tag),
+                                "sparkplug": (s.topic, f"metric {s.payload.metric!r}")}.get(
             s.payload.format, (s.topic, s.payload.value))
         if loc in locations:
             add(f"{where}.topic", f"{s.topic!r} {' '.join(loc[1:])} is already mapped to "
@@ -302,6 +309,18 @@ def _check_sensors(cfg: PlantConfig, streams: set[str], baro: float | None, add:
 
 
 MAX_TOPIC_BYTES = 65535  # MQTT 3.1.1 section 1.5.3 / MQTT 5 section 1.5.4
+
+
+def sparkplug_topic_problem(topic: str) -> str | None:
+    """Why ``topic`` is not a Sparkplug B NDATA/DDATA topic (Sparkplug 3.0 §4.1), or None."""
+    parts = topic.split("/")
+    if parts[0] != "spBv1.0":
+        return "does not start with 'spBv1.0'"
+    if len(parts) < 3 or parts[2] not in ("NDATA", "DDATA"):
+        return "is not a data topic"
+    if len(parts) != (4 if parts[2] == "NDATA" else 5) or not all(parts):
+        return f"has the wrong number of elements for {parts[2]}"
+    return None
 
 
 def topic_problem(topic: str) -> str | None:

@@ -109,17 +109,27 @@ class PayloadConfig(_Model):
     key ``"v"`` is stored as ``"/v"``. ``format = "number"`` means the payload is
     a bare number and the receive time is its timestamp; ``"batch"`` is one JSON
     message carrying several tags by name (see :mod:`twin.ingest.decode`).
+    ``"sparkplug"``: a Sparkplug B metric named by ``metric``; the sensor's topic
+    is the NDATA topic of its edge node or the DDATA topic of its device
+    (``value``, ``timestamp``, ``quality`` do not apply; see :mod:`twin.ingest.sparkplug`).
     """
 
-    format: Literal["json", "number", "batch"] = "json"
+    format: Literal["json", "number", "batch", "sparkplug"] = "json"
     value: str = "/v"
     timestamp: str | None = "/ts"
     quality: str | None = "/q"
     timestamp_format: Literal["epoch_s", "epoch_ms", "rfc3339", "auto"] = "epoch_s"
     good_quality: list[str | int | bool] = Field(default_factory=lambda: list[str | int | bool](["good"]))
+    metric: str | None = Field(default=None, description='Sparkplug B metric name (format = "sparkplug" only)')
 
     @model_validator(mode="after")
     def _pointers(self) -> PayloadConfig:
+        if self.format == "sparkplug" and not self.metric:
+            raise _Problems([("metric", 'missing; expected the Sparkplug B metric name, e.g. '
+                              'payload = { format = "sparkplug", metric = "Turbine/HP/Inlet Pressure" }')])
+        if self.format != "sparkplug" and self.metric is not None:
+            raise _Problems([("metric", f'only a format = "sparkplug" payload names a metric, not format = '
+                              f'"{self.format}"')])
         for name in ("value", "timestamp", "quality"):
             v = getattr(self, name)
             if v is not None and not v.startswith("/"):
@@ -249,6 +259,8 @@ class BrokerConfig(_Model):
     reconnect_max_delay: Duration = Field(default=2.0, description="cap of the exponential reconnect backoff")
     future_tolerance: Delay = Field(
         default=5.0, description="samples stamped further ahead of their receipt are rejected (future_timestamp)")
+    sparkplug_rebirth_interval: Duration = Field(
+        default=30.0, description="least time between two Sparkplug rebirth requests (NCMD) to one edge node")
 
     @model_validator(mode="before")
     @classmethod
