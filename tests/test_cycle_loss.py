@@ -23,7 +23,7 @@ from twin.model.flowsheet import Flowsheet
 from twin.model.heat_exchange import Condenser
 from twin.model.solve import Operation, solve_design, solve_off_design
 from twin.model.turbine import ExhaustLoss, TurbineGroup
-from twin.performance.expected import ExpectedModel, window_deviation
+from twin.performance.expected import ExpectedModel, PressureControl, window_deviation
 from twin.performance.plant_reconcile import PlantReconciler
 
 MS, LOST, MAKEUP = "main_steam", "steam_lost", "makeup"
@@ -119,6 +119,24 @@ def test_cause_against_a_hand_energy_balance(leak: dict[str, Any]) -> None:
     ratio = d.by_cause["cycle_isolation"] / hand
     print("model / first-order hand balance", ratio)
     assert 0.75 <= ratio <= 1.0
+
+
+@pytest.mark.parametrize(("load", "mode"), [(0.7, "sliding"), (0.7, "fixed")])
+def test_part_load_make_up_in_the_unit_s_own_operating_mode(load: float, mode: str) -> None:
+    """1 % make-up at 70 % load, the expected model in the truth's own pressure mode: all cycle_isolation."""
+    cfg = demo_config()
+    fs, op, design = demo_design()
+    hb = solve_off_design(fs, op, design, load, mode, overrides={(LOST, "mass_flow"): LEAK * load},
+                          skip=frozenset({"steam_leak.flow"}))
+    rec = PlantReconciler(cfg, flowsheet=fs, design=design)
+    em = ExpectedModel.from_config(cfg, fs, op, design)
+    em = ExpectedModel(fs, op, design, em.settings, PressureControl(mode, 16.2e6))
+    r = _reconcile(cfg, rec, hb)
+    d = _split(em, rec, r)
+    assert not r.suspects
+    assert 40.0 <= d.total * 3600.0 <= 120.0  # [memory]: of the order of 1 % heat rate
+    assert d.by_cause["cycle_isolation"] / d.total >= 0.95
+    assert abs(d.by_cause["unaccounted"]) <= 0.05 * abs(d.total)
 
 
 # ------------------------------------------------------------------ the normal loss
