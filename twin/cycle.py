@@ -257,8 +257,11 @@ class UnitCycle:
     def deviation(self, rec: PlantReconciliation, steady: bool) -> WindowDeviation:
         """Expected values and heat-rate deviation of one window, split into causes when steady.
 
-        Every steady window is split afresh (no cached sensitivities), so the split
-        and the total always come from the same reconciled state.
+        Every steady window is split from its own reconciled drivers (with the
+        sensitivities stored at the nearest operating-point node, exact model runs
+        beyond their range), so the split and the total always come from the same
+        reconciled state. The expected model's node cache is rebuilt deterministically
+        (each node solved from the design point) and is not part of :meth:`snapshot`.
         """
         return window_deviation(self.expected_model, rec, self._cooling_water_inlet(rec), causes=steady)
 

@@ -34,8 +34,20 @@ model at the actual boundary conditions:
 
 A cause run that fails is left out of ``by_cause``; then ``unaccounted`` is
 left out too and ``status`` names the failed causes (nothing is folded into
-``unaccounted`` silently). Every window is recomputed (no cached
-sensitivities): the split and the total always come from the same window.
+``unaccounted`` silently).
+
+Speed (:mod:`twin.performance.operating_point`): the expected state is solved
+once per node of an operating-point grid (load every 0.02, cooling-water inlet
+every 1 K) and interpolated between nodes; the cause runs are made at the node
+nearest to the window's operating point. At each node the heat-rate
+sensitivity to every cause's driver (temperatures, pressure and valve ratios,
+condenser UA, section factors, heater TTD/DCA) is computed once, from one
+factorisation of the heat-balance Jacobian; a cause whose first-order estimate
+is within :data:`twin.performance.cause_sensitivity.LINEAR_LIMIT` is that estimate, a larger one (beyond the
+linear range) is an exact model run as before. Every steady window is still
+split from its own reconciled drivers, so the split and the total come from
+the same window and ``unaccounted = total − Σ causes``. A cause without a
+registered driver (``"linear"`` in its run) is always an exact run.
 """
 
 from __future__ import annotations
@@ -52,14 +64,21 @@ from twin.model.core import Context
 from twin.model.flow import CycleLoss, Reheater, ThrottleValve
 from twin.model.flowsheet import Flowsheet
 from twin.model.heat_exchange import ClosedHeater, Condenser
-from twin.model.solve import HeatBalance, Operation, SolveError, solve_off_design
+from twin.model.solve import (
+    HeatBalance,
+    Operation,
+    SolveError,
+    solve_off_design,
+)
 from twin.model.turbine import TurbineGroup, _moisture
+from twin.performance import cause_sensitivity
 from twin.performance.kpi import (
     CyclePerformanceSettings,
     evaluate_kpis,
     interpolate_boiler_efficiency,
     kpi_definitions,
 )
+from twin.performance.operating_point import Node, OperatingPoints
 from twin.properties import PropertyError
 
 CAUSES = (
@@ -83,6 +102,9 @@ _RATIO_TOL = 1e-6  # [-]
 _FACTOR_TOL = 1e-7  # [-]
 _TEMPERATURE_TOL = 1e-4  # [K]
 _FLOW_TOL = 1e-4  # [kg/s]
+
+_THROTTLE = "_throttle_pressure"  # the grid's interpolated throttle pressure [Pa] (not a KPI)
+_FUEL_BASIS = ("plant_heat_rate", "net_plant_heat_rate")  # KPIs divided by the tabulated boiler efficiency
 
 
 @dataclass(frozen=True)
@@ -144,6 +166,8 @@ class WindowDeviation:
         Cause → extra fuel power [W] on the configured fuel basis (ΔHR · P_gen / η_boiler).
     cost_per_hour_by_cause : mapping
         Cause → fuel cost per hour [currency/h] at the configured fuel price (empty without one).
+    model_runs : int
+        Causes computed by an exact model run (the others from first-order sensitivities).
     """
 
     total: float
@@ -152,6 +176,7 @@ class WindowDeviation:
     expected: Mapping[str, float] = field(default_factory=dict)
     fuel_power_by_cause: Mapping[str, float] = field(default_factory=dict)
     cost_per_hour_by_cause: Mapping[str, float] = field(default_factory=dict)
+    model_runs: int = 0
 
 
 @dataclass(frozen=True)
@@ -197,6 +222,9 @@ class ExpectedModel:
             members = tuple(g for g in groups if str(g.params.get("section")) == s.id)
             if members:
                 self.sections[s.id] = _SectionPath(s.id, s.inlet, s.outlet, members)
+        cw0 = float(self.condensers[0].params["cooling_water_inlet_temperature"]) if self.condensers else None
+        #: expected states on the operating-point grid (rebuilt deterministically: not state)
+        self.grid = OperatingPoints(lambda load, cw: self._solve(load, cw, None), self._node_values, cw0)
 
     @classmethod
     def from_config(cls, config: Any, fs: Flowsheet, op: Operation, design: HeatBalance,
@@ -242,6 +270,59 @@ class ExpectedModel:
     def _heat_rate(self, hb: HeatBalance) -> float:
         return evaluate_kpis(self._hr_def, hb.context())["turbine_heat_rate"]
 
+    def _node_values(self, hb: HeatBalance) -> dict[str, float]:
+        """What the grid interpolates: every KPI and the expected throttle pressure [Pa]."""
+        ctx = hb.context()
+        out = evaluate_kpis(self.kpi_defs, ctx)
+        eta_b = interpolate_boiler_efficiency(self.settings.boiler_efficiency, hb.load)
+        for name in _FUEL_BASIS:  # smooth in load without the boiler-efficiency table (divided back in expected_at)
+            if name in out:
+                out[name] *= eta_b
+        out[_THROTTLE] = ctx.p(self.valve.port("inlet")) if self.valve is not None else math.nan
+        return out
+
+    def expected_at(self, load: float, cw_inlet: float | None = None) -> tuple[dict[str, float], Node]:
+        """Expected KPIs at ``load`` [-] and cooling-water inlet [K] from the grid, and the nearest node.
+
+        Falls back to a direct solve at the point when a grid node cannot be solved.
+
+        Raises
+        ------
+        SolveError, ValueError
+            If the model cannot be solved there either.
+        """
+        try:
+            values = self.grid.interpolate(load, cw_inlet)
+            node = self.grid.nearest(load, cw_inlet)
+            if node.hb is None:
+                raise ValueError(node.error)
+        except ValueError:
+            hb = self._solve(load, cw_inlet, None)
+            node = Node(load, cw_inlet, hb, self._node_values(hb))
+            values = dict(node.values)
+        eta_b = interpolate_boiler_efficiency(self.settings.boiler_efficiency, load)
+        for name in _FUEL_BASIS:
+            if name in values:
+                values[name] /= eta_b
+        return values, node
+
+    # ------------------------------------------------------------------ sensitivities
+    def sensitivities(self, node: Node) -> dict[str, float]:
+        """d(turbine heat rate)/d(driver) at a grid node, computed once (:func:`cause_sensitivity.sensitivities`)."""
+        return cause_sensitivity.sensitivities(self, node)
+
+    def run_heat_rate(self, node: Node, run: Mapping[str, Any]) -> float:
+        """Turbine heat rate [-] of one cause run (overrides, skip, constants) solved at ``node``."""
+        ref = node.hb
+        assert ref is not None
+        constants = self._cw(node.cw_inlet)
+        for k, v in run.get("constants", {}).items():
+            constants.setdefault(k, {}).update(v)
+        hb = solve_off_design(self.fs, self.op, self.design, ref.load, ref.pressure_mode, z0=ref.z,
+                              overrides={**self.ref_overrides(ref), **run.get("overrides", {})},
+                              skip=run.get("skip", frozenset()), constants=constants)
+        return self._heat_rate(hb)
+
     # ------------------------------------------------------------------ section inversion
     def _expand(self, w: Any, g: TurbineGroup, p_in: float, h_in: float, p_out: float, factor: float) -> float:
         """Outlet enthalpy [J/kg] of stage group ``g`` with its dry efficiency × ``factor`` [-] (Baumann)."""
@@ -269,8 +350,23 @@ class ExpectedModel:
     def section_factor(self, ctx: Context, path: _SectionPath) -> float:
         """Factor on the section's group efficiencies that reproduces the actual outlet enthalpy [-]."""
         target = ctx.h(path.outlet)
-        f = brentq(lambda x: self._walk(ctx, path, x) - target, 0.5, 1.15, xtol=1e-10)
-        return float(f)
+
+        def miss(x: float) -> float:
+            return self._walk(ctx, path, x) - target
+
+        # secant from the design factor (the drop is nearly proportional to the factor);
+        # bracketing search over 0.5-1.15 when it does not settle inside that range
+        h_in = ctx.h(path.inlet)
+        x0, g0 = 1.0, miss(1.0)
+        x1 = (h_in - target) / (h_in - target - g0) if h_in - target - g0 != 0.0 else math.nan
+        for _ in range(8):
+            if not (math.isfinite(x1) and 0.5 <= x1 <= 1.15):
+                break
+            g1 = miss(x1)
+            if abs(g1) < 1e-5 or abs(x1 - x0) < 1e-10:
+                return float(x1)
+            x0, g0, x1 = x1, g1, (x1 - g1 * (x1 - x0) / (g1 - g0) if g1 != g0 else math.nan)
+        return float(brentq(miss, 0.5, 1.15, xtol=1e-10))
 
     def expected_section_efficiency(self, ctx: Context, path: _SectionPath) -> float:
         """Section efficiency with design group efficiencies at the actual boundary conditions [-]."""
@@ -293,8 +389,14 @@ class ExpectedModel:
 
         return float(brentq(r, pb * 1.0001, 4.0 * max(ctx.p(a), pb), xtol=1.0))
 
-    def _pressure_runs(self, ctx: Context, ref: HeatBalance, load: float) -> dict[str, dict[str, Any]]:
-        """The main-steam-pressure and throttling runs (see the module docstring)."""
+    def _pressure_runs(self, ctx: Context, ref: HeatBalance, load: float,
+                       expected_throttle: float = math.nan) -> dict[str, dict[str, Any]]:
+        """The main-steam-pressure and throttling runs (see the module docstring).
+
+        ``expected_throttle`` [Pa] is the expected throttle pressure at the window's own
+        load when ``ref`` is a nearby grid node: the run then moves the node's throttle
+        pressure by the actual / expected ratio.
+        """
         if self.valve is None or self.first_hp is None:
             return {}
         vin, vout = self.valve.port("inlet"), self.valve.port("outlet")
@@ -310,24 +412,30 @@ class ExpectedModel:
         dp = p_ms - p_exp
         r_act = min(p_hp / p_ms, 1.0)
         skip = frozenset({self.valve.relation("open"), self.first_hp.relation("stodola")})
-        p_a = p_ms  # the actual throttle pressure, valves as expected
+        rho = p_ms / expected_throttle if math.isfinite(expected_throttle) else p_ms / rctx.p(vin)
+        p_a = rctx.p(vin) * rho  # the actual throttle pressure, valves as expected
+        sigma = r_act / r_exp
         runs: dict[str, dict[str, Any]] = {}
         if abs(dp) > _PRESSURE_TOL:
             runs["main_steam_pressure"] = {"overrides": {(vin, "pressure"): p_a, (vout, "pressure"): p_a * r_ref},
-                                           "skip": skip}
+                                           "skip": skip, "linear": {"rho": rho - 1.0}}
         else:
             runs["main_steam_pressure"] = {"zero": True}
-        if abs(r_act / r_exp - 1.0) > _RATIO_TOL:
-            runs["throttling"] = {"overrides": {(vin, "pressure"): p_a, (vout, "pressure"): p_a * r_ref * r_act / r_exp},
-                                  "skip": skip, "minus": "main_steam_pressure"}
+        if abs(sigma - 1.0) > _RATIO_TOL:
+            runs["throttling"] = {"overrides": {(vin, "pressure"): p_a, (vout, "pressure"): p_a * r_ref * sigma},
+                                  "skip": skip, "minus": "main_steam_pressure", "linear": {"sigma": sigma - 1.0}}
         else:
             runs["throttling"] = {"zero": True}
         return runs
 
     # ------------------------------------------------------------------ causes
-    def _cause_runs(self, ctx: Context, ref: HeatBalance, load: float,
-                    cw_inlet: float | None) -> tuple[dict[str, dict[str, Any]], dict[str, str]]:
-        """Per cause, the solve arguments that put that one actual value into the model."""
+    def _cause_runs(self, ctx: Context, ref: HeatBalance, load: float, cw_inlet: float | None,
+                    expected_throttle: float = math.nan) -> tuple[dict[str, dict[str, Any]], dict[str, str]]:
+        """Per cause, the solve arguments that put that one actual value into the model.
+
+        ``"linear"`` in a run: its driver(s) as {sensitivity name: change from ``ref``}
+        (see :meth:`sensitivities`); a run without it is always solved exactly.
+        """
         rctx = ref.context()
         runs: dict[str, dict[str, Any]] = {}
         failed: dict[str, str] = {}
@@ -349,10 +457,10 @@ class ExpectedModel:
                 raise ValueError("not observable")
             if abs(t - t_ref) < _TEMPERATURE_TOL:
                 return {"zero": True}
-            return {"overrides": {(stream, "temperature"): t}}
+            return {"overrides": {(stream, "temperature"): t}, "linear": {f"T:{stream}": t - t_ref}}
 
         attempt("main_steam_temperature", lambda: temperature(ms))
-        attempt("pressure", lambda: self._pressure_runs(ctx, ref, load))
+        attempt("pressure", lambda: self._pressure_runs(ctx, ref, load, expected_throttle))
         if self.reheat_stream:
             attempt("reheat_temperature", lambda: temperature(str(self.reheat_stream)))
         if self.condensers:
@@ -366,20 +474,23 @@ class ExpectedModel:
                 f = self.section_factor(ctx, path)
                 if abs(f - 1.0) < _FACTOR_TOL:
                     return {"zero": True}
-                return {"constants": {g.id: {"efficiency_factor": f} for g in path.groups}}
+                return {"constants": {g.id: {"efficiency_factor": f} for g in path.groups},
+                        "linear": {f"factor:{path.id}": f - 1.0}}
 
             attempt(cause, eff)
         kd = {d.name: d for d in self.kpi_defs}
 
         def heaters() -> dict[str, Any]:
             consts: dict[str, dict[str, float]] = {}
+            linear: dict[str, float] = {}
             for h in self.heaters:
                 for k in ("ttd", "dca"):
                     name = f"heater_{k}.{h}"
                     v, v_ref = kd[name].func(ctx), kd[name].func(rctx)
                     if math.isfinite(v) and abs(v - v_ref) > _TEMPERATURE_TOL:
                         consts.setdefault(h, {})[k] = float(v)
-            return {"constants": consts} if consts else {"zero": True}
+                        linear[f"{k}:{h}"] = float(v - v_ref)
+            return {"constants": consts, "linear": linear} if consts else {"zero": True}
 
         if self.heaters:
             attempt("feedwater_heaters", heaters)
@@ -422,7 +533,9 @@ class ExpectedModel:
         ua = -cap * math.log(1.0 - 1.0 / (cap * f_act))
         if abs(ua / k["ua"] - 1.0) < _RATIO_TOL:
             return {"zero": True}
-        return {"constants": {c.id: {"ua": ua}}}
+        # driver: 1 / (1 − exp(−UA/(m_cw c_p))), to which the back-pressure rise is proportional
+        x_design = 1.0 / -math.expm1(-k["ua"] / cap)
+        return {"constants": {c.id: {"ua": ua}}, "linear": {f"approach:{c.id}": cap * f_act / x_design - 1.0}}
 
     def deviation(self, ctx: Context, actual: Mapping[str, float], cw_inlet: float | None = None, *,
                   causes: bool = True) -> WindowDeviation:
@@ -445,10 +558,14 @@ class ExpectedModel:
         hr_act = actual.get("turbine_heat_rate", math.nan)
         if not (math.isfinite(load) and math.isfinite(hr_act)):
             return WindowDeviation(math.nan, {}, "unavailable: load or heat rate not available")
+        load_c = min(max(load, 0.2), 1.2)
         try:
-            ref, exp = self.expected(min(max(load, 0.2), 1.2), cw_inlet)
+            exp, node = self.expected_at(load_c, cw_inlet)
         except (SolveError, ValueError, PropertyError) as exc:
             return WindowDeviation(math.nan, {}, f"unavailable: expected model failed ({type(exc).__name__})")
+        ref = node.hb
+        assert ref is not None
+        p_throttle = exp.pop(_THROTTLE, math.nan)
         for sec, path in self.sections.items():
             try:
                 exp[f"section_efficiency.{sec}"] = self.expected_section_efficiency(ctx, path)
@@ -458,22 +575,23 @@ class ExpectedModel:
         total = hr_act - hr_exp
         if not causes:
             return WindowDeviation(total, {}, "not split: window not steady", exp)
-        runs, failed = self._cause_runs(ctx, ref, ref.load, cw_inlet)
+        runs, failed = self._cause_runs(ctx, ref, load_c, cw_inlet, p_throttle)
+        hr_ref = node.values["turbine_heat_rate"]
+        linear = cause_sensitivity.estimates(self, node, runs)
         by_cause: dict[str, float] = {}
         hr_run: dict[str, float] = {}
+        exact = 0
         for cause, run in runs.items():
             if run.get("zero"):
-                by_cause[cause], hr_run[cause] = 0.0, hr_exp
+                by_cause[cause], hr_run[cause] = 0.0, hr_ref
                 continue
-            constants = self._cw(cw_inlet)
-            for k, v in run.get("constants", {}).items():
-                constants.setdefault(k, {}).update(v)
+            if cause in linear:
+                by_cause[cause] = linear[cause]
+                continue
+            exact += 1
             try:
-                hb = solve_off_design(self.fs, self.op, self.design, ref.load, ref.pressure_mode, z0=ref.z,
-                                      overrides={**self._ref_overrides(ref), **run.get("overrides", {})},
-                                      skip=run.get("skip", frozenset()), constants=constants)
-                hr_run[cause] = self._heat_rate(hb)
-                base = hr_run.get(run["minus"], math.nan) if "minus" in run else hr_exp
+                hr_run[cause] = self.run_heat_rate(node, run)
+                base = hr_run.get(run["minus"], math.nan) if "minus" in run else hr_ref
                 by_cause[cause] = hr_run[cause] - base
             except (SolveError, ValueError, PropertyError) as exc:
                 failed[cause] = f"model run failed: {type(exc).__name__}"
@@ -489,9 +607,9 @@ class ExpectedModel:
         eta_b = interpolate_boiler_efficiency(self.settings.boiler_efficiency, load)
         fuel = {c: v * p_gen / eta_b for c, v in by_cause.items()} if math.isfinite(p_gen) and eta_b > 0 else {}
         cost = {c: v * 3600.0 * self.fuel_price for c, v in fuel.items()} if self.fuel_price is not None else {}
-        return WindowDeviation(total, by_cause, status, exp, fuel, cost)
+        return WindowDeviation(total, by_cause, status, exp, fuel, cost, exact)
 
-    def _ref_overrides(self, ref: HeatBalance) -> dict[tuple[str, str], float]:
+    def ref_overrides(self, ref: HeatBalance) -> dict[tuple[str, str], float]:
         """The expected run's set throttle pressure (fixed or scheduled), kept in every cause run."""
         if ref.pressure_mode != "fixed":
             return {}
