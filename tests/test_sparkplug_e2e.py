@@ -23,6 +23,7 @@ from tests.conftest import wait_for
 from tests.test_config import problems
 from tests.test_daemon_e2e import DEMO_CONFIG, T0, scrape, start_daemon
 from twin.config import load_config, validate_config
+from twin.history.readers import HistoryReader
 from twin.sparkplug import decode_payload, encode_payload
 
 GROUP, NODE, DEVICE = "demo", "edge1", "hp"
@@ -33,7 +34,7 @@ SPARKPLUG = {  # tag -> (topic, metric)
 }
 
 
-def sparkplug_config_text(port: int) -> str:
+def sparkplug_config_text(port: int, historical_file: str = "historical.csv") -> str:
     """The demo plant file on a test broker, three sensors bound to Sparkplug metrics."""
     text = DEMO_CONFIG.read_text(encoding="utf-8")
     for tag, (topic, metric) in SPARKPLUG.items():
@@ -42,7 +43,8 @@ def sparkplug_config_text(port: int) -> str:
                           text, count=1)
         assert n == 1, tag
     text, n = re.subn(r"(?ms)^\[broker\]\n.*?(?=^\[)", f'[broker]\nhost = "127.0.0.1"\nport = {port}\n'
-                      'client_id = "twin-sparkplug-test"\nsparkplug_rebirth_interval = "0.1 s"\n\n', text, count=1)
+                      'client_id = "twin-sparkplug-test"\n\n[sparkplug]\nrebirth_interval = "0.1 s"\n'
+                      f'historical_file = "{historical_file}"\n\n', text, count=1)
     assert n == 1
     return text
 
@@ -74,12 +76,15 @@ def test_plant_file_sparkplug_mistakes_are_one_line_each() -> None:
 class EdgeNode:
     """A Sparkplug B edge node with one device, publishing through its own paho client."""
 
-    def __init__(self, port: int) -> None:
+    def __init__(self, port: int, will_bdseq: int | None = None) -> None:
         self.seq = 0
         self.bdseq = 0
         self.aliases: dict[str, int] = {}
         self.commands: list[bytes] = []
         self.client = paho.Client(CallbackAPIVersion.VERSION2, client_id="edge1-test")
+        if will_bdseq is not None:  # §5.4: the NDEATH is registered as the MQTT will at connect
+            self.client.will_set(f"spBv1.0/{GROUP}/NDEATH/{NODE}", encode_payload(
+                [{"name": "bdSeq", "datatype": "Int64", "value": will_bdseq}]), qos=1)
         self.client.on_message = lambda c, u, m: self.commands.append(bytes(m.payload))
         self.connected = threading.Event()
         self.client.on_connect = lambda c, u, f, rc, p: (c.subscribe(f"spBv1.0/{GROUP}/NCMD/{NODE}", 1),
@@ -115,6 +120,13 @@ class EdgeNode:
         m = {"alias": self.aliases[tag] if alias is None else alias, "timestamp": round(1000 * t),
              "datatype": "Double", "value": value, "is_historical": historical}
         self.publish("DDATA" if "DDATA" in topic else "NDATA", [m], device="DDATA" in topic)
+
+    def vanish(self) -> None:
+        """Drop the TCP connection without an MQTT DISCONNECT (a crash, a cut cable)."""
+        self.client.loop_stop()
+        sock = self.client.socket()
+        assert sock is not None
+        sock.close()
 
     def stop(self) -> None:
         self.client.loop_stop()
@@ -156,6 +168,11 @@ def test_edge_node_births_data_deaths_and_rebirth_through_mosquitto(mosquitto: A
         arrived(9)
         m = scrape(daemon)
         assert m.get("twin_sparkplug_historical_samples_total") == 1.0
+        # ... routed to the back-fill file, which the historian reader takes like any export
+        (block,) = HistoryReader(config).read(tmp_path / "historical.csv")
+        assert list(block.t) == [T0 - 3600.0]
+        assert [config.sensors[i].tag for i in block.tag] == ["HP-MS-P1"]
+        assert block.value[0] == conv["HP-MS-P1"].to_si(14.0)
         assert m.get("twin_sparkplug_node_online", node=f"{GROUP}/{NODE}") == 1.0
         assert m.get("twin_sparkplug_sequence_gaps_total", node=f"{GROUP}/{NODE}") == 0.0
         clock.t = T0 + 10.0
@@ -213,6 +230,37 @@ def test_edge_node_births_data_deaths_and_rebirth_through_mosquitto(mosquitto: A
         assert r.tags["HP-MS-P1"].valid and r.tags["HP-MS-P2"].valid
         assert r.tags["HP-MS-P1"].measured == pytest.approx(conv["HP-MS-P1"].to_si((15.5 + 15.6) / 2), rel=1e-12)
         assert r.tags["HP-MS-P2"].measured == pytest.approx(conv["HP-MS-P2"].to_si((155.0 + 156.0) / 2), rel=1e-12)
+    finally:
+        edge.stop()
+        daemon.stop()
+
+
+@pytest.mark.broker
+@pytest.mark.slow
+def test_will_message_of_a_vanished_edge_node_marks_its_tags_stale(mosquitto: Any, tmp_path: Path) -> None:
+    """§5.5: the NDEATH is the edge node's MQTT will; the broker sends it when the node's
+    connection drops without DISCONNECT, and the host marks every metric of the node stale.
+    Also: a back-fill file that cannot be written loses no sample silently (counted)."""
+    path = tmp_path / "plant.toml"
+    path.write_text(sparkplug_config_text(mosquitto.port, historical_file="no-such-dir/h.csv"), encoding="utf-8")
+    config = load_config(path)
+    config.metrics.port = 0
+    daemon = start_daemon(config)
+    edge = EdgeNode(mosquitto.port, will_bdseq=0)
+    try:
+        daemon.clock.t = T0 + 1.0
+        edge.births(T0 + 1.0, {"HP-MS-P1": 15.0, "HP-MS-P2": 150.0, "HP-MS-T1": 540.0},
+                    {"HP-MS-P1": 10, "HP-MS-P2": 11, "HP-MS-T1": 12})
+        edge.data("HP-MS-P1", 14.0, T0 - 60.0, historical=True)
+        assert wait_for(lambda: daemon.ingestor.messages >= 3)
+        m = scrape(daemon)
+        assert m.get("twin_sensor_offline", tag="HP-MS-T1") == 0.0
+        assert m.get("twin_sparkplug_historical_write_failures_total") == 1.0
+        edge.vanish()
+        assert wait_for(lambda: scrape(daemon).get("twin_sensor_offline", tag="HP-MS-T1") == 1.0)
+        m = scrape(daemon)
+        assert all(m.get("twin_sensor_offline", tag=t) == 1.0 for t in SPARKPLUG)
+        assert m.get("twin_sparkplug_node_online", node=f"{GROUP}/{NODE}") == 0.0
     finally:
         edge.stop()
         daemon.stop()

@@ -28,7 +28,7 @@ from twin.cycle import DRIFT_KPIS, CycleOptions, UnitCycle, WindowInput
 from twin.ingest.decode import PayloadFormat, TagBinding, TopicMap
 from twin.ingest.pipeline import Ingestor, LogRateLimiter
 from twin.ingest.rate import SampleRateMonitor
-from twin.ingest.sparkplug import SparkplugOutcome, SparkplugSession
+from twin.ingest.sparkplug import HistoricalFile, SparkplugOutcome, SparkplugSession
 from twin.ingest.store import TagStore, WindowStats
 from twin.metrics import Health, MetricsServer, MetricsTls, SparkplugHealth
 from twin.monitor import Transition
@@ -213,8 +213,10 @@ class Daemon:
         bindings = bindings_from_config(config)
         self.topic_map = TopicMap([b for b in bindings if b.fmt.kind != "sparkplug"])
         sp = [b for b in bindings if b.fmt.kind == "sparkplug"]
-        self.sparkplug = (SparkplugSession(sp, rebirth_interval=float(config.broker.sparkplug_rebirth_interval))
-                          if sp else None)
+        spc = config.sparkplug
+        self.sparkplug = SparkplugSession(sp, rebirth_interval=float(spc.rebirth_interval)) if sp else None
+        self.historical_file = HistoricalFile(spc.historical_file) if sp and spc.historical_file else None
+        self.historical_written = self.historical_write_failures = 0
         self._sparkplug_log = LogRateLimiter()
         max_age = {s.tag: float(s.max_age) for s in config.sensors}
         self.store = TagStore([s.tag for s in config.sensors], capacity=self.options.store_capacity, max_age=max_age)
@@ -265,11 +267,28 @@ class Daemon:
             for topic, payload in out.commands:
                 self.mqtt.publish(topic, payload, qos=0)
         if out.historical:
-            log, n = self._sparkplug_log.should_log("historical", "sparkplug_historical", now)
+            self._route_historical(out, now)
+
+    def _route_historical(self, out: SparkplugOutcome, now: float) -> None:
+        """Store-and-forward samples: appended to ``[sparkplug] historical_file`` (if set), never live."""
+        file = self.historical_file
+        try:
+            if file is not None:
+                self.historical_written += file.append(out.historical)
+        except OSError as exc:
+            assert file is not None
+            self.historical_write_failures += len(out.historical)
+            log, n = self._sparkplug_log.should_log("historical", "write_failed", now)
             if log:
-                log_event(logging.INFO, "sparkplug_historical_routed", samples=len(out.historical),
-                          suppressed_since_last=n,
-                          text="store-and-forward samples go to back-fill, never into live windows")
+                log_event(logging.ERROR, "sparkplug_historical_write_failed", file=str(file.path), error=str(exc),
+                          samples=len(out.historical), failed_total=self.historical_write_failures,
+                          suppressed_since_last=n)
+            return
+        log, n = self._sparkplug_log.should_log("historical", "routed", now)
+        if log:
+            log_event(logging.INFO, "sparkplug_historical_routed", samples=len(out.historical),
+                      file=str(file.path) if file is not None else "none (counted only)", suppressed_since_last=n,
+                      text="store-and-forward samples go to back-fill, never into live windows")
 
     def current(self) -> CycleResult | None:
         """The latest result (read by the metrics collector at scrape time)."""
@@ -319,7 +338,8 @@ class Daemon:
             return None
         offline = self.store.offline()
         return SparkplugHealth({t: t in offline for t in sp.bindings}, sp.online(), dict(sp.sequence_gaps),
-                               dict(sp.rebirth_requests), dict(sp.deaths_ignored), sp.historical, sp.ignored)
+                               dict(sp.rebirth_requests), dict(sp.deaths_ignored), sp.historical, sp.ignored,
+                               self.historical_write_failures)
 
     # ------------------------------------------------------------------ state file
     def state_parts(self) -> dict[str, Any]:

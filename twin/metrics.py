@@ -76,6 +76,8 @@ class SparkplugHealth:
         ignored because their ``bdSeq`` did not match the current NBIRTH.
     historical, ignored : int
         ``is_historical`` samples routed to back-fill (not live); metrics no sensor is bound to.
+    historical_write_failures : int
+        ``is_historical`` samples that could not be appended to the back-fill file.
     """
 
     tag_offline: Mapping[str, bool]
@@ -85,6 +87,7 @@ class SparkplugHealth:
     deaths_ignored: Mapping[str, int]
     historical: int
     ignored: int
+    historical_write_failures: int = 0
 
 
 @dataclass(frozen=True)
@@ -490,6 +493,8 @@ def _sparkplug(f: _Families, h: SparkplugHealth) -> None:
               "into live windows, since start", h.historical)
     f.counter("twin_sparkplug_metrics_ignored", "Sparkplug metrics received that no sensor of the plant file is "
               "bound to, since start", h.ignored)
+    f.counter("twin_sparkplug_historical_write_failures", "Sparkplug is_historical samples that could not be "
+              "appended to the back-fill file ([sparkplug] historical_file), since start", h.historical_write_failures)
 
 
 class HealthCollector:

@@ -55,6 +55,8 @@ def load_config(path: str | Path) -> PlantConfig:
                 files.append((f"{section}.{key}", getattr(tls, key)))
     st = cfg.state
     st.file = base / (st.file if st.file is not None else f"{cfg.unit.id}.state.json")
+    if cfg.sparkplug.historical_file is not None:
+        cfg.sparkplug.historical_file = base / cfg.sparkplug.historical_file
     problems = [f"{path}: {key}: {why}; expected a readable file"
                 for key, file in files if (why := unreadable(file)) is not None]
     if problems:

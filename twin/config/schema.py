@@ -259,8 +259,6 @@ class BrokerConfig(_Model):
     reconnect_max_delay: Duration = Field(default=2.0, description="cap of the exponential reconnect backoff")
     future_tolerance: Delay = Field(
         default=5.0, description="samples stamped further ahead of their receipt are rejected (future_timestamp)")
-    sparkplug_rebirth_interval: Duration = Field(
-        default=30.0, description="least time between two Sparkplug rebirth requests (NCMD) to one edge node")
 
     @model_validator(mode="before")
     @classmethod
@@ -290,6 +288,16 @@ class MetricsConfig(_Model):
     address: str = "127.0.0.1"
     port: int = Field(default=9108, ge=0, le=65535, description="0 = any free port")
     tls: MetricsTlsConfig | None = None
+
+
+class SparkplugConfig(_Model):
+    """``[sparkplug]``: the host side of Sparkplug B sessions (sensors with ``format = "sparkplug"``)."""
+
+    rebirth_interval: Duration = Field(
+        default=30.0, description="least time between two rebirth requests (NCMD) to one edge node")
+    historical_file: Path | None = Field(
+        default=None, description="CSV (timestamp,tag,value; relative to the plant file) that is_historical "
+        "samples are appended to for twin backfill; default: counted only")
 
 
 class StateConfig(_Model):
@@ -377,6 +385,7 @@ class PlantConfig(_Model):
     broker: BrokerConfig = Field(default_factory=BrokerConfig)
     metrics: MetricsConfig = Field(default_factory=MetricsConfig)
     state: StateConfig = Field(default_factory=StateConfig)
+    sparkplug: SparkplugConfig = Field(default_factory=SparkplugConfig)
     monitoring: MonitoringConfig = Field(default_factory=MonitoringConfig)
     _source_path: Path | None = PrivateAttr(default=None)
 

@@ -44,7 +44,8 @@ import math
 import threading
 from collections.abc import Iterable
 from dataclasses import dataclass, field
-from typing import Any
+from pathlib import Path
+from typing import Any, NamedTuple
 
 from twin.ingest.decode import DEFAULT_MAX_PAYLOAD_BYTES, Rejection, Sample, TagBinding
 from twin.sparkplug import (
@@ -65,6 +66,15 @@ DEFAULT_REBIRTH_INTERVAL = 30.0  # [s] between two rebirth requests to one edge 
 _CONTROL = ("Node Control/", "Device Control/")  # session control metrics (§5.17), not plant data
 
 
+class HistoricalSample(NamedTuple):
+    """An ``is_historical`` sample: SI value for counting and checks, raw value for a historian file."""
+
+    tag: str
+    time: float  # [s] since the epoch
+    value: float  # SI
+    raw: float  # as published (the sensor's engineering unit)
+
+
 @dataclass
 class SparkplugOutcome:
     """What one Sparkplug message produced.
@@ -74,8 +84,8 @@ class SparkplugOutcome:
     samples, rejections : list
         Live samples for the tag store; rejections with reasons from
         :data:`twin.ingest.decode.REJECT_REASONS`.
-    historical : list of Sample
-        ``is_historical`` samples (SI, range-checked): for back-fill, never live.
+    historical : list of HistoricalSample
+        ``is_historical`` samples (range-checked): for back-fill, never live.
     offline, online : list of str
         Tags whose edge node or device died (stale at once) or was born again.
     events : list of (str, dict)
@@ -88,7 +98,7 @@ class SparkplugOutcome:
 
     samples: list[Sample] = field(default_factory=list)
     rejections: list[Rejection] = field(default_factory=list)
-    historical: list[Sample] = field(default_factory=list)
+    historical: list[HistoricalSample] = field(default_factory=list)
     offline: list[str] = field(default_factory=list)
     online: list[str] = field(default_factory=list)
     events: list[tuple[str, dict[str, Any]]] = field(default_factory=list)
@@ -341,7 +351,7 @@ class SparkplugSession:
                                             f"{v:.6g} not in [{b.valid_min_si}, {b.valid_max_si}]"))
         elif m.is_historical:
             self.historical += 1
-            out.historical.append(Sample(b.tag, t, v, True))
+            out.historical.append(HistoricalSample(b.tag, t, v, raw))
         else:
             out.samples.append(Sample(b.tag, t, v, True))
 
@@ -351,3 +361,30 @@ def _as_int(m: Metric | None) -> int | None:
     if m is None or m.value_field not in ("int_value", "long_value"):
         return None
     return int(m.value)
+
+
+class HistoricalFile:
+    """Appends ``is_historical`` samples to a long-layout CSV that ``twin backfill`` reads.
+
+    Rows are ``timestamp,tag,value`` with the time in Unix seconds and the value
+    as published (the sensor's engineering unit, as in any historian export; see
+    :mod:`twin.history.readers`). The header is written when the file is new or
+    empty. Rows arrive in receipt order, not time order (back-fill sorts them).
+    :meth:`append` raises ``OSError`` when the file cannot be written.
+    """
+
+    HEADER = "timestamp,tag,value\n"
+
+    def __init__(self, path: str | Path) -> None:
+        self.path = Path(path)
+
+    def append(self, samples: Iterable[HistoricalSample]) -> int:
+        """Append rows; returns how many were written."""
+        rows = [f"{s.time!r},{s.tag},{s.raw!r}\n" for s in samples]
+        if not rows:
+            return 0
+        with self.path.open("a", encoding="utf-8", newline="") as f:
+            if f.tell() == 0:
+                f.write(self.HEADER)
+            f.writelines(rows)
+        return len(rows)
