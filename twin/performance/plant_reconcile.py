@@ -368,7 +368,9 @@ class PlantReconciler:
         rule through the analytic state derivatives and costs no property call for it.
         ``share`` gives the soft-relation share of the variance (and so the status).
         """
-        cols = list(d.columns)
+        # a column listed twice (a flow read by two terms of the KPI) enters the
+        # gradient once: the difference quotient already carries both terms
+        cols = list(dict.fromkeys(d.columns))
         if any(not math.isfinite(z[c]) for c in cols):
             return Estimate()
         base = base if base is not None else self.system.context(z)
