@@ -140,3 +140,11 @@ def test_the_panel_fits_a_terminal(config):
     lines = screen.panel(_result(40.0))
     assert len(lines) <= 20
     assert max(len(ln) for ln in lines if ln != LEGEND) <= 130
+
+
+def test_every_heat_rate_cause_has_a_screen_label():
+    """A cause added to the expected model shows under a readable name, not its key."""
+    from twin.demo.screen import CAUSE_LABELS
+    from twin.performance.expected import CAUSES
+
+    assert set(CAUSES) | {"unaccounted"} <= set(CAUSE_LABELS)

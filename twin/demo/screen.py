@@ -27,12 +27,14 @@ from twin.result import CycleResult
 CAUSE_LABELS = {
     "main_steam_temperature": "main-steam temp.",
     "main_steam_pressure": "main-steam press.",
+    "throttling": "valve throttling",
     "reheat_temperature": "reheat temp.",
     "condenser_pressure": "back-pressure",
     "hp_efficiency": "HP efficiency",
     "ip_efficiency": "IP efficiency",
     "lp_efficiency": "LP efficiency",
     "feedwater_heaters": "FW heaters",
+    "cycle_isolation": "make-up / leaks",
     "unaccounted": "unaccounted",
 }
 
