@@ -305,3 +305,34 @@ def test_bindings_are_checked_at_construction() -> None:
         TopicMap([sp_binding("A", "spBv1.0/g/NDATA/n", "m")])
     s = SparkplugSession([sp_binding("A", "spBv1.0/g/NDATA/n", "m"), sp_binding("B", "spBv1.0/g/DDATA/n/d", "m")])
     assert s.subscriptions == ["spBv1.0/g/+/n/#"]  # births, data, deaths of the node and its devices
+
+
+def test_quality_property_marks_samples_bad_or_rejects_a_bad_code(rig) -> None:
+    _, store, ingest = rig
+    for t, p in births():
+        ingest(t, p, T0_MS / 1e3)
+    # §6.4.9.1 Quality Codes: property 'Quality', Int32, 0 BAD, 192 GOOD, 500 STALE
+    for i, q in enumerate((192, 0, 500)):
+        ingest(DEV.format("DDATA"), encode_payload([{"alias": 1, "timestamp": T0_MS + 1000 * (i + 1),
+                                                      "value": 100.0, "datatype": "Double", "quality": q}],
+                                                    seq=2 + i), T0_MS / 1e3 + 4.0)
+    _, _, ok = store.snapshot("P1")
+    assert list(ok) == [True, True, False, False]  # DBIRTH (no property: good), then 192, 0, 500
+    w = store.window(T0_MS / 1e3, T0_MS / 1e3 + 5.0)["P1"]
+    assert (w.count, w.n_bad) == (2, 2)
+    ingest(DEV.format("DDATA"), encode_payload([{"alias": 1, "timestamp": T0_MS + 4500, "value": 1.0,
+                                                  "datatype": "Double", "quality": 7}], seq=5), T0_MS / 1e3 + 5.0)
+    assert ingest.rejects.counts()["bad_quality"] == 1
+
+
+def test_bench_sparkplug_ingests_every_sample_and_reports_json_figures() -> None:
+    import argparse
+    import json
+
+    from twin.bench import sparkplug as bench
+
+    figures = bench.run(argparse.Namespace(messages=300, metrics=20, per_message=5, repeat=1))
+    json.dumps(figures)  # the command prints it as JSON
+    # the bench itself asserts that all 300 x 5 samples (+ 20 from the DBIRTH) reached the store
+    assert figures["messages"] == 300 and figures["metrics_per_message"] == 5
+    assert figures["sparkplug_messages_per_second"] > 0 and figures["json_batch_messages_per_second"] > 0

@@ -28,7 +28,9 @@ from collections.abc import Iterable
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
+from google.protobuf import __version__ as _protobuf_version
 from google.protobuf import descriptor_pool, message_factory
+from google.protobuf.internal import api_implementation
 from google.protobuf.message import DecodeError
 
 from twin._sparkplug_schema import SERIALIZED
@@ -41,8 +43,14 @@ DEVICE_MESSAGES = ("DBIRTH", "DDEATH", "DDATA", "DCMD")
 MESSAGE_TYPES = (*NODE_MESSAGES, *DEVICE_MESSAGES)
 """Message types of the edge-node and device topics (§4.1.3); STATE is a host topic."""
 
+QUALITY_PROPERTY = "Quality"  # §6.4.9.1: a metric property, Int32 (type 3)
+QUALITY_CODES = {0: "bad", 192: "good", 500: "stale"}
+"""The quality codes of §6.4.9.1; a metric without the property is good."""
 REBIRTH_METRIC = "Node Control/Rebirth"  # §5.17: an NCMD metric, Boolean true
 BDSEQ_METRIC = "bdSeq"  # §5.4: birth/death sequence number, in NBIRTH and NDEATH
+
+PROTOBUF_BACKEND = f"{api_implementation.Type()} (protobuf {_protobuf_version})"
+"""Which protobuf runtime decodes (``upb`` is the C extension), for benchmark reports."""
 
 _POOL = descriptor_pool.DescriptorPool()
 _FILE = _POOL.AddSerializedFile(SERIALIZED)
@@ -121,7 +129,9 @@ class Metric(NamedTuple):
     """One metric of a payload (§6.4.6), as decoded; absent optional fields are None.
 
     ``value`` is the field the metric's oneof holds (``None`` when none is set);
-    ``value_field`` names that field (``"double_value"`` ...).
+    ``value_field`` names that field (``"double_value"`` ...). ``quality`` is the
+    metric's ``Quality`` property (§6.4.9.1: 0 bad, 192 good, 500 stale), None
+    when absent, −1 when present but not an ``int_value``.
     """
 
     name: str | None
@@ -132,6 +142,7 @@ class Metric(NamedTuple):
     is_null: bool
     value: Any
     value_field: str | None
+    quality: int | None = None
 
 
 @dataclass(frozen=True)
@@ -160,9 +171,21 @@ def decode_payload(data: bytes) -> Payload:
             m.datatype if m.HasField("datatype") else None,
             bool(m.is_historical), bool(m.is_null),
             getattr(m, which) if which in _PLAIN_FIELDS else None, which,
+            _quality(m) if m.HasField("properties") else None,
         ))
     return Payload(msg.timestamp if msg.HasField("timestamp") else None,
                    msg.seq if msg.HasField("seq") else None, metrics)
+
+
+def _quality(m: Any) -> int | None:
+    keys = list(m.properties.keys)
+    if QUALITY_PROPERTY not in keys:
+        return None
+    i = keys.index(QUALITY_PROPERTY)
+    if i >= len(m.properties.values):
+        return -1
+    pv = m.properties.values[i]
+    return int(pv.int_value) if pv.WhichOneof("value") == "int_value" else -1
 
 
 _PLAIN_FIELDS = frozenset({"int_value", "long_value", "float_value", "double_value", "boolean_value",
@@ -227,7 +250,8 @@ def encode_payload(metrics: Iterable[dict[str, Any]], *, timestamp_ms: int | Non
     """A Sparkplug B payload (for tests, the demo and rebirth requests).
 
     Each metric is a dict with any of ``name``, ``alias``, ``timestamp`` [ms],
-    ``datatype`` (number or name), ``value``, ``is_historical``, ``is_null``.
+    ``datatype`` (number or name), ``value``, ``is_historical``, ``is_null``,
+    ``quality`` (a §6.4.9.1 code, sent as the ``Quality`` property).
     """
     msg = _PAYLOAD()
     if timestamp_ms is not None:
@@ -249,6 +273,9 @@ def encode_payload(metrics: Iterable[dict[str, Any]], *, timestamp_ms: int | Non
             pm.datatype = int(dt)
         if spec.get("is_historical"):
             pm.is_historical = True
+        if spec.get("quality") is not None:
+            pm.properties.keys.append(QUALITY_PROPERTY)
+            pm.properties.values.add(type=DATATYPES["Int32"], int_value=int(spec["quality"]))
         if spec.get("is_null"):
             pm.is_null = True
         elif spec.get("value") is not None:

@@ -18,6 +18,7 @@ BENCHMARKS: dict[str, str] = {
     "reconcile": "twin.bench.reconcile",
     "ingest": "twin.bench.ingest",
     "backfill": "twin.bench.backfill",
+    "sparkplug": "twin.bench.sparkplug",
 }
 
 

@@ -13,6 +13,8 @@ application must remember:
   ``unknown_metric``) and, since the host has missed the birth, a rebirth is
   requested (an NCMD ``Node Control/Rebirth``, at most once per
   ``rebirth_interval`` per node). Values carried in a BIRTH are samples too.
+- **Quality.** A metric's ``Quality`` property (0 bad, 500 stale) makes a
+  bad-quality sample (kept, never averaged); 192 or no property is good.
 - **Time.** Each metric's own timestamp (ms since the epoch) is the sample
   time; the payload timestamp is the fallback, the receive time the last one.
 - **Historical data** (``is_historical``) is store-and-forward data: it never
@@ -35,7 +37,7 @@ References
 Eclipse Sparkplug Specification 3.0.0: §5.4/§5.5 edge node session (NBIRTH,
 NDEATH, bdSeq; "all metrics ... STALE" on NDEATH), §5.6/§5.7 device session,
 §5.9 message ordering (seq, rebirth on a gap), §5.17 commands (rebirth),
-§6.4.6 metric (alias, timestamp, is_historical).
+§6.4.6 metric (alias, timestamp, is_historical), §6.4.9.1 quality codes.
 """
 
 from __future__ import annotations
@@ -51,6 +53,7 @@ from twin.ingest.decode import DEFAULT_MAX_PAYLOAD_BYTES, Rejection, Sample, Tag
 from twin.sparkplug import (
     BDSEQ_METRIC,
     NAMESPACE,
+    QUALITY_CODES,
     Metric,
     SparkplugError,
     decode_payload,
@@ -341,6 +344,11 @@ class SparkplugSession:
             reason = "missing_value" if m.is_null or m.value_field is None else "wrong_type"
             out.rejections.append(Rejection(b.tag, reason, f"{name} metric {metric!r}: {exc}"[:200]))
             return
+        if m.quality is not None and m.quality not in QUALITY_CODES:
+            out.rejections.append(Rejection(b.tag, "bad_quality", f"{name} metric {metric!r}: Quality property "
+                                            f"{m.quality}; expected an Int32 of 0, 192 or 500"))
+            return
+        ok = m.quality is None or QUALITY_CODES[m.quality] == "good"
         t = epoch_seconds(m.timestamp_ms)
         t = t if t is not None else t_default
         v = raw * b.scale + b.offset
@@ -353,7 +361,7 @@ class SparkplugSession:
             self.historical += 1
             out.historical.append(HistoricalSample(b.tag, t, v, raw))
         else:
-            out.samples.append(Sample(b.tag, t, v, True))
+            out.samples.append(Sample(b.tag, t, v, ok))
 
 
 def _as_int(m: Metric | None) -> int | None:
