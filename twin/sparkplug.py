@@ -164,8 +164,11 @@ def decode_payload(data: bytes) -> Payload:
     metrics = []
     for m in msg.metrics:
         which = m.WhichOneof("value")
+        name = m.name if m.HasField("name") else None
+        if name is not None and not isinstance(name, str):  # proto2 hands invalid UTF-8 back as bytes
+            raise SparkplugError(f"metric name {bytes(name)[:40]!r} is not UTF-8 text")
         metrics.append(Metric(
-            m.name if m.HasField("name") else None,
+            name,
             m.alias if m.HasField("alias") else None,
             m.timestamp if m.HasField("timestamp") else None,
             m.datatype if m.HasField("datatype") else None,
