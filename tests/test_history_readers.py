@@ -146,6 +146,22 @@ def test_dst_repeated_hour_resolved_by_file_order(config, tmp_path):
     assert any("repeated local hour on 2026-10-25" in n for n in rep.time.dst_notes)
 
 
+def test_dst_second_pass_reaching_the_first_pass_last_time(config, tmp_path):
+    # 2026-10-25 Berlin, two tags per time: the second pass ends at 02:59:40 again, the
+    # highest wall time of the first pass; it and its second tag are still the later hour
+    walls = ["02:59:20", "02:59:40", "02:00:00", "02:59:40", "03:00:00"]
+    folds = [0, 0, 1, 1, 0]
+    rows = "".join(f"2026-10-25 {w},{tag},15\n" for w in walls for tag in ("HP-MS-P1", "HP-MS-P2"))
+    p = tmp_path / "autumn-edge.csv"
+    p.write_text("timestamp,tag,value\n" + rows)
+    for block_size in (40, 16 << 20):  # the carried pass across block edges too
+        s, rep = _read(config, p, timezone="Europe/Berlin", block_size=block_size)
+        expect = [datetime(2026, 10, 25, *(int(x) for x in w.split(":")), tzinfo=BERLIN, fold=f).timestamp()
+                  for w, f in zip(walls, folds, strict=True) for _ in range(2)]
+        assert list(s.t) == expect
+        assert rep.time.second_pass_rows == 4 and rep.time.repeated_hour_rows == 8
+
+
 def test_dst_missing_hour_rows_refused_and_counted(config, tmp_path):
     # 2026-03-29: clocks in Berlin jump from 02:00 CET to 03:00 CEST; 02:30 does not exist
     p = tmp_path / "spring.csv"

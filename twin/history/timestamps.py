@@ -157,6 +157,7 @@ class TimestampParser:
         self.where = where
         self.report = TimeReport()
         self._max_local = -np.inf  # running maximum of local wall time seen [s]
+        self._last_second = False  # the last row was in the second pass of a repeated hour
         self._noted: set[tuple[str, str]] = set()
 
     def parse(self, col: pa.Array) -> tuple[np.ndarray, np.ndarray, list[tuple[int, str]]]:
@@ -252,9 +253,18 @@ class TimestampParser:
         run_max = np.maximum.accumulate(np.where(valid, w, -np.inf))
         prev_max = np.maximum(np.concatenate(([self._max_local], run_max[:-1])), self._max_local)
         second = ambiguous & (w < prev_max)
+        # a row back at the highest wall time seen continues the pass of the row before it
+        # (the last sample of the repeated hour's second pass, or another tag at the same time)
+        level = ambiguous & (w == prev_max)
+        if level.any():
+            i = np.arange(len(w))
+            before = np.maximum.accumulate(np.where(level, -1, i))  # last row at or before i not at that level
+            carried = np.where(before >= 0, second[np.maximum(before, 0)], self._last_second)
+            second = second | (level & carried)
         t = np.where(second, tl, te)
         if len(w):
             self._max_local = max(self._max_local, float(run_max[-1]))
+            self._last_second = bool(second[-1])
         t[missing | ~valid] = np.nan
         nm, na = int(missing.sum()), int(ambiguous.sum())
         self.report.missing_hour_rows += nm
