@@ -4,7 +4,9 @@ Three parts, one JSON document:
 
 * ``reading``: rows per second of :class:`twin.history.HistoryReader` on a
   synthetic long-layout CSV (``--read-rows`` rows over the plant's tags, epoch
-  seconds and RFC 3339 timestamps), one process, CPU seconds beside wall time;
+  seconds and RFC 3339 timestamps, the latter also gzip), one process, CPU
+  seconds beside wall time, the median of ``--read-repeats`` reads; beside it
+  the line-by-line rate (``fast=False``, the path of a block with a bad row);
 * ``backfill``: the simulated demo scenario (``--hours`` at ``--sample-interval``)
   back-filled at ``--cycle`` second windows with 1 and ``--workers`` worker
   processes; windows per second (wall, including reading, process start-up
@@ -24,8 +26,10 @@ extrapolation, not a measurement).
 from __future__ import annotations
 
 import argparse
+import gzip
 import math
 import os
+import shutil
 import tempfile
 import time
 from pathlib import Path
@@ -34,6 +38,10 @@ from typing import Any
 import numpy as np
 
 GOAL_WINDOWS_PER_S = 500.0
+GOAL_ROWS_PER_S = 5e6  # CSV rows per second per core (CPU time of the reading process)
+READING_HOW = ("median of `repeats` reads of the same file by one HistoryReader each (CPU seconds of the process, "
+               "pyarrow's threads included); line_by_line: the same with fast=False (every block read line by "
+               "line, the path a block with a bad row takes)")
 WEEK_WINDOWS_1MIN = 7 * 24 * 60
 
 
@@ -44,13 +52,24 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--sample-interval", type=float, default=10.0, help="history sample interval [s] (default 10)")
     parser.add_argument("--workers", type=int, default=2, help="workers of the parallel run (default 2)")
     parser.add_argument("--read-rows", type=int, default=2_000_000, help="rows of the reading benchmark (default 2e6)")
+    parser.add_argument("--read-repeats", type=int, default=3, help="reads per file in the reading benchmark (default 3)")
     parser.add_argument("--live-windows", type=int, default=10, help="windows of the live-path measurement (default 10)")
     parser.add_argument("--skip-backfill", action="store_true", help="reading rate only")
 
 
-def _reading(config: Any, rows: int, d: Path) -> dict[str, Any]:
+def _read_once(config: Any, path: Path, fast: bool) -> tuple[float, float, Any]:
     from twin.history import HistoryReader
 
+    reader = HistoryReader(config, fast=fast)
+    c0, w0 = time.process_time(), time.perf_counter()
+    for _ in reader.read(path):
+        pass
+    wall, cpu = time.perf_counter() - w0, time.process_time() - c0
+    rep = reader.reports[str(path)]
+    return wall, cpu, rep
+
+
+def _reading(config: Any, rows: int, d: Path, repeats: int = 3) -> dict[str, Any]:
     tags = [s.tag for s in config.sensors]
     rng = np.random.default_rng(1)
     n_t = max(1, rows // len(tags))
@@ -59,26 +78,38 @@ def _reading(config: Any, rows: int, d: Path) -> dict[str, Any]:
     lo = np.array([(s.range or s.span or (0.0, 1.0))[0] for s in config.sensors])
     hi = np.array([(s.range or s.span or (0.0, 1.0))[1] for s in config.sensors])
     v = np.tile(lo + 0.5 * (hi - lo), n_t) * (1 + 1e-3 * rng.standard_normal(n_t * len(tags)))
-    out: dict[str, Any] = {"rows": int(n_t * len(tags))}
-    for kind in ("epoch_s", "rfc3339"):
-        p = d / f"read-{kind}.csv"
-        with open(p, "w") as f:
-            f.write("timestamp,tag,value\n")
-            if kind == "epoch_s":
-                stamps = [repr(x) for x in t.tolist()]
-            else:
-                base = np.datetime64("2026-01-05T00:00:00", "s")
-                stamps = [str(base + np.timedelta64(int(x - 1767571200.0), "s")) + "Z" for x in t]
-            f.writelines(f"{a},{b},{c!r}\n" for a, b, c in zip(stamps, tag, v.tolist(), strict=True))
+    out: dict[str, Any] = {"rows": int(n_t * len(tags)), "repeats": repeats,
+                           "goal_rows_per_s_cpu": GOAL_ROWS_PER_S, "how": READING_HOW}
+    for kind in ("epoch_s", "rfc3339", "rfc3339.gz"):
+        p = d / f"read-{kind}.csv{'.gz' if kind.endswith('.gz') else ''}"
+        if kind.endswith(".gz"):
+            with open(d / "read-rfc3339.csv", "rb") as src, gzip.open(p, "wb", compresslevel=6) as dst:
+                shutil.copyfileobj(src, dst, 1 << 20)
+        else:
+            with open(p, "w") as f:
+                f.write("timestamp,tag,value\n")
+                if kind == "epoch_s":
+                    stamps = [repr(x) for x in t.tolist()]
+                else:
+                    base = np.datetime64("2026-01-05T00:00:00", "s")
+                    stamps = [str(base + np.timedelta64(int(x - 1767571200.0), "s")) + "Z" for x in t]
+                f.writelines(f"{a},{b},{c!r}\n" for a, b, c in zip(stamps, tag, v.tolist(), strict=True))
         size = p.stat().st_size
-        reader = HistoryReader(config)
-        c0, w0 = time.process_time(), time.perf_counter()
-        n = sum(len(b) for b in reader.read(p))
-        wall, cpu = time.perf_counter() - w0, time.process_time() - c0
-        out[kind] = {"samples": n, "wall_s": round(wall, 3), "cpu_s": round(cpu, 3),
+        fast = [_read_once(config, p, True) for _ in range(max(1, repeats))]
+        slow = [_read_once(config, p, False) for _ in range(max(1, repeats))]
+        wall = float(np.median([f[0] for f in fast]))
+        cpu = float(np.median([f[1] for f in fast]))
+        cpu_slow = float(np.median([f[1] for f in slow]))
+        rep = fast[0][2]
+        out[kind] = {"samples": rep.samples, "wall_s": round(wall, 3), "cpu_s": round(cpu, 3),
                      "rows_per_s_wall": round(out["rows"] / wall), "rows_per_s_cpu": round(out["rows"] / cpu),
+                     "first_read_rows_per_s_cpu": round(out["rows"] / fast[0][1]),
+                     "line_by_line_rows_per_s_cpu": round(out["rows"] / cpu_slow),
+                     "fast_blocks": rep.fast_blocks, "slow_blocks": rep.slow_blocks,
+                     "goal_ratio": round(out["rows"] / cpu / GOAL_ROWS_PER_S, 3),
                      "mb_per_s_cpu": round(size / 1e6 / cpu, 1), "file_mb": round(size / 1e6, 1)}
-        p.unlink()
+    for kind in ("epoch_s", "rfc3339", "rfc3339.gz"):
+        (d / f"read-{kind}.csv{'.gz' if kind.endswith('.gz') else ''}").unlink()
     return out
 
 
@@ -124,7 +155,7 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
     with tempfile.TemporaryDirectory(prefix="twin-bench-backfill-") as tmp:
         d = Path(tmp)
         if args.skip_backfill:
-            result["reading"] = _reading(config, args.read_rows, d)
+            result["reading"] = _reading(config, args.read_rows, d, args.read_repeats)
             return result
         hist = d / "history.csv.gz"
         w0 = time.perf_counter()
@@ -157,6 +188,6 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
         from twin.backfill import _peak_rss_mb
 
         result["main_peak_rss_mb"] = round(_peak_rss_mb(), 1)
-        result["reading"] = _reading(config, args.read_rows, d)
+        result["reading"] = _reading(config, args.read_rows, d, args.read_repeats)
     result["goal_windows_per_s"] = GOAL_WINDOWS_PER_S
     return result

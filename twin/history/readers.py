@@ -12,10 +12,15 @@ configured barometric pressure, corrected per window by the live barometer).
 A non-finite or out-of-range value is rejected and counted by reason, as live.
 
 Memory is bounded by one block (``block_size`` bytes of CSV, ``batch_rows``
-Parquet rows), never by the file. CSV lines are read whole and split by
-pyarrow, so every bad row is reported with its exact line number: one line
+Parquet rows), never by the file. A CSV block of whole lines is split in one
+vectorised pass when every line in it has the header's number of fields
+(:mod:`twin.history.csvblocks`); a block with a blank or comment line or a row
+of the wrong shape is read line by line instead. Either way every bad row is
+reported with its exact line number: one line
 ``<file>:<line>: <problem>; expected <what>``, counted, skipped; a bad row never
-stops the read. Blank lines and lines starting with ``#`` are ignored.
+stops the read. Blank lines and lines starting with ``#`` are ignored. Both
+paths give the same samples, counts and messages (``fast=False`` forces the
+line-by-line one).
 """
 
 from __future__ import annotations
@@ -30,9 +35,9 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.csv as pcsv
 import pyarrow.parquet as pq
 
+from twin.history import csvblocks
 from twin.history.timestamps import TimeReport, TimestampError, TimestampParser, robust_cast
 
 #: Quality values counted as good (case-insensitive); OPC DA "good" is 192 (0xC0).
@@ -90,6 +95,8 @@ class FileReport:
     time: TimeReport = field(default_factory=TimeReport)
     t_first: float = math.inf
     t_last: float = -math.inf
+    fast_blocks: int = 0  # CSV blocks split in one vectorised pass
+    slow_blocks: int = 0  # CSV blocks read line by line (a blank, comment or bad row in them)
 
     def error(self, line: str) -> None:
         self.bad_rows += 1
@@ -121,17 +128,21 @@ class HistoryReader:
         CSV bytes per block.
     batch_rows : int
         Parquet rows per batch.
+    fast : bool
+        Split clean CSV blocks in one vectorised pass (default); False reads
+        every block line by line (same samples, counts and messages, slower).
     """
 
     def __init__(self, config: Any, *, timestamps: str = "auto", timezone: str | None = None,
                  good_quality: Sequence[str] = DEFAULT_GOOD_QUALITY, block_size: int = 16 << 20,
-                 batch_rows: int = 1 << 20) -> None:
+                 batch_rows: int = 1 << 20, fast: bool = True) -> None:
         self.config = config
         self.timestamps = timestamps
         self.timezone = timezone
         self.good_quality = pa.array(sorted({q.strip().lower() for q in good_quality} | {""}))
         self.block_size = int(block_size)
         self.batch_rows = int(batch_rows)
+        self.fast = bool(fast)
         self.tags = [s.tag for s in config.sensors]
         self._tag_array = pa.array(self.tags)
         self._scale = np.array([s.conversion.scale for s in config.sensors], float)
@@ -189,69 +200,77 @@ class HistoryReader:
     # ------------------------------------------------------------------ CSV
     def _csv(self, path: Path, rep: FileReport) -> Iterator[Samples]:
         stream = pa.input_stream(str(path), compression="gzip" if path.name.lower().endswith(".gz") else None)
-        try:
-            reader = self._open_csv(stream)
-        except pa.ArrowInvalid as exc:
-            if "Empty CSV file" in str(exc):
-                raise HistoryError(f"{path}: empty file; expected a header line {_LONG_EXPECT} or timestamp,<TAG>,...") from None
-            raise
-        yield from self._csv_lines(path, reader, rep)
-
-    def _open_csv(self, stream: Any) -> Any:
-        return pcsv.open_csv(
-            stream,
-            read_options=pcsv.ReadOptions(block_size=self.block_size, autogenerate_column_names=True),
-            parse_options=pcsv.ParseOptions(delimiter="\x01", quote_char=False, escape_char=False,
-                                            ignore_empty_lines=False, newlines_in_values=False),
-            convert_options=pcsv.ConvertOptions(column_types={"f0": pa.string()}, strings_can_be_null=False,
-                                                quoted_strings_can_be_null=False),
-        )
-
-    def _csv_lines(self, path: Path, reader: Any, rep: FileReport) -> Iterator[Samples]:
-        header: list[str] | None = None
-        line0 = 1  # file line of the first row of the next batch
-        layout: _Layout | None = None
-        parser = TimestampParser(self.timestamps, self.timezone, str(path))
-        rep.time = parser.report
-        for batch in reader:
-            lines = batch.column(0)
-            n = len(lines)
-            stripped = pc.utf8_trim(lines, characters=" \t\r")
-            skip = pc.or_(pc.equal(stripped, ""), pc.starts_with(stripped, "#")).to_numpy(zero_copy_only=False)
-            rows = np.flatnonzero(~skip)
-            if header is None and len(rows):
-                i0 = int(rows[0])
-                header = [h.strip().strip('"').strip() for h in stripped[i0].as_py().split(",")]
-                layout = self._layout(header, path, line0 + i0, rep)
-                rows = rows[1:]
-            if layout is None or not len(rows):
-                line0 += n
+        st = _CsvState(TimestampParser(self.timestamps, self.timezone, str(path)))
+        rep.time = st.parser.report
+        for data in csvblocks.blocks(stream, self.block_size):
+            if st.layout is None:  # header not met yet: lines before it and the header, line by line
+                end = csvblocks.header_end(data, file_start=st.line0 == 1)
+                head, data = (data, b"") if end is None else (data[:end], data[end:])
+                yield from self._csv_slow(path, head, st, rep)
+            if not data:
                 continue
-            body = stripped if len(rows) == n else stripped.take(pa.array(rows))
-            fields = pc.split_pattern(body, ",")
-            nf = pc.list_value_length(fields).to_numpy(zero_copy_only=False)
-            want = layout.n_columns
-            good = nf == want
-            if layout.kind == "long" and layout.optional_quality:
-                good |= nf == want - 1
-            for i in np.flatnonzero(~good)[: MAX_ERROR_LINES + 1]:
-                rep.error(f"{path}:{line0 + int(rows[i])}: {int(nf[i])} fields; expected {layout.expect}")
-            rep.bad_rows += max(0, int(np.count_nonzero(~good)) - min(MAX_ERROR_LINES + 1, int(np.count_nonzero(~good))))
-            if not good.all():
-                fields = fields.filter(pa.array(good))
-                rows = rows[good]
-                nf = nf[good]
-            rep.rows += len(rows)
-            if not len(rows):
-                line0 += n
+            layout = st.layout
+            cols = self._csv_fast(data, layout) if self.fast and layout is not None else None
+            if cols is None or layout is None:
+                rep.slow_blocks += 1
+                yield from self._csv_slow(path, data, st, rep)
                 continue
-            cols = [pc.list_element(fields, j) if j < want - 1 or not layout.optional_quality
-                    else _element_or_empty(fields, j, nf) for j in range(want)]
-            cols = [pc.utf8_trim(c, characters=' "\t') for c in cols]
-            yield from self._decode(layout, cols, line0 + rows, parser, rep, path)
-            line0 += n
-        if header is None:
+            rep.fast_blocks += 1
+            n = len(cols[0])
+            rep.rows += n
+            yield from self._decode(layout, cols, st.line0 + np.arange(n), st.parser, rep, path)
+            st.line0 += n
+        if st.header is None:
             raise HistoryError(f"{path}: empty file; expected a header line {_LONG_EXPECT} or timestamp,<TAG>,...")
+
+    def _csv_fast(self, data: bytes, layout: _Layout) -> list[Any] | None:
+        """A clean block's columns in one vectorised split (None: read it line by line)."""
+        if layout.kind == "long":  # a row without its optional quality refuses the block
+            return csvblocks.split_clean(data, layout.n_columns, numeric=frozenset({2}))
+        skip = frozenset(j for j, idx in enumerate(layout.index, start=1) if idx < 0)
+        numeric = frozenset(range(1, layout.n_columns)) - skip
+        return csvblocks.split_clean(data, layout.n_columns, numeric=numeric, empty_is_null=True, skip=skip)
+
+    def _csv_slow(self, path: Path, data: bytes, st: _CsvState, rep: FileReport) -> Iterator[Samples]:
+        """One block line by line: blank and comment lines skipped, each bad row named by its line."""
+        if not data:
+            return
+        lines = csvblocks.split_lines(data, self.block_size)
+        n = len(lines)
+        line0 = st.line0
+        st.line0 += n
+        stripped = pc.utf8_trim(lines, characters=" \t\r")
+        skip = pc.or_(pc.equal(stripped, ""), pc.starts_with(stripped, "#")).to_numpy(zero_copy_only=False)
+        rows = np.flatnonzero(~skip)
+        if st.header is None and len(rows):
+            i0 = int(rows[0])
+            st.header = [h.strip().strip('"').strip() for h in stripped[i0].as_py().split(",")]
+            st.layout = self._layout(st.header, path, line0 + i0, rep)
+            rows = rows[1:]
+        layout = st.layout
+        if layout is None or not len(rows):
+            return
+        body = stripped if len(rows) == n else stripped.take(pa.array(rows))
+        fields = pc.split_pattern(body, ",")
+        nf = pc.list_value_length(fields).to_numpy(zero_copy_only=False)
+        want = layout.n_columns
+        good = nf == want
+        if layout.kind == "long" and layout.optional_quality:
+            good |= nf == want - 1
+        for i in np.flatnonzero(~good)[: MAX_ERROR_LINES + 1]:
+            rep.error(f"{path}:{line0 + int(rows[i])}: {int(nf[i])} fields; expected {layout.expect}")
+        rep.bad_rows += max(0, int(np.count_nonzero(~good)) - min(MAX_ERROR_LINES + 1, int(np.count_nonzero(~good))))
+        if not good.all():
+            fields = fields.filter(pa.array(good))
+            rows = rows[good]
+            nf = nf[good]
+        rep.rows += len(rows)
+        if not len(rows):
+            return
+        cols = [pc.list_element(fields, j) if j < want - 1 or not layout.optional_quality
+                else _element_or_empty(fields, j, nf) for j in range(want)]
+        cols = [pc.utf8_trim(c, characters=csvblocks.FIELD_TRIM) for c in cols]
+        yield from self._decode(layout, cols, line0 + rows, st.parser, rep, path)
 
     # ------------------------------------------------------------------ Parquet
     def _parquet(self, path: Path, rep: FileReport) -> Iterator[Samples]:
@@ -320,9 +339,13 @@ class HistoryReader:
             rep.error(f"{where(i)}: {text}")
         rep.bad_rows += max(0, int(np.count_nonzero(~t_ok)) - len(problems))
         if layout.kind == "long":
-            tag_idx = pc.index_in(cols[1], value_set=self._tag_array).to_numpy(zero_copy_only=False)
-            unknown = np.isnan(tag_idx) if tag_idx.dtype.kind == "f" else np.zeros(len(tag_idx), bool)
-            tag_idx = np.where(unknown, -1, tag_idx).astype(np.int64)
+            found = pc.index_in(cols[1], value_set=self._tag_array)
+            if found.null_count == 0:
+                tag_idx = found.to_numpy(zero_copy_only=False).astype(np.int64)
+                unknown = np.zeros(len(tag_idx), bool)
+            else:
+                unknown = np.asarray(found.is_null().to_numpy(zero_copy_only=False), bool)
+                tag_idx = found.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
             values = cols[2]
             ok_q = np.ones(len(tag_idx), bool)
             if layout.n_columns == 4:
@@ -371,22 +394,42 @@ class HistoryReader:
                               f"{self.config.sensors[int(tag_idx[i])].unit}")
                 rep.bad_rows += max(0, nb - MAX_ERROR_LINES)
             keep = row_ok & num_ok
-            idx = tag_idx[keep]
-            v = raw[keep] * self._scale[idx] + self._offset[idx]
+            all_kept = bool(keep.all())  # the common case: no copies through a mask
+            idx = tag_idx if all_kept else tag_idx[keep]
+            v = (raw if all_kept else raw[keep]) * self._scale[idx] + self._offset[idx]
             finite = np.isfinite(v)
             in_range = finite & (v >= self._lo[idx]) & (v <= self._hi[idx])
-            rep.rejected["not_finite"] += int(np.count_nonzero(~finite))
-            rep.rejected["out_of_range"] += int(np.count_nonzero(finite & ~in_range))
-            out_t.append(t[keep][in_range])
-            out_tag.append(idx[in_range].astype(np.int32))
-            out_v.append(v[in_range])
-            out_ok.append(ok_q[keep][in_range])
-        if out_t:
+            n_in = int(np.count_nonzero(in_range))
+            n_finite = int(np.count_nonzero(finite))
+            rep.rejected["not_finite"] += len(v) - n_finite
+            rep.rejected["out_of_range"] += n_finite - n_in
+            tk, qk = (t, ok_q) if all_kept else (t[keep], ok_q[keep])
+            if n_in < len(v):
+                tk, idx, v, qk = tk[in_range], idx[in_range], v[in_range], qk[in_range]
+            out_t.append(tk)
+            out_tag.append(idx.astype(np.int32))
+            out_v.append(v)
+            out_ok.append(qk)
+        if len(out_t) == 1:
+            s = Samples(out_t[0], out_tag[0], out_v[0], out_ok[0])
+            if len(s):
+                yield s
+        elif out_t:
             s = Samples(np.concatenate(out_t), np.concatenate(out_tag), np.concatenate(out_v), np.concatenate(out_ok))
             if len(s):
                 yield s
         for k in [k for k, v in rep.rejected.items() if v == 0]:
             del rep.rejected[k]
+
+
+@dataclass
+class _CsvState:
+    """Where one CSV read is: header and layout once met, the timestamp parser, the next block's first line."""
+
+    parser: TimestampParser
+    header: list[str] | None = None
+    layout: _Layout | None = None
+    line0: int = 1
 
 
 @dataclass
