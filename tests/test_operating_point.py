@@ -77,10 +77,14 @@ CASES = [
     ({"overrides": {("main_steam", "temperature"): 814.15 - 0.5}}, "main_steam_temperature"),
     ({"constants": _efficiency("HP", 0.001)}, "hp_efficiency"),
     ({"constants": {"fwh7": {"ttd": -1.7 + 0.5}}}, "feedwater_heaters"),
+    ({"constants": {"fwh7": {"ttd": -1.7 + 1.2}, "fwh5": {"dca": 5.6 + 0.3}}}, "feedwater_heaters"),
     ({"overrides": {("hot_reheat", "temperature"): 813.15 - 3.0}}, "reheat_temperature"),
     ({"constants": _efficiency("LP", 0.01)}, "lp_efficiency"),
     ({"constants": _efficiency("IP", 0.02)}, "ip_efficiency"),
     ({"constants": {"condenser": {"ua": 0.85 * demo_design()[2].constants["condenser"]["ua"]}}}, "condenser_pressure"),
+    # 0.2 % and 0.8 % of the design main-steam flow (295 kg/s) lost and made up
+    ({"overrides": {("steam_lost", "mass_flow"): 0.6}, "skip": frozenset({"steam_leak.flow"})}, "cycle_isolation"),
+    ({"overrides": {("steam_lost", "mass_flow"): 2.4}, "skip": frozenset({"steam_leak.flow"})}, "cycle_isolation"),
 ]
 
 

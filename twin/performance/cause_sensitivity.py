@@ -6,7 +6,8 @@ computed once (:func:`sensitivities`: one factorisation of the heat-balance Jaco
 and one residual evaluation per driver). A window's cause is then
 
 - the first-order estimate ``S · Δdriver`` when it is within :data:`LINEAR_LIMIT`
-  (2 kJ/kWh, where the neglected second-order term is below 0.05 kJ/kWh on demo-u1);
+  (2 kJ/kWh; 5 kJ/kWh for the nearly linear heater TTD/DCA, :data:`LINEAR_LIMITS`),
+  where the neglected second-order term is below 0.05 kJ/kWh on demo-u1;
 - for a single-driver cause beyond that but within its probe step (:data:`PROBE_STEPS`,
   e.g. 3 points of section efficiency, 10 K of steam temperature), the estimate with a
   second-order term whose curvature comes from one exact model run at the probe step
@@ -38,9 +39,11 @@ if TYPE_CHECKING:
 
 #: A cause whose first-order estimate is larger than this [-] (2 kJ/kWh) gets a second-order term or an exact run.
 LINEAR_LIMIT = 2.0 / 3600.0
+#: Larger first-order range for drivers whose effect is nearly linear (heater TTD/DCA: 5 kJ/kWh) [-].
+LINEAR_LIMITS = {"ttd": 5.0 / 3600.0, "dca": 5.0 / 3600.0}
 
 #: Driver kind → the probe step of its curvature run (and the range of the quadratic estimate).
-PROBE_STEPS = {"T": -10.0, "factor": -0.03, "approach": 0.2, "rho": 0.05, "sigma": -0.03}
+PROBE_STEPS = {"T": -10.0, "factor": -0.03, "approach": 0.2, "rho": 0.05, "sigma": -0.03, "loss": 0.01}
 
 _FAILURES = (SolveError, ValueError, PropertyError, ArithmeticError, RuntimeError)
 
@@ -59,7 +62,8 @@ def sensitivities(model: ExpectedModel, node: Node) -> dict[str, float]:
     ``approach:<condenser>`` per unit of 1/(1 − exp(−UA/(m_cw c_p))) over its design
     value (the back-pressure rise above the cooling water is proportional to it),
     ``ttd:<heater>`` and ``dca:<heater>`` [1/K], ``rho`` per unit of throttle pressure /
-    expected (valves as expected) and ``sigma`` per unit of valve pressure ratio / expected.
+    expected (valves as expected), ``sigma`` per unit of valve pressure ratio / expected and
+    ``loss:<sink>`` per unit of a cycle-loss flow / design main-steam flow.
     A driver whose sensitivity cannot be computed is absent (its cause is an exact run).
     """
     if node.sensitivities is None:
@@ -122,6 +126,16 @@ def _linear_sensitivities(model: ExpectedModel, node: Node) -> dict[str, float]:
             if math.isfinite(v):
                 per[f"{k}:{h}"] = (specs, moved(h, k, float(v) + dt), dt)
     out = linear_response(fs, hb.z, (specs, skip, consts), per, hr)
+    for e in model.losses:  # the sink's flow as a spec in place of its normal-loss relation
+        a = e.port("inlet")
+        m = ctx.m(a)
+
+        def flow(value: float, a: str = a) -> list[Spec]:
+            return with_overrides(specs, {(a, "mass_flow"): value})
+
+        step = df * model.design_flow
+        out.update(linear_response(fs, hb.z, (flow(m), skip | {e.relation("flow")}, consts),
+                                   {f"loss:{e.id}": (flow(m + step), consts, df)}, hr))
     if model.valve is not None and model.first_hp is not None:
         vin, vout = model.valve.port("inlet"), model.valve.port("outlet")
         p_in, p_out = ctx.p(vin), ctx.p(vout)
@@ -150,9 +164,14 @@ def probe_run(model: ExpectedModel, node: Node, driver: str, delta: float) -> di
         return {"constants": {what: {"ua": _approach_ua(model, what, 1.0 + delta)}}}
     if kind in ("rho", "sigma") and model.valve is not None and model.first_hp is not None:
         vin, vout = model.valve.port("inlet"), model.valve.port("outlet")
-        a = 1.0 + delta if kind == "rho" else 1.0
-        return {"overrides": {(vin, "pressure"): ctx.p(vin) * a, (vout, "pressure"): ctx.p(vout) * (1.0 + delta)},
+        scale = 1.0 + delta if kind == "rho" else 1.0
+        return {"overrides": {(vin, "pressure"): ctx.p(vin) * scale, (vout, "pressure"): ctx.p(vout) * (1.0 + delta)},
                 "skip": frozenset({model.valve.relation("open"), model.first_hp.relation("stodola")})}
+    if kind == "loss":
+        e = next(e for e in model.losses if e.id == what)
+        sink = e.port("inlet")
+        return {"overrides": {(sink, "mass_flow"): ctx.m(sink) + delta * model.design_flow},
+                "skip": frozenset({e.relation("flow")})}
     raise ValueError(f"no probe for driver {driver!r}")
 
 
@@ -181,7 +200,7 @@ def estimates(model: ExpectedModel, node: Node, runs: Mapping[str, Mapping[str, 
         if not all(k in sens for k in lin):
             continue
         est = sum(sens[k] * d for k, d in lin.items())
-        if abs(est) <= LINEAR_LIMIT:
+        if abs(est) <= min(LINEAR_LIMITS.get(k.partition(":")[0], LINEAR_LIMIT) for k in lin):
             out[cause] = est
             continue
         if len(lin) != 1:

@@ -222,6 +222,7 @@ class ExpectedModel:
             members = tuple(g for g in groups if str(g.params.get("section")) == s.id)
             if members:
                 self.sections[s.id] = _SectionPath(s.id, s.inlet, s.outlet, members)
+        self.design_flow = float(fs.stream_configs[op.load_stream].design["mass_flow"])  # [kg/s]
         cw0 = float(self.condensers[0].params["cooling_water_inlet_temperature"]) if self.condensers else None
         #: expected states on the operating-point grid (rebuilt deterministically: not state)
         self.grid = OperatingPoints(lambda load, cw: self._solve(load, cw, None), self._node_values, cw0)
@@ -501,6 +502,7 @@ class ExpectedModel:
     def _isolation_run(self, ctx: Context, rctx: Context) -> dict[str, Any]:
         """Every cycle-loss sink at its actual flow instead of its normal loss (make-up beyond normal)."""
         overrides: dict[tuple[str, str], float] = {}
+        linear: dict[str, float] = {}  # drivers: flow change / design main-steam flow
         for e in self.losses:
             a = e.port("inlet")
             m = ctx.m(a)
@@ -508,9 +510,10 @@ class ExpectedModel:
                 raise ValueError("cycle loss not observable")
             if abs(m - rctx.m(a)) > _FLOW_TOL:
                 overrides[(a, "mass_flow")] = m
+                linear[f"loss:{e.id}"] = (m - rctx.m(a)) / self.design_flow
         if not overrides:
             return {"zero": True}
-        return {"overrides": overrides,
+        return {"overrides": overrides, "linear": linear,
                 "skip": frozenset(e.relation("flow") for e in self.losses if (e.port("inlet"), "mass_flow") in overrides)}
 
     def _condenser_run(self, ctx: Context, rctx: Context, cw_inlet: float | None) -> dict[str, Any]:
