@@ -101,6 +101,8 @@ class CycleOutput:
     transitions: list[Transition]
     notes: list[tuple[str, dict[str, Any]]] = field(default_factory=list)  # (event, fields)
     reconcile_seconds: float = math.nan
+    deviation_seconds: float = math.nan  # expected model and heat-rate split
+    cause_model_runs: int = 0  # causes that needed an exact model run (others from stored sensitivities)
 
 
 def window_values(config: PlantConfig, stats: Mapping[str, WindowStats]) -> tuple[dict[str, float], dict[str, str]]:
@@ -206,7 +208,9 @@ class UnitCycle:
         kpis = self._kpis(rec)
         load = _value(kpis, "load_fraction")
         # total and split from this window's own reconciliation (split on steady windows only)
+        t_dev = time.perf_counter()
         dev = self.deviation(rec, steady)
+        t_dev = time.perf_counter() - t_dev
         if dev.status.startswith(("unavailable: expected", "partial")):
             notes.append(("heat_rate_deviation", {"window_end": t_end, "status": dev.status}))
         expected = dict(dev.expected)
@@ -233,7 +237,7 @@ class UnitCycle:
         )
         if not rec.converged:
             notes.append(("reconcile_failed", {"window_end": t_end, "status": rec.status, "message": rec.message}))
-        return CycleOutput(result, transitions, notes, t_rec)
+        return CycleOutput(result, transitions, notes, t_rec, t_dev, dev.model_runs)
 
     def _kpis(self, rec: PlantReconciliation) -> dict[str, Estimate]:
         """Every KPI of the plant, unavailable where the window gave no value."""

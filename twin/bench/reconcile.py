@@ -42,7 +42,22 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "load, sliding and fixed pressure (default 3000)")
     parser.add_argument("--workers", type=int, default=2, help="worker processes for the noisy windows (default 2)")
     parser.add_argument("--cycles", type=int, default=60, help="UnitCycle windows for the cycle figure (default 60)")
+    parser.add_argument("--cycle-loads", type=_loads, default=(1.0,),
+                        help="comma-separated loads the cycle windows step through, each a new operating point "
+                             "(default 1.0)")
+    parser.add_argument("--only-cycle", action="store_true", help="the cycle figure only (skip the other parts)")
     parser.add_argument("--quick", action="store_true", help="tiny sizes (smoke test)")
+
+
+def _loads(text: str) -> tuple[float, ...]:
+    """``--cycle-loads``: comma-separated load fractions within 0.2-1.2."""
+    try:
+        loads = tuple(float(x) for x in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected comma-separated load fractions, e.g. 1.0,0.8") from None
+    if not all(0.2 <= x <= 1.2 for x in loads):
+        raise argparse.ArgumentTypeError(f"{text!r}: expected load fractions within 0.2-1.2")
+    return loads
 
 
 class _Timed:
@@ -343,8 +358,10 @@ def run(args: argparse.Namespace) -> dict:
     from twin.bench.reconcile_profile import cycle_figures
 
     windows = 12 if args.quick else args.windows
+    cycle = cycle_figures(args.config, 4 if args.quick else max(1, args.cycles), args.seed, args.cycle_loads)
+    if args.only_cycle:
+        return {"openblas_num_threads": os.environ.get("OPENBLAS_NUM_THREADS"), "cycle": cycle}
     demo = _demo(args, rng)
-    cycle = cycle_figures(args.config, 4 if args.quick else max(1, args.cycles), args.seed)
     return {
         "openblas_num_threads": os.environ.get("OPENBLAS_NUM_THREADS"),
         "demo_u1": demo,

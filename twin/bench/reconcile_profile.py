@@ -173,18 +173,23 @@ def _percentiles(times: list[float]) -> dict[str, Any]:
             "max_ms": round(float(a.max()), 2), "n": int(a.size)}
 
 
-def cycle_figures(config_path: str, cycles: int, seed: int) -> dict[str, Any]:
-    """Window close → result of ``UnitCycle.run`` over noisy demo-u1 windows at the design point."""
+def cycle_figures(config_path: str, cycles: int, seed: int, loads: tuple[float, ...] = (1.0,)) -> dict[str, Any]:
+    """Window close → result of ``UnitCycle.run`` over noisy demo-u1 windows.
+
+    The cycles are spread evenly over ``loads`` (sliding pressure, in that order), so
+    every change of load is a new operating point of the expected model; the first
+    split window after each change (where the node's sensitivities are computed) is
+    reported apart in ``first_split_at_new_load``.
+    """
     from twin.config import load_config
     from twin.cycle import UnitCycle, WindowInput
+    from twin.demo.plant import sensor_truth
     from twin.ingest.store import WindowStats
+    from twin.model.solve import solve_off_design
 
     cfg = load_config(config_path)
     uc = UnitCycle(cfg)
-    ps = uc.reconciler.system
-    z0 = ps.initial_point(uc.reconciler.design.z)
-    truth = {b.tag: float(z0[b.column]) for b in ps.sensors}
-    sig = {t: uc.reconciler.sigma(t, v) for t, v in truth.items()}
+    rec = uc.reconciler
     rng = np.random.default_rng(seed)
     cycle_s = float(uc.cycle_seconds)
     t_end = 1_700_000_000.0
@@ -192,8 +197,19 @@ def cycle_figures(config_path: str, cycles: int, seed: int) -> dict[str, Any]:
     split_t: list[float] = []
     other_t: list[float] = []
     rec_t: list[float] = []
+    dev_t: list[float] = []
+    first_split: list[float] = []
     statuses: dict[str, int] = {}
-    for _ in range(max(1, cycles)):
+    runs = 0
+    n_cycles = max(1, cycles)
+    per_load = max(1, n_cycles // len(loads))
+    for k in range(n_cycles):
+        load = loads[min(k // per_load, len(loads) - 1)]
+        if k % per_load == 0 and k // per_load < len(loads):
+            hb = rec.design if load == 1.0 else solve_off_design(uc.fs, uc.op, rec.design, load, "sliding")
+            truth = {t: v for t, v in sensor_truth(cfg, hb).items() if t in rec.system.sensor_by_tag}
+            sig = {t: rec.sigma(t, v) for t, v in truth.items()}
+            split_seen = False
         t_end += cycle_s
         stats = {}
         for tag, v in truth.items():
@@ -206,8 +222,22 @@ def cycle_figures(config_path: str, cycles: int, seed: int) -> dict[str, Any]:
         all_t.append(dt)
         if math.isfinite(out.reconcile_seconds):
             rec_t.append(out.reconcile_seconds)
+        dev_s = getattr(out, "deviation_seconds", math.nan)
+        if math.isfinite(dev_s):
+            dev_t.append(dev_s)
+        runs += int(getattr(out, "cause_model_runs", 0))
         status = str(getattr(res, "heat_rate_deviation_status", "") or "").split(":")[0] or "n/a"
         statuses[status] = statuses.get(status, 0) + 1
-        (split_t if res.heat_rate_deviation_by_cause else other_t).append(dt)
-    return {"all": _percentiles(all_t), "deviation_split": _percentiles(split_t), "without_split": _percentiles(other_t),
-            "reconcile_part": _percentiles(rec_t), "deviation_status": statuses}
+        if res.heat_rate_deviation_by_cause:
+            split_t.append(dt)
+            if not split_seen:
+                first_split.append(round(dt * 1e3, 1))
+                split_seen = True
+        else:
+            other_t.append(dt)
+    grid = getattr(uc.expected_model, "grid", None)
+    return {"loads": list(loads), "all": _percentiles(all_t), "deviation_split": _percentiles(split_t),
+            "without_split": _percentiles(other_t), "reconcile_part": _percentiles(rec_t),
+            "deviation_part": _percentiles(dev_t), "first_split_at_new_load_ms": first_split,
+            "exact_cause_runs": runs, "expected_node_solves": getattr(grid, "solves", None),
+            "deviation_status": statuses}

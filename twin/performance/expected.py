@@ -225,6 +225,7 @@ class ExpectedModel:
         self.design_flow = float(fs.stream_configs[op.load_stream].design["mass_flow"])  # [kg/s]
         cw0 = float(self.condensers[0].params["cooling_water_inlet_temperature"]) if self.condensers else None
         #: expected states on the operating-point grid (rebuilt deterministically: not state)
+        self._walk_memo: dict[str, Any] = {}
         self.grid = OperatingPoints(lambda load, cw: self._solve(load, cw, None), self._node_values, cw0)
 
     @classmethod
@@ -333,12 +334,24 @@ class ExpectedModel:
         alpha = g.params["baumann_factor"]
         y_in = _moisture(si)[0]
         h_out = h_in - eta_dry * (h_in - hs)
+        if alpha <= 0:
+            return h_out
+
+        def baumann(h: float) -> float:  # the Baumann-corrected outlet enthalpy given an outlet guess
+            y_out = _moisture(w.ph(p_out, h))[0]
+            return h_in - eta_dry * (1.0 - alpha * 0.5 * (y_in + y_out)) * (h_in - hs)
+
+        # fixed point h = baumann(h), accelerated by the secant on baumann(h) − h (a contraction: converges either way)
+        prev, f_prev = math.nan, math.nan
         for _ in range(30):
-            y_out = _moisture(w.ph(p_out, h_out))[0] if alpha > 0 else 0.0
-            new = h_in - eta_dry * (1.0 - alpha * 0.5 * (y_in + y_out)) * (h_in - hs)
+            new = baumann(h_out)
             if abs(new - h_out) < 1e-6:
                 return new
-            h_out = new
+            f = new - h_out
+            nxt = new
+            if math.isfinite(f_prev) and f != f_prev:
+                nxt = h_out - f * (h_out - prev) / (f - f_prev)
+            prev, f_prev, h_out = h_out, f, nxt
         return h_out
 
     def _walk(self, ctx: Context, path: _SectionPath, factor: float) -> float:
@@ -347,6 +360,16 @@ class ExpectedModel:
         for g in path.groups:
             h = self._expand(ctx.water, g, ctx.p(g.port("inlet")), h, ctx.p(g.port("outlet")), factor)
         return h
+
+    def _walk_design(self, ctx: Context, path: _SectionPath) -> float:
+        """:meth:`_walk` at the design factor, kept for the latest state (two callers per window)."""
+        memo = self._walk_memo
+        if memo.get("ctx") is not ctx:
+            memo.clear()
+            memo["ctx"] = ctx
+        if path.id not in memo:
+            memo[path.id] = self._walk(ctx, path, 1.0)
+        return float(memo[path.id])
 
     def section_factor(self, ctx: Context, path: _SectionPath) -> float:
         """Factor on the section's group efficiencies that reproduces the actual outlet enthalpy [-]."""
@@ -358,7 +381,7 @@ class ExpectedModel:
         # secant from the design factor (the drop is nearly proportional to the factor);
         # bracketing search over 0.5-1.15 when it does not settle inside that range
         h_in = ctx.h(path.inlet)
-        x0, g0 = 1.0, miss(1.0)
+        x0, g0 = 1.0, self._walk_design(ctx, path) - target
         x1 = (h_in - target) / (h_in - target - g0) if h_in - target - g0 != 0.0 else math.nan
         for _ in range(8):
             if not (math.isfinite(x1) and 0.5 <= x1 <= 1.15):
@@ -373,7 +396,7 @@ class ExpectedModel:
         """Section efficiency with design group efficiencies at the actual boundary conditions [-]."""
         si = ctx.ph(path.inlet)
         p_out = ctx.p(path.outlet)
-        h_out = self._walk(ctx, path, 1.0)
+        h_out = self._walk_design(ctx, path)
         return (si.h - h_out) / (si.h - ctx.water.h_ps(p_out, si.s))
 
     # ------------------------------------------------------------------ pressure
