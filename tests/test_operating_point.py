@@ -136,3 +136,21 @@ def test_linear_response_matches_a_finite_difference_of_solves(model: ExpectedMo
         run: dict[str, Any] = {"constants": {g.id: {"efficiency_factor": f} for g in model.sections["LP"].groups}}
         hr.append(model.run_heat_rate(node, run))
     assert s == pytest.approx((hr[1] - hr[0]) / (2 * h), rel=1e-3)
+
+
+def test_work_spread_over_windows_gives_the_same_numbers_as_all_at_once() -> None:
+    """Sensitivities and probe curvatures advanced one unit per call == computed in one go (same bits)."""
+    fs, op, design = demo_design()
+    spread = ExpectedModel.from_config(demo_config(), fs, op, design)
+    at_once = ExpectedModel.from_config(demo_config(), fs, op, design)
+    _, a = spread.expected_at(0.9, CW_DESIGN)
+    _, b = at_once.expected_at(0.9, CW_DESIGN)
+    calls = 0
+    while a.sensitivities is None or len(a.extra.get("curvature", {})) < 9:
+        cause_sensitivity.prefetch(spread, a, budget_seconds=0.0)  # one unit of work per call
+        calls += 1
+    assert calls > 20  # it was spread
+    sb = at_once.sensitivities(b)
+    assert a.sensitivities == sb and len(sb) >= 20
+    for driver in a.extra["curvature"]:
+        assert cause_sensitivity.curvature(at_once, b, driver) == a.extra["curvature"][driver]

@@ -15,7 +15,10 @@ and one residual evaluation per driver). A window's cause is then
 - an exact model run otherwise (beyond the range of the quadratic, several drivers
   at once such as the feedwater heaters, or a cause without a registered driver).
 
-Everything stored is a function of the node alone (solved from the design point, probe
+The work is spread: windows that are not split (not steady, e.g. while the load
+settles after a change) advance the node's pending sensitivity and probe work for
+:data:`PREFETCH_SECONDS` each (:func:`prefetch`); a split window finishes what is
+left. Everything stored is a function of the node alone (solved from the design point, probe
 at a fixed step), so the split of a window does not depend on which windows came
 before it; ``tests/test_cause_sensitivity.py`` compares the estimates with exact runs.
 """
@@ -23,7 +26,8 @@ before it; ``tests/test_cause_sensitivity.py`` compares the estimates with exact
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+import time
+from collections.abc import Iterator, Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -31,7 +35,7 @@ import numpy as np
 from twin.model.flowsheet import Spec
 from twin.model.solve import SolveError, merge_constants, off_design_specs
 from twin.performance.kpi import evaluate_kpis
-from twin.performance.operating_point import Node, linear_response
+from twin.performance.operating_point import Node, iter_linear_response, linear_response
 from twin.properties import PropertyError
 
 if TYPE_CHECKING:
@@ -44,6 +48,9 @@ LINEAR_LIMITS = {"ttd": 5.0 / 3600.0, "dca": 5.0 / 3600.0}
 
 #: Driver kind → the probe step of its curvature run (and the range of the quadratic estimate).
 PROBE_STEPS = {"T": -10.0, "factor": -0.03, "approach": 0.2, "rho": 0.05, "sigma": -0.03, "loss": 0.01}
+
+#: Wall time a window that is not split spends on a node's pending sensitivity and probe work [s].
+PREFETCH_SECONDS = 0.008
 
 _FAILURES = (SolveError, ValueError, PropertyError, ArithmeticError, RuntimeError)
 
@@ -66,12 +73,47 @@ def sensitivities(model: ExpectedModel, node: Node) -> dict[str, float]:
     ``loss:<sink>`` per unit of a cycle-loss flow / design main-steam flow.
     A driver whose sensitivity cannot be computed is absent (its cause is an exact run).
     """
-    if node.sensitivities is None:
-        try:
-            node.sensitivities = _linear_sensitivities(model, node)
-        except _FAILURES:
-            node.sensitivities = {}
+    while node.sensitivities is None:
+        _advance(model, node)
     return node.sensitivities
+
+
+def _advance(model: ExpectedModel, node: Node) -> None:
+    """One unit of the node's sensitivity work (a factorisation or one residual evaluation)."""
+    work = node.extra.get("work")
+    if work is None:
+        partial: dict[str, float] = {}
+        work = node.extra["work"] = _sensitivity_work(model, node, partial)
+        node.extra["partial"] = partial
+    try:
+        next(work)
+    except StopIteration:
+        node.sensitivities = node.extra.pop("partial")
+        node.extra.pop("work", None)
+    except _FAILURES:
+        node.sensitivities = {}  # every cause is then an exact run
+        node.extra.pop("work", None)
+
+
+def prefetch(model: ExpectedModel, node: Node, budget_seconds: float = PREFETCH_SECONDS) -> None:
+    """Do the node's pending sensitivity and probe work for about ``budget_seconds`` of wall time.
+
+    Called in windows that are not split (not steady), so that the first split window
+    at a new operating point does not pay for all of it. What is computed is the same
+    whichever window computes it (a function of the node alone).
+    """
+    t0 = time.perf_counter()
+    while True:  # at least one unit of work per call
+        if node.sensitivities is None:
+            _advance(model, node)
+        else:
+            store = node.extra.get("curvature", {})
+            pending = [k for k in node.sensitivities if k.partition(":")[0] in PROBE_STEPS and k not in store]
+            if not pending:
+                return
+            curvature(model, node, pending[0])
+        if time.perf_counter() - t0 >= budget_seconds:
+            return
 
 
 def _base_system(model: ExpectedModel, node: Node) -> tuple[list[Spec], frozenset[str], dict]:
@@ -92,7 +134,8 @@ def _approach_ua(model: ExpectedModel, condenser_id: str, factor: float) -> floa
     return -cap * math.log1p(-1.0 / x)
 
 
-def _linear_sensitivities(model: ExpectedModel, node: Node) -> dict[str, float]:
+def _sensitivity_work(model: ExpectedModel, node: Node, out: dict[str, float]) -> Iterator[None]:
+    """Fills ``out`` driver by driver, yielding after each unit of work."""
     hb = node.hb
     assert hb is not None
     specs, skip, consts = _base_system(model, node)
@@ -125,7 +168,9 @@ def _linear_sensitivities(model: ExpectedModel, node: Node) -> dict[str, float]:
             v = kd[f"heater_{k}.{h}"].func(ctx)
             if math.isfinite(v):
                 per[f"{k}:{h}"] = (specs, moved(h, k, float(v) + dt), dt)
-    out = linear_response(fs, hb.z, (specs, skip, consts), per, hr)
+    for name, v in iter_linear_response(fs, hb.z, (specs, skip, consts), per, hr):
+        out[name] = v
+        yield
     for e in model.losses:  # the sink's flow as a spec in place of its normal-loss relation
         a = e.port("inlet")
         m = ctx.m(a)
@@ -136,6 +181,7 @@ def _linear_sensitivities(model: ExpectedModel, node: Node) -> dict[str, float]:
         step = df * model.design_flow
         out.update(linear_response(fs, hb.z, (flow(m), skip | {e.relation("flow")}, consts),
                                    {f"loss:{e.id}": (flow(m + step), consts, df)}, hr))
+        yield
     if model.valve is not None and model.first_hp is not None:
         vin, vout = model.valve.port("inlet"), model.valve.port("outlet")
         p_in, p_out = ctx.p(vin), ctx.p(vout)
@@ -146,8 +192,9 @@ def _linear_sensitivities(model: ExpectedModel, node: Node) -> dict[str, float]:
         skip_p = skip | {model.valve.relation("open"), model.first_hp.relation("stodola")}
         per_p = {"rho": (pressures(p_in * (1 + df), p_out * (1 + df)), consts, df),
                  "sigma": (pressures(p_in, p_out * (1 + df)), consts, df)}
-        out.update(linear_response(fs, hb.z, (pressures(p_in, p_out), skip_p, consts), per_p, hr))
-    return out
+        for name, v in iter_linear_response(fs, hb.z, (pressures(p_in, p_out), skip_p, consts), per_p, hr):
+            out[name] = v
+            yield
 
 
 def probe_run(model: ExpectedModel, node: Node, driver: str, delta: float) -> dict[str, Any]:

@@ -600,6 +600,7 @@ class ExpectedModel:
         hr_exp = exp["turbine_heat_rate"]
         total = hr_act - hr_exp
         if not causes:
+            cause_sensitivity.prefetch(self, node)  # spread the node's one-off work over unsplit windows
             return WindowDeviation(total, {}, "not split: window not steady", exp)
         runs, failed = self._cause_runs(ctx, ref, load_c, cw_inlet, p_throttle)
         hr_ref = node.values["turbine_heat_rate"]

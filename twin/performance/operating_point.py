@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import math
 from collections import OrderedDict
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -154,6 +154,14 @@ class OperatingPoints:
 def linear_response(fs: Flowsheet, z: np.ndarray, base: tuple[Sequence[Spec], frozenset[str], Mapping[str, Any]],
                     perturbed: Mapping[str, tuple[Sequence[Spec], Mapping[str, Any], float]],
                     output: Callable[[np.ndarray], float]) -> dict[str, float]:
+    """All of :func:`iter_linear_response` at once, as a dict."""
+    return dict(iter_linear_response(fs, z, base, perturbed, output))
+
+
+def iter_linear_response(fs: Flowsheet, z: np.ndarray,
+                         base: tuple[Sequence[Spec], frozenset[str], Mapping[str, Any]],
+                         perturbed: Mapping[str, tuple[Sequence[Spec], Mapping[str, Any], float]],
+                         output: Callable[[np.ndarray], float]) -> Iterator[tuple[str, float]]:
     """First-order change of ``output`` per unit change of each parameter at a solved state ``z``.
 
     Parameters
@@ -169,12 +177,13 @@ def linear_response(fs: Flowsheet, z: np.ndarray, base: tuple[Sequence[Spec], fr
     output : callable
         ``output(z) -> float`` (e.g. the heat rate at a state).
 
-    Returns
-    -------
-    dict
-        Parameter name → d output / d parameter (implicit-function theorem, one
+    Yields
+    ------
+    (str, float)
+        Parameter name, d output / d parameter (implicit-function theorem, one
         factorisation of the base Jacobian; a parameter whose rows differ in
-        structure from the base is left out).
+        structure from the base is left out), one residual evaluation each, so a
+        caller can spread the work over several windows.
 
     References
     ----------
@@ -189,11 +198,9 @@ def linear_response(fs: Flowsheet, z: np.ndarray, base: tuple[Sequence[Spec], fr
         raise ValueError(f"the system is not square: {r0.size} equations for {fs.n_vars} variables")
     lu = spla.splu(rows.jacobian(fs.n_vars).multiply(1.0 / scales[:, None]).tocsc())
     y0 = output(z)
-    out: dict[str, float] = {}
     for name, (p_specs, p_consts, step) in perturbed.items():
         p_rows = fs.evaluate(z, skip=skip, specs=p_specs, constants=dict(p_consts))
         if p_rows.names != rows.names:
             continue
         dz = lu.solve(-(p_rows.residuals() / scales - r0))
-        out[name] = (output(z + dz) - y0) / step
-    return out
+        yield name, (output(z + dz) - y0) / step
