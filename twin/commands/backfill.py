@@ -5,11 +5,13 @@ from __future__ import annotations
 import argparse
 import logging
 import math
+import os
 import shutil
 import subprocess
 import sys
 import time
 from pathlib import Path
+from typing import Any
 
 from twin.commands.simulate import parse_time
 
@@ -39,6 +41,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--timezone", default=None, help="IANA zone of local timestamps without an offset")
     parser.add_argument("--good-quality", default=None,
                         help="comma-separated quality values taken as good (default good,192,0xc0,ok; empty is good)")
+    parser.add_argument("--publish", action="store_true",
+                        help="republish the reconciled.csv rows on MQTT (broker from the plant file's [broker]; "
+                             "topics <prefix>/kpi|tag|expected|deviation/<name>, window timestamp in the payload)")
+    parser.add_argument("--publish-prefix", default=None, metavar="TOPIC",
+                        help="topic prefix of --publish (default <republish_prefix>/backfill, i.e. "
+                             "twin/<unit id>/backfill)")
+    parser.add_argument("--publish-in-flight", type=int, default=100, metavar="N",
+                        help="messages published but not yet acknowledged, at most (default 100)")
+    parser.add_argument("--publish-timeout", type=float, default=30.0, metavar="S",
+                        help="longest wait for the broker to connect or acknowledge [s] (default 30)")
     parser.add_argument("--log-level", default="INFO", choices=("DEBUG", "INFO", "WARNING", "ERROR"))
 
 
@@ -61,6 +73,12 @@ def run(args: argparse.Namespace) -> int:
     if args.tsdb and "openmetrics" not in formats:
         _say("twin backfill: --tsdb needs the openmetrics output; expected --format ...,openmetrics")
         return 2
+    if args.publish and "csv" not in formats:
+        _say("twin backfill: --publish sends the rows of reconciled.csv; expected --format csv,...")
+        return 2
+    if args.publish and (args.publish_in_flight < 1 or not args.publish_timeout > 0):
+        _say("twin backfill: --publish-in-flight and --publish-timeout must be positive")
+        return 2
     if args.workers < 0 or not args.chunk > 0 or args.warmup < 0:
         _say("twin backfill: --workers, --chunk and --warmup must be positive (warm-up may be 0)")
         return 2
@@ -77,6 +95,17 @@ def run(args: argparse.Namespace) -> int:
             return 1
         _say(f"twin backfill: {exc}")
         return 2
+    publish_settings = None
+    if args.publish:
+        from twin.commands._publish import settings_for_backfill
+        from twin.daemon import mqtt_settings_from_config
+        from twin.mqtt import MqttError
+
+        try:
+            publish_settings = settings_for_backfill(mqtt_settings_from_config(config, os.environ))
+        except (MqttError, ValueError, OSError) as exc:
+            _say(f"twin backfill: --publish: {exc}")
+            return 2
     opts = BackfillOptions(
         t_from=t_from, t_to=t_to, formats=formats, workers=args.workers, scheduler=args.scheduler,
         chunk_seconds=args.chunk * 3600.0, warmup_seconds=args.warmup * 60.0, cycle=args.cycle, window=args.window,
@@ -98,7 +127,34 @@ def run(args: argparse.Namespace) -> int:
     _say(f"outputs in {out}: " + ", ".join(n for n in ("reconciled.csv", "reconciled.parquet", "events.csv", "openmetrics/")
                                            if (out / n.rstrip('/')).exists()))
     if args.tsdb:
-        return _tsdb(out / "openmetrics", Path(args.tsdb), summary.t_first)
+        rc = _tsdb(out / "openmetrics", Path(args.tsdb), summary.t_first)
+        if rc:
+            return rc
+    if publish_settings is not None:
+        prefix = args.publish_prefix or f"{config.broker.republish_prefix or f'twin/{config.unit.id}'}/backfill"
+        return _publish(publish_settings, out / "reconciled.csv", prefix.rstrip("/"), args)
+    return 0
+
+
+def _publish(settings: Any, path: Path, prefix: str, args: argparse.Namespace) -> int:
+    from twin.commands._publish import PublishCounts, PublishError, connect, publish_file
+
+    counts = PublishCounts()
+    try:
+        client = connect(settings, args.publish_timeout)
+    except PublishError as exc:
+        _say(f"twin backfill: --publish: {exc}")
+        return 1
+    try:
+        publish_file(client, path, prefix, qos=max(1, settings.qos), max_in_flight=args.publish_in_flight,
+                     timeout=args.publish_timeout, counts=counts)
+    except PublishError as exc:
+        _say(f"twin backfill: --publish: {exc}")
+        _say(counts.line(prefix))
+        return 1
+    finally:
+        client.stop()
+    _say(counts.line(prefix))
     return 0
 
 
