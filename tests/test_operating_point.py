@@ -99,6 +99,7 @@ def test_estimated_causes_match_exact_model_runs(model: ExpectedModel, load: flo
     r = rec.reconcile({t: v for t, v in truth.items() if t in rec.system.sensor_by_tag})
     assert r.converged, r.message
     cw = float(r.z[next(iter(rec.system.cooling_water_columns.values()))[0]])
+    model.last_load = math.nan  # a window that holds its operating point (no ramp before it)
     d = window_deviation(model, r, cw)
     assert d.status == "complete" and sum(d.by_cause.values()) == pytest.approx(d.total, abs=1e-12)
     ctx = fs.context(r.z, design.constants)
@@ -121,6 +122,7 @@ def test_a_cause_beyond_the_quadratic_range_is_an_exact_run(model: ExpectedModel
     truth = sensor_truth(cfg, solve_off_design(fs, op, design, 1.0, "sliding", constants=_efficiency("LP", 0.04)))
     r = rec.reconcile({t: v for t, v in truth.items() if t in rec.system.sensor_by_tag})
     cw = float(r.z[next(iter(rec.system.cooling_water_columns.values()))[0]])
+    model.last_load = math.nan
     d = window_deviation(model, r, cw)
     assert d.model_runs >= 1 and d.by_cause["lp_efficiency"] / d.total >= 0.95
     assert abs(d.by_cause["unaccounted"]) <= 0.05 * d.total
@@ -154,3 +156,23 @@ def test_work_spread_over_windows_gives_the_same_numbers_as_all_at_once() -> Non
     assert a.sensitivities == sb and len(sb) >= 20
     for driver in a.extra["curvature"]:
         assert cause_sensitivity.curvature(at_once, b, driver) == a.extra["curvature"][driver]
+
+
+def test_a_ramp_window_is_solved_directly_without_new_grid_rows() -> None:
+    """Load moving by more than a grid step since the last window: one solve at the point, no grid nodes."""
+    cfg = demo_config()
+    fs, op, design = demo_design()
+    em = ExpectedModel.from_config(cfg, fs, op, design)
+    rec = PlantReconciler(cfg, flowsheet=fs, design=design)
+    results = []
+    for load in (0.9, 0.85):
+        truth = sensor_truth(cfg, solve_off_design(fs, op, design, load, "sliding"))
+        r = rec.reconcile({t: v for t, v in truth.items() if t in rec.system.sensor_by_tag})
+        solves = em.grid.solves
+        d = window_deviation(em, r, CW_DESIGN, causes=False)
+        results.append((em.grid.solves - solves, d))
+    assert results[0][0] == 9  # the first window builds its cell
+    assert results[1][0] == 0  # the ramp window adds none
+    _, fresh = em.expected(results[1][1].expected["load_fraction"], CW_DESIGN)
+    assert results[1][1].expected["turbine_heat_rate"] == pytest.approx(fresh["turbine_heat_rate"], rel=1e-12)
+    assert abs(results[1][1].total) * 3600.0 < 0.05  # the truth is the model in its own mode

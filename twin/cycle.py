@@ -329,6 +329,9 @@ class UnitCycle:
             "efficiency_alarms": {k: a.snapshot() for k, a in self.efficiency_alarms.items()},
             "suspects": self.suspects.snapshot(),
             "drift": self.drift.snapshot(),
+            # the expected model's previous load (a ramp is solved directly); its node cache is not state
+            "expected_last_load": _finite_or_none(self.expected_model.last_load),
+            "expected_last_cw_inlet": _finite_or_none(self.expected_model.last_cw_inlet),
         }
 
     def restore(self, snap: Mapping[str, Any]) -> None:
@@ -349,6 +352,14 @@ class UnitCycle:
         self.suspects.restore(snap["suspects"])
         if snap.get("drift") is not None:
             self.drift.restore(snap["drift"])
+        last = snap.get("expected_last_load")
+        self.expected_model.last_load = math.nan if last is None else float(last)
+        last = snap.get("expected_last_cw_inlet")
+        self.expected_model.last_cw_inlet = math.nan if last is None else float(last)
+
+
+def _finite_or_none(v: float) -> float | None:
+    return float(v) if math.isfinite(v) else None
 
 
 def _value(kpis: Mapping[str, Estimate], name: str) -> float:

@@ -78,7 +78,7 @@ from twin.performance.kpi import (
     interpolate_boiler_efficiency,
     kpi_definitions,
 )
-from twin.performance.operating_point import Node, OperatingPoints
+from twin.performance.operating_point import CW_STEP, LOAD_STEP, Node, OperatingPoints
 from twin.properties import PropertyError
 
 CAUSES = (
@@ -226,6 +226,10 @@ class ExpectedModel:
         cw0 = float(self.condensers[0].params["cooling_water_inlet_temperature"]) if self.condensers else None
         #: expected states on the operating-point grid (rebuilt deterministically: not state)
         self._walk_memo: dict[str, Any] = {}
+        self._last_node: Node | None = None  # the previous window's nearest node (when to prefetch)
+        #: the previous window's load [-] (NaN: none); part of ``UnitCycle.snapshot``
+        self.last_load = math.nan
+        self.last_cw_inlet = math.nan  # [K]
         self.grid = OperatingPoints(lambda load, cw: self._solve(load, cw, None), self._node_values, cw0)
 
     @classmethod
@@ -283,10 +287,12 @@ class ExpectedModel:
         out[_THROTTLE] = ctx.p(self.valve.port("inlet")) if self.valve is not None else math.nan
         return out
 
-    def expected_at(self, load: float, cw_inlet: float | None = None) -> tuple[dict[str, float], Node]:
+    def expected_at(self, load: float, cw_inlet: float | None = None, *,
+                    direct: bool = False) -> tuple[dict[str, float], Node]:
         """Expected KPIs at ``load`` [-] and cooling-water inlet [K] from the grid, and the nearest node.
 
-        Falls back to a direct solve at the point when a grid node cannot be solved.
+        ``direct``: solve at the point itself (from the design point) instead; also the
+        fallback when a grid node cannot be solved.
 
         Raises
         ------
@@ -294,6 +300,8 @@ class ExpectedModel:
             If the model cannot be solved there either.
         """
         try:
+            if direct:
+                raise ValueError("direct solve")
             values = self.grid.interpolate(load, cw_inlet)
             node = self.grid.nearest(load, cw_inlet)
             if node.hb is None:
@@ -585,8 +593,13 @@ class ExpectedModel:
         if not (math.isfinite(load) and math.isfinite(hr_act)):
             return WindowDeviation(math.nan, {}, "unavailable: load or heat rate not available")
         load_c = min(max(load, 0.2), 1.2)
+        # moving faster than a grid step per window (a ramp, a step of the cooling water): one direct
+        # solve here, not new grid rows used once (False when there is no previous window: NaN)
+        cw_now = cw_inlet if cw_inlet is not None and math.isfinite(cw_inlet) else math.nan
+        moving = abs(load_c - self.last_load) > LOAD_STEP or abs(cw_now - self.last_cw_inlet) > CW_STEP
+        self.last_load, self.last_cw_inlet = load_c, cw_now
         try:
-            exp, node = self.expected_at(load_c, cw_inlet)
+            exp, node = self.expected_at(load_c, cw_inlet, direct=moving)
         except (SolveError, ValueError, PropertyError) as exc:
             return WindowDeviation(math.nan, {}, f"unavailable: expected model failed ({type(exc).__name__})")
         ref = node.hb
@@ -599,8 +612,10 @@ class ExpectedModel:
                 exp[f"section_efficiency.{sec}"] = math.nan
         hr_exp = exp["turbine_heat_rate"]
         total = hr_act - hr_exp
+        last, self._last_node = self._last_node, node
         if not causes:
-            cause_sensitivity.prefetch(self, node)  # spread the node's one-off work over unsplit windows
+            if node is last:  # the operating point holds: spread the node's one-off work over unsplit windows
+                cause_sensitivity.prefetch(self, node)
             return WindowDeviation(total, {}, "not split: window not steady", exp)
         runs, failed = self._cause_runs(ctx, ref, load_c, cw_inlet, p_throttle)
         hr_ref = node.values["turbine_heat_rate"]

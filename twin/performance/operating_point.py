@@ -15,6 +15,10 @@ Error bound: with quadratic interpolation the error is of the order
 below 0.05 kJ/kWh on the turbine heat rate (``tests/test_operating_point.py``
 compares with fresh forward solves at random points; the fresh solve is the truth).
 
+While the load or the cooling water moves by more than a grid step from one window
+to the next (a ramp, a step), the expected model solves that window's point directly instead of adding
+grid rows it would use once (:meth:`twin.performance.expected.ExpectedModel.deviation`).
+
 Every node is solved from the design point, never from the previous window's
 solution, so a cached value depends only on the node, not on the order in which the
 windows came: the cache is not state (it is left out of ``UnitCycle.snapshot``) and
