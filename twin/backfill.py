@@ -430,7 +430,7 @@ class BackfillOptions:
     timestamps: str = "auto"
     timezone: str | None = None
     good_quality: tuple[str, ...] = ()
-    block_size: int = 16 << 20
+    block_size: int = 4 << 20  # CSV bytes per read block (twin.history.readers.DEFAULT_BLOCK_SIZE)
 
 
 @dataclass

@@ -44,6 +44,9 @@ from twin.history.timestamps import TimeReport, TimestampError, TimestampParser,
 DEFAULT_GOOD_QUALITY = ("good", "192", "0xc0", "ok")
 TIME_COLUMNS = ("timestamp", "time", "ts", "datetime", "date_time")
 MAX_ERROR_LINES = 50  # error lines kept per file (all are counted)
+# CSV bytes per block: 4 MiB reads faster than 16 MiB (the block's columns stay in cache,
+# `twin bench backfill --skip-backfill`) and keeps the per-block cost under 1 % of it
+DEFAULT_BLOCK_SIZE = 4 << 20
 
 
 class HistoryError(ValueError):
@@ -134,7 +137,7 @@ class HistoryReader:
     """
 
     def __init__(self, config: Any, *, timestamps: str = "auto", timezone: str | None = None,
-                 good_quality: Sequence[str] = DEFAULT_GOOD_QUALITY, block_size: int = 16 << 20,
+                 good_quality: Sequence[str] = DEFAULT_GOOD_QUALITY, block_size: int = DEFAULT_BLOCK_SIZE,
                  batch_rows: int = 1 << 20, fast: bool = True) -> None:
         self.config = config
         self.timestamps = timestamps
