@@ -4,7 +4,8 @@ Three parts, one JSON document:
 
 * ``reading``: rows per second of :class:`twin.history.HistoryReader` on a
   synthetic long-layout CSV (``--read-rows`` rows over the plant's tags, epoch
-  seconds and RFC 3339 timestamps, the latter also gzip), one process, CPU
+  seconds and RFC 3339 timestamps, the latter also gzip, and the same samples
+  in the wide layout), one process, CPU
   seconds beside wall time, the median of ``--read-repeats`` reads; beside it
   the line-by-line rate (``fast=False``, the path of a block with a bad row);
 * ``backfill``: the simulated demo scenario (``--hours`` at ``--sample-interval``)
@@ -80,9 +81,17 @@ def _reading(config: Any, rows: int, d: Path, repeats: int = 3) -> dict[str, Any
     v = np.tile(lo + 0.5 * (hi - lo), n_t) * (1 + 1e-3 * rng.standard_normal(n_t * len(tags)))
     out: dict[str, Any] = {"rows": int(n_t * len(tags)), "repeats": repeats,
                            "goal_rows_per_s_cpu": GOAL_ROWS_PER_S, "how": READING_HOW}
-    for kind in ("epoch_s", "rfc3339", "rfc3339.gz"):
+    kinds = ("epoch_s", "rfc3339", "rfc3339.gz", "wide_rfc3339")
+    for kind in kinds:
         p = d / f"read-{kind}.csv{'.gz' if kind.endswith('.gz') else ''}"
-        if kind.endswith(".gz"):
+        if kind == "wide_rfc3339":  # the same samples, one line per time, one column per tag
+            base = np.datetime64("2026-01-05T00:00:00", "s")
+            with open(p, "w") as f:
+                f.write("timestamp," + ",".join(tags) + "\n")
+                vals = v.reshape(n_t, len(tags)).tolist()
+                f.writelines(str(base + np.timedelta64(k, "s")) + "Z," + ",".join(map(repr, vals[k])) + "\n"
+                             for k in range(n_t))
+        elif kind.endswith(".gz"):
             with open(d / "read-rfc3339.csv", "rb") as src, gzip.open(p, "wb", compresslevel=6) as dst:
                 shutil.copyfileobj(src, dst, 1 << 20)
         else:
@@ -101,14 +110,17 @@ def _reading(config: Any, rows: int, d: Path, repeats: int = 3) -> dict[str, Any
         cpu = float(np.median([f[1] for f in fast]))
         cpu_slow = float(np.median([f[1] for f in slow]))
         rep = fast[0][2]
-        out[kind] = {"samples": rep.samples, "wall_s": round(wall, 3), "cpu_s": round(cpu, 3),
-                     "rows_per_s_wall": round(out["rows"] / wall), "rows_per_s_cpu": round(out["rows"] / cpu),
-                     "first_read_rows_per_s_cpu": round(out["rows"] / fast[0][1]),
-                     "line_by_line_rows_per_s_cpu": round(out["rows"] / cpu_slow),
+        n = rep.rows  # data lines (a wide line holds one sample per tag)
+        out[kind] = {"rows": n, "samples": rep.samples, "wall_s": round(wall, 3), "cpu_s": round(cpu, 3),
+                     "rows_per_s_wall": round(n / wall), "rows_per_s_cpu": round(n / cpu),
+                     "samples_per_s_cpu": round(rep.samples / cpu),
+                     "first_read_rows_per_s_cpu": round(n / fast[0][1]),
+                     "line_by_line_rows_per_s_cpu": round(n / cpu_slow),
                      "fast_blocks": rep.fast_blocks, "slow_blocks": rep.slow_blocks,
-                     "goal_ratio": round(out["rows"] / cpu / GOAL_ROWS_PER_S, 3),
                      "mb_per_s_cpu": round(size / 1e6 / cpu, 1), "file_mb": round(size / 1e6, 1)}
-    for kind in ("epoch_s", "rfc3339", "rfc3339.gz"):
+        if not kind.startswith("wide"):
+            out[kind]["goal_ratio"] = round(n / cpu / GOAL_ROWS_PER_S, 3)
+    for kind in kinds:
         (d / f"read-{kind}.csv{'.gz' if kind.endswith('.gz') else ''}").unlink()
     return out
 
