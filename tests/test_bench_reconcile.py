@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+import pytest
+
 from twin.bench import reconcile as bench
 
 
@@ -33,3 +35,22 @@ def test_bench_reconcile_quick_returns_all_keys():
         for cov in ("covariance_full", "covariance_none"):
             row = out["synthetic"][kind][cov]
             assert set(row["median_ms"]) == {"100", "200"} and "loglog_slope" in row
+
+
+def test_bench_reconcile_cycle_only_over_load_steps():
+    parser = argparse.ArgumentParser()
+    bench.add_arguments(parser)
+    out = bench.run(parser.parse_args(["--only-cycle", "--cycles", "6", "--cycle-loads", "1.0,0.9"]))
+    assert set(out) == {"openblas_num_threads", "cycle"}
+    cycle = out["cycle"]
+    assert cycle["loads"] == [1.0, 0.9] and cycle["all"]["n"] == 6
+    assert {"deviation_part", "first_split_at_new_load_ms", "exact_cause_runs"} <= set(cycle)
+    assert cycle["expected_node_solves"] >= 9  # at least the first grid cell
+
+
+def test_bench_reconcile_rejects_bad_cycle_loads(capsys):
+    parser = argparse.ArgumentParser()
+    bench.add_arguments(parser)
+    with pytest.raises(SystemExit) as exc:
+        parser.parse_args(["--cycle-loads", "1.0,1.9"])
+    assert exc.value.code == 2 and "expected load fractions within 0.2-1.2" in capsys.readouterr().err
