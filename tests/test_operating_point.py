@@ -19,7 +19,7 @@ from twin.demo.plant import sensor_truth
 from twin.model.solve import solve_off_design
 from twin.model.turbine import TurbineGroup
 from twin.performance import cause_sensitivity
-from twin.performance.expected import ExpectedModel, window_deviation
+from twin.performance.expected import ExpectedModel, PressureControl, window_deviation
 from twin.performance.plant_reconcile import PlantReconciler
 
 CW_DESIGN = 293.15  # [K] the plant file's cooling-water inlet (20 °C)
@@ -176,3 +176,19 @@ def test_a_ramp_window_is_solved_directly_without_new_grid_rows() -> None:
     _, fresh = em.expected(results[1][1].expected["load_fraction"], CW_DESIGN)
     assert results[1][1].expected["turbine_heat_rate"] == pytest.approx(fresh["turbine_heat_rate"], rel=1e-12)
     assert abs(results[1][1].total) * 3600.0 < 0.05  # the truth is the model in its own mode
+
+
+@pytest.mark.parametrize("control", [
+    PressureControl("fixed", 16.2e6),
+    # knots at 0.55 and 0.81; the valves open wide where the schedule falls below the sliding pressure
+    PressureControl("schedule", 16.2e6, ((0.2, 8e6), (0.55, 9e6), (0.81, 13e6), (1.2, 16.2e6))),
+])
+def test_expected_values_across_the_kinks_of_the_pressure_control(control: PressureControl) -> None:
+    """Schedule knots and the valves-wide-open load are kinks: still within 0.1 kJ/kWh of a fresh solve."""
+    fs, op, design = demo_design()
+    base = ExpectedModel.from_config(demo_config(), fs, op, design)
+    em = ExpectedModel(fs, op, design, base.settings, control)
+    for load in (0.45, 0.549, 0.551, 0.56, 0.79, 0.805, 0.815, 0.99, 1.01):
+        got, _ = em.expected_at(load, CW_DESIGN)
+        _, truth = em.expected(load, CW_DESIGN)  # truth: fresh forward solve
+        assert abs(got["turbine_heat_rate"] - truth["turbine_heat_rate"]) * 3600.0 < 0.1, load

@@ -230,7 +230,8 @@ class ExpectedModel:
         #: the previous window's load [-] (NaN: none); part of ``UnitCycle.snapshot``
         self.last_load = math.nan
         self.last_cw_inlet = math.nan  # [K]
-        self.grid = OperatingPoints(lambda load, cw: self._solve(load, cw, None), self._node_values, cw0)
+        knots = [a for a, _ in control.schedule] if control.mode == "schedule" else []
+        self.grid = OperatingPoints(lambda load, cw: self._solve(load, cw, None), self._node_values, cw0, knots)
 
     @classmethod
     def from_config(cls, config: Any, fs: Flowsheet, op: Operation, design: HeatBalance,

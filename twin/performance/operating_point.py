@@ -15,6 +15,11 @@ Error bound: with quadratic interpolation the error is of the order
 below 0.05 kJ/kWh on the turbine heat rate (``tests/test_operating_point.py``
 compares with fresh forward solves at random points; the fresh solve is the truth).
 
+Kinks of the throttle-pressure control are not interpolated across: a stencil keeps
+to one side of a schedule row's load, and a stencil whose nodes were solved in
+different pressure modes (it straddles the load where the control valves open wide)
+is not used, that window's point is solved directly.
+
 While the load or the cooling water moves by more than a grid step from one window
 to the next (a ramp, a step), the expected model solves that window's point directly instead of adding
 grid rows it would use once (:meth:`twin.performance.expected.ExpectedModel.deviation`).
@@ -83,12 +88,18 @@ class OperatingPoints:
         ``evaluate(hb) -> dict``: the values to interpolate (KPIs and the like) at a state.
     cw_design : float or None
         The configured cooling-water inlet temperature [K] (grid origin); None: no cw axis.
+    load_knots : sequence of float
+        Loads [-] where the expected state has a kink (the rows of a throttle-pressure
+        schedule): a load stencil never straddles one, it takes its three nodes on the
+        point's side (one-sided quadratic), so the kink is not smeared over a grid step.
     """
 
     def __init__(self, solve: Callable[[float, float | None], HeatBalance],
-                 evaluate: Callable[[HeatBalance], dict[str, float]], cw_design: float | None) -> None:
+                 evaluate: Callable[[HeatBalance], dict[str, float]], cw_design: float | None,
+                 load_knots: Sequence[float] = ()) -> None:
         self._solve, self._evaluate = solve, evaluate
         self.cw_design = cw_design
+        self._knots = tuple(sorted(k / LOAD_STEP for k in load_knots))
         self._nodes: OrderedDict[tuple[int, int], Node] = OrderedDict()
         self.solves = 0  # node solves so far (bench and tests)
 
@@ -118,6 +129,11 @@ class OperatingPoints:
     def _index(self, load: float, cw: float | None) -> tuple[int, float, int, float]:
         x = load / LOAD_STEP
         i = min(max(round(x), _LOAD_MIN + 1), _LOAD_MAX - 1)
+        for k in self._knots:
+            if i - 1 < k < i + 1:  # the stencil would straddle a kink: keep to the point's side of it
+                i = math.ceil(k) + 1 if x >= k else math.floor(k) - 1
+                i = min(max(i, _LOAD_MIN + 1), _LOAD_MAX - 1)
+                break
         if self.cw_design is None or cw is None or not math.isfinite(cw):
             return i, x - i, 0, 0.0
         y = (cw - self.cw_design) / CW_STEP
@@ -137,18 +153,24 @@ class OperatingPoints:
         Raises
         ------
         ValueError
-            If a node of the stencil could not be solved (the message names it).
+            If a node of the stencil could not be solved (the message names it), or
+            the stencil straddles the load where the control valves open wide (its
+            nodes solved in different pressure modes: a kink the caller solves directly).
         """
         i, t, j, u = self._index(load, cw)
         wi = _weights(t)
         wj = _weights(u) if (self.cw_design is not None and cw is not None and math.isfinite(cw)) else None
         out: dict[str, float] = {}
         cols = ((j - 1, wj[0]), (j, wj[1]), (j + 1, wj[2])) if wj is not None else ((j, 1.0),)
+        modes = set()
         for di, a in zip((-1, 0, 1), wi, strict=True):
             for jj, b in cols:
                 n = self.node(i + di, jj)
                 if n.hb is None:
                     raise ValueError(f"expected model node load {n.load:g}, cooling water {n.cw_inlet}: {n.error}")
+                modes.add(n.hb.pressure_mode)
+                if len(modes) > 1:
+                    raise ValueError(f"expected model stencil at load {load:g} straddles the valves-wide-open load")
                 w = a * b
                 for k, v in n.values.items():
                     out[k] = out.get(k, 0.0) + w * v
