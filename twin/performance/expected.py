@@ -70,7 +70,7 @@ from twin.model.solve import (
     SolveError,
     solve_off_design,
 )
-from twin.model.turbine import TurbineGroup, _moisture
+from twin.model.turbine import TurbineGroup
 from twin.performance import cause_sensitivity
 from twin.performance.kpi import (
     CyclePerformanceSettings,
@@ -79,6 +79,12 @@ from twin.performance.kpi import (
     kpi_definitions,
 )
 from twin.performance.operating_point import CW_STEP, LOAD_STEP, Node, OperatingPoints
+from twin.performance.section_path import (
+    SectionPath,
+    expected_section_efficiency,
+    section_factor,
+    walk,
+)
 from twin.properties import PropertyError
 
 CAUSES = (
@@ -179,14 +185,6 @@ class WindowDeviation:
     model_runs: int = 0
 
 
-@dataclass(frozen=True)
-class _SectionPath:
-    id: str
-    inlet: str
-    outlet: str
-    groups: tuple[TurbineGroup, ...]
-
-
 class ExpectedModel:
     """Forward model of the unit used for expected values and deviation accounting.
 
@@ -217,11 +215,11 @@ class ExpectedModel:
         self.valve = valve if isinstance(valve, ThrottleValve) else None
         groups = [e for e in fs.of_kind(TurbineGroup) if isinstance(e, TurbineGroup)]
         self.first_hp = next((g for g in groups if self.valve and g.port("inlet") == self.valve.port("outlet")), None)
-        self.sections: dict[str, _SectionPath] = {}
+        self.sections: dict[str, SectionPath] = {}
         for s in settings.sections:
             members = tuple(g for g in groups if str(g.params.get("section")) == s.id)
             if members:
-                self.sections[s.id] = _SectionPath(s.id, s.inlet, s.outlet, members)
+                self.sections[s.id] = SectionPath(s.id, s.inlet, s.outlet, members)
         self.design_flow = float(fs.stream_configs[op.load_stream].design["mass_flow"])  # [kg/s]
         cw0 = float(self.condensers[0].params["cooling_water_inlet_temperature"]) if self.condensers else None
         #: expected states on the operating-point grid (rebuilt deterministically: not state)
@@ -335,78 +333,23 @@ class ExpectedModel:
         return self._heat_rate(hb)
 
     # ------------------------------------------------------------------ section inversion
-    def _expand(self, w: Any, g: TurbineGroup, p_in: float, h_in: float, p_out: float, factor: float) -> float:
-        """Outlet enthalpy [J/kg] of stage group ``g`` with its dry efficiency × ``factor`` [-] (Baumann)."""
-        si = w.ph(p_in, h_in)
-        hs = w.h_ps(p_out, si.s)
-        eta_dry = g.params["efficiency"] * factor
-        alpha = g.params["baumann_factor"]
-        y_in = _moisture(si)[0]
-        h_out = h_in - eta_dry * (h_in - hs)
-        if alpha <= 0:
-            return h_out
-
-        def baumann(h: float) -> float:  # the Baumann-corrected outlet enthalpy given an outlet guess
-            y_out = _moisture(w.ph(p_out, h))[0]
-            return h_in - eta_dry * (1.0 - alpha * 0.5 * (y_in + y_out)) * (h_in - hs)
-
-        # fixed point h = baumann(h), accelerated by the secant on baumann(h) − h (a contraction: converges either way)
-        prev, f_prev = math.nan, math.nan
-        for _ in range(30):
-            new = baumann(h_out)
-            if abs(new - h_out) < 1e-6:
-                return new
-            f = new - h_out
-            nxt = new
-            if math.isfinite(f_prev) and f != f_prev:
-                nxt = h_out - f * (h_out - prev) / (f - f_prev)
-            prev, f_prev, h_out = h_out, f, nxt
-        return h_out
-
-    def _walk(self, ctx: Context, path: _SectionPath, factor: float) -> float:
-        """Section outlet enthalpy [J/kg] from the actual inlet state and stage pressures."""
-        h = ctx.h(path.inlet)
-        for g in path.groups:
-            h = self._expand(ctx.water, g, ctx.p(g.port("inlet")), h, ctx.p(g.port("outlet")), factor)
-        return h
-
-    def _walk_design(self, ctx: Context, path: _SectionPath) -> float:
-        """:meth:`_walk` at the design factor, kept for the latest state (two callers per window)."""
+    def _walk_design(self, ctx: Context, path: SectionPath) -> float:
+        """:func:`walk` at the design factor, kept for the latest state (two callers per window)."""
         memo = self._walk_memo
         if memo.get("ctx") is not ctx:
             memo.clear()
             memo["ctx"] = ctx
         if path.id not in memo:
-            memo[path.id] = self._walk(ctx, path, 1.0)
+            memo[path.id] = walk(ctx, path, 1.0)
         return float(memo[path.id])
 
-    def section_factor(self, ctx: Context, path: _SectionPath) -> float:
+    def section_factor(self, ctx: Context, path: SectionPath) -> float:
         """Factor on the section's group efficiencies that reproduces the actual outlet enthalpy [-]."""
-        target = ctx.h(path.outlet)
+        return section_factor(ctx, path, self._walk_design(ctx, path))
 
-        def miss(x: float) -> float:
-            return self._walk(ctx, path, x) - target
-
-        # secant from the design factor (the drop is nearly proportional to the factor);
-        # bracketing search over 0.5-1.15 when it does not settle inside that range
-        h_in = ctx.h(path.inlet)
-        x0, g0 = 1.0, self._walk_design(ctx, path) - target
-        x1 = (h_in - target) / (h_in - target - g0) if h_in - target - g0 != 0.0 else math.nan
-        for _ in range(8):
-            if not (math.isfinite(x1) and 0.5 <= x1 <= 1.15):
-                break
-            g1 = miss(x1)
-            if abs(g1) < 1e-5 or abs(x1 - x0) < 1e-10:
-                return float(x1)
-            x0, g0, x1 = x1, g1, (x1 - g1 * (x1 - x0) / (g1 - g0) if g1 != g0 else math.nan)
-        return float(brentq(miss, 0.5, 1.15, xtol=1e-10))
-
-    def expected_section_efficiency(self, ctx: Context, path: _SectionPath) -> float:
+    def expected_section_efficiency(self, ctx: Context, path: SectionPath) -> float:
         """Section efficiency with design group efficiencies at the actual boundary conditions [-]."""
-        si = ctx.ph(path.inlet)
-        p_out = ctx.p(path.outlet)
-        h_out = self._walk_design(ctx, path)
-        return (si.h - h_out) / (si.h - ctx.water.h_ps(p_out, si.s))
+        return expected_section_efficiency(ctx, path, self._walk_design(ctx, path))
 
     # ------------------------------------------------------------------ pressure
     def _stodola_inlet_pressure(self, ctx: Context) -> float:
@@ -503,7 +446,7 @@ class ExpectedModel:
             if path is None:
                 continue
 
-            def eff(path: _SectionPath = path) -> dict[str, Any]:
+            def eff(path: SectionPath = path) -> dict[str, Any]:
                 f = self.section_factor(ctx, path)
                 if abs(f - 1.0) < _FACTOR_TOL:
                     return {"zero": True}
