@@ -192,3 +192,25 @@ def test_expected_values_across_the_kinks_of_the_pressure_control(control: Press
         got, _ = em.expected_at(load, CW_DESIGN)
         _, truth = em.expected(load, CW_DESIGN)  # truth: fresh forward solve
         assert abs(got["turbine_heat_rate"] - truth["turbine_heat_rate"]) * 3600.0 < 0.1, load
+
+
+def test_a_slow_ramp_builds_the_next_grid_row_one_node_per_window() -> None:
+    """Load falling 0.4 % per window: after the first window no window solves more than one node."""
+    cfg = demo_config()
+    fs, op, design = demo_design()
+    em = ExpectedModel.from_config(cfg, fs, op, design)
+    rec = PlantReconciler(cfg, flowsheet=fs, design=design)
+    per_window = []
+    d = None
+    for k in range(12):
+        load = 0.9 - 0.004 * k
+        truth = sensor_truth(cfg, solve_off_design(fs, op, design, load, "sliding"))
+        r = rec.reconcile({t: v for t, v in truth.items() if t in rec.system.sensor_by_tag})
+        solves = em.grid.solves
+        d = window_deviation(em, r, CW_DESIGN, causes=False)
+        per_window.append(em.grid.solves - solves)
+    assert per_window[0] == 9 and max(per_window[1:]) <= 1 and sum(per_window[1:]) >= 3
+    assert d is not None
+    fresh = ExpectedModel.from_config(cfg, fs, op, design)
+    got, _ = fresh.expected_at(d.expected["load_fraction"], CW_DESIGN)
+    assert got["turbine_heat_rate"] == d.expected["turbine_heat_rate"]  # same bits as without the history

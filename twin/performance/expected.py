@@ -110,6 +110,7 @@ _TEMPERATURE_TOL = 1e-4  # [K]
 _FLOW_TOL = 1e-4  # [kg/s]
 
 _THROTTLE = "_throttle_pressure"  # the grid's interpolated throttle pressure [Pa] (not a KPI)
+_HOLD_LOAD = 0.002  # [-] a load change per window below this is the operating point holding (noise)
 _FUEL_BASIS = ("plant_heat_rate", "net_plant_heat_rate")  # KPIs divided by the tabulated boiler efficiency
 
 
@@ -540,8 +541,11 @@ class ExpectedModel:
         # moving faster than a grid step per window (a ramp, a step of the cooling water): one direct
         # solve here, not new grid rows used once (False when there is no previous window: NaN)
         cw_now = cw_inlet if cw_inlet is not None and math.isfinite(cw_inlet) else math.nan
-        moving = abs(load_c - self.last_load) > LOAD_STEP or abs(cw_now - self.last_cw_inlet) > CW_STEP
+        step = load_c - self.last_load
+        moving = abs(step) > LOAD_STEP or abs(cw_now - self.last_cw_inlet) > CW_STEP
+        holding = abs(step) <= _HOLD_LOAD  # the operating point holds (False without a previous window)
         self.last_load, self.last_cw_inlet = load_c, cw_now
+        solves = self.grid.solves
         try:
             exp, node = self.expected_at(load_c, cw_inlet, direct=moving)
         except (SolveError, ValueError, PropertyError) as exc:
@@ -557,8 +561,11 @@ class ExpectedModel:
         hr_exp = exp["turbine_heat_rate"]
         total = hr_act - hr_exp
         last, self._last_node = self._last_node, node
+        if not (moving or holding or math.isnan(step)) and self.grid.solves == solves:
+            # a slow ramp: build the next grid row a node per window (none if this window solved one)
+            self.grid.prefetch(load_c + math.copysign(LOAD_STEP, step), cw_inlet)
         if not causes:
-            if node is last:  # the operating point holds: spread the node's one-off work over unsplit windows
+            if node is last and holding:  # spread the node's one-off split work over unsplit windows
                 cause_sensitivity.prefetch(self, node)
             return WindowDeviation(total, {}, "not split: window not steady", exp)
         runs, failed = self._cause_runs(ctx, ref, load_c, cw_inlet, p_throttle)

@@ -22,7 +22,9 @@ is not used, that window's point is solved directly.
 
 While the load or the cooling water moves by more than a grid step from one window
 to the next (a ramp, a step), the expected model solves that window's point directly instead of adding
-grid rows it would use once (:meth:`twin.performance.expected.ExpectedModel.deviation`).
+grid rows it would use once (:meth:`twin.performance.expected.ExpectedModel.deviation`);
+while it ramps more slowly, each window solves at most one node of the row ahead
+(:meth:`OperatingPoints.prefetch`), so a new row is not built in one window.
 
 Every node is solved from the design point, never from the previous window's
 solution, so a cached value depends only on the node, not on the order in which the
@@ -157,24 +159,41 @@ class OperatingPoints:
             the stencil straddles the load where the control valves open wide (its
             nodes solved in different pressure modes: a kink the caller solves directly).
         """
+        out: dict[str, float] = {}
+        modes = set()
+        for (i, j), w in self._stencil(load, cw):
+            n = self.node(i, j)
+            if n.hb is None:
+                raise ValueError(f"expected model node load {n.load:g}, cooling water {n.cw_inlet}: {n.error}")
+            modes.add(n.hb.pressure_mode)
+            if len(modes) > 1:
+                raise ValueError(f"expected model stencil at load {load:g} straddles the valves-wide-open load")
+            for k, v in n.values.items():
+                out[k] = out.get(k, 0.0) + w * v
+        return out
+
+    def _stencil(self, load: float, cw: float | None) -> list[tuple[tuple[int, int], float]]:
+        """The nodes (load index, cooling-water index) and weights of the point's interpolation."""
         i, t, j, u = self._index(load, cw)
         wi = _weights(t)
         wj = _weights(u) if (self.cw_design is not None and cw is not None and math.isfinite(cw)) else None
-        out: dict[str, float] = {}
         cols = ((j - 1, wj[0]), (j, wj[1]), (j + 1, wj[2])) if wj is not None else ((j, 1.0),)
-        modes = set()
-        for di, a in zip((-1, 0, 1), wi, strict=True):
-            for jj, b in cols:
-                n = self.node(i + di, jj)
-                if n.hb is None:
-                    raise ValueError(f"expected model node load {n.load:g}, cooling water {n.cw_inlet}: {n.error}")
-                modes.add(n.hb.pressure_mode)
-                if len(modes) > 1:
-                    raise ValueError(f"expected model stencil at load {load:g} straddles the valves-wide-open load")
-                w = a * b
-                for k, v in n.values.items():
-                    out[k] = out.get(k, 0.0) + w * v
-        return out
+        return [((i + di, jj), a * b) for di, a in zip((-1, 0, 1), wi, strict=True) for jj, b in cols]
+
+    def prefetch(self, load: float, cw: float | None) -> bool:
+        """Solve one missing node of the stencil at (``load``, ``cw``); False if there was none.
+
+        The expected model calls it for the point one grid step ahead while the load
+        ramps slowly, so the next grid row is built one node per window instead of all
+        at once (the values are the same whenever a node is solved).
+        """
+        if not 0.2 <= load <= 1.2:
+            return False
+        for key, _ in self._stencil(load, cw):
+            if key not in self._nodes:
+                self.node(*key)
+                return True
+        return False
 
 
 def linear_response(fs: Flowsheet, z: np.ndarray, base: tuple[Sequence[Spec], frozenset[str], Mapping[str, Any]],
