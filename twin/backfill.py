@@ -303,8 +303,8 @@ _WORKER: dict[str, Any] = {}
 _MEASURED = ("seconds", "peak_rss_mb")  # machine figures of a chunk: reported, never written to outputs
 
 
-def _model_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, str]]:
-    """(config, reconciler, KPI units), built once per process and grid (the costly part)."""
+def _model_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, str], Any]:
+    """(config, reconciler, KPI units, expected model), built once per process and grid (the costly part)."""
     key = f"{config_path}|{cycle!r}|{window!r}"
     if key not in _WORKER:
         os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
@@ -316,8 +316,15 @@ def _model_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any,
         # no wall-clock time budget: the result must not depend on the machine's load
         reconciler = PlantReconciler(config, time_budget=math.inf)
         units = {d.name: {"ratio": "1"}.get(d.unit, d.unit) for d in reconciler.kpi_defs}
+        from twin.model.solve import Operation
+        from twin.performance.expected import ExpectedModel
+
+        # its operating-point grid is solved from the design point (not from the windows),
+        # so the chunks of one process share it; each chunk starts it over
+        expected = ExpectedModel.from_config(config, reconciler.fs, Operation.from_config(config),
+                                             reconciler.design, reconciler.settings)
         _WORKER.clear()
-        _WORKER[key] = (config, reconciler, units)
+        _WORKER[key] = (config, reconciler, units, expected)
     return _WORKER[key]
 
 
@@ -325,14 +332,16 @@ def fresh_cycle(config_path: str, cycle: float, window: float) -> tuple[Any, Any
     """A new :class:`twin.cycle.UnitCycle` in its initial state on the process's reconciler.
 
     New for every chunk: every warm start and filter (also those not in the
-    snapshot, e.g. the expected model's) starts from the same state, so a
-    chunk's output does not depend on which chunks its process ran before.
+    snapshot, e.g. the expected model's previous point) starts from the same state, so
+    a chunk's output does not depend on which chunks its process ran before. The
+    expected model's grid is kept (:meth:`ExpectedModel.start_over`): its nodes are
+    solved from the design point, so keeping them changes the time, not the numbers.
     """
     from twin.cycle import UnitCycle
 
-    config, reconciler, units = _model_for(config_path, cycle, window)
+    config, reconciler, units, expected = _model_for(config_path, cycle, window)
     reconciler.reset()
-    return config, UnitCycle(config, reconciler=reconciler), units
+    return config, UnitCycle(config, reconciler=reconciler, expected_model=expected), units
 
 
 def _peak_rss_mb() -> float:

@@ -148,7 +148,7 @@ class UnitCycle:
     """
 
     def __init__(self, config: PlantConfig, *, reconciler: PlantReconciler | None = None,
-                 options: CycleOptions | None = None) -> None:
+                 options: CycleOptions | None = None, expected_model: ExpectedModel | None = None) -> None:
         from twin.model.flowsheet import Flowsheet
 
         self.config = config
@@ -164,7 +164,11 @@ class UnitCycle:
         # gross-error tests and elimination run in every window, steady or not
         self.reconciler.max_eliminations = self.options.max_eliminations
         # the throttle-pressure operation (sliding, fixed, schedule) and fuel price come from the plant file
-        self.expected_model = ExpectedModel.from_config(config, fs, op, design, self.reconciler.settings)
+        # a passed-in model (built for this plant) starts over but keeps its solved grid
+        if expected_model is not None:
+            expected_model.start_over()
+        self.expected_model = expected_model or ExpectedModel.from_config(config, fs, op, design,
+                                                                          self.reconciler.settings)
         self.fs, self.op = fs, op
         self.kpi_names = tuple(d.name for d in self.reconciler.kpi_defs)
         self.steady: SteadyStateDetector | None = steady_detector(config)

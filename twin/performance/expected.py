@@ -232,6 +232,20 @@ class ExpectedModel:
         knots = [a for a, _ in control.schedule] if control.mode == "schedule" else []
         self.grid = OperatingPoints(lambda load, cw: self._solve(load, cw, None), self._node_values, cw0, knots)
 
+    def start_over(self) -> None:
+        """Forget the previous windows (as a new model would), keeping the grid and its sensitivities.
+
+        The grid's nodes and their sensitivities are solved from the design point, so
+        they do not depend on the windows that asked for them; a caller that runs
+        independent spans of history in turn (the back-fill's chunks in one process)
+        keeps them instead of solving them again.
+        """
+        self.last_load = math.nan
+        self.last_cw_inlet = math.nan
+        self._last_node = None
+        self._z = None
+        self._walk_memo.clear()
+
     @classmethod
     def from_config(cls, config: Any, fs: Flowsheet, op: Operation, design: HeatBalance,
                     settings: CyclePerformanceSettings | None = None) -> ExpectedModel:
