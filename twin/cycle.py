@@ -277,8 +277,7 @@ class UnitCycle:
         cols = self.reconciler.system.cooling_water_columns
         if not cols or rec.z is None:
             return None
-        v = float(rec.z[next(iter(cols.values()))[0]])
-        return v if math.isfinite(v) else None
+        return _finite_or_none(float(rec.z[next(iter(cols.values()))[0]]))
 
     def _update_monitors(self, t: float, steady: bool, load: float, rec: PlantReconciliation,
                          kpis: Mapping[str, Estimate], expected: Mapping[str, float]) -> list[Transition]:
@@ -327,7 +326,7 @@ class UnitCycle:
             "version": SNAPSHOT_VERSION,
             "unit_id": self.config.unit.id,
             "steady_windows": self._steady_windows,
-            "warm_start": None if z is None else [float(v) if math.isfinite(v) else None for v in z],
+            "warm_start": None if z is None else [_finite_or_none(v) for v in z],
             "steady": self.steady.snapshot() if self.steady is not None else None,
             "moisture_alarm": self.moisture_alarm.snapshot(),
             "efficiency_alarms": {k: a.snapshot() for k, a in self.efficiency_alarms.items()},
