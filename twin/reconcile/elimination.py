@@ -14,7 +14,7 @@ References
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -135,6 +135,9 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
     if V.ndim == 1:
         V = np.diag(V)
     keep = np.arange(measured.size)
+    diagonal_v = np.count_nonzero(V) == np.count_nonzero(np.diag(V))
+    if options is not None and options.covariance == "diagonal" and not diagonal_v:
+        options = replace(options, covariance="measured")  # GLR needs Cov(a) with correlated V
     res = reconcile(system, z0, measured, y, V, options=options)
     log: list[tuple[int, float, float]] = []
     reason = f"reached max_eliminations={max_eliminations}"
@@ -150,7 +153,9 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
         if len(log) >= max_eliminations:
             break
         Vk = V[np.ix_(keep, keep)]
-        bias, drop = glr_bias(res.adjustments, res.cov_a, Vk, np.isfinite(res.z))
+        # with a diagonal V the GLR test reads only the adjustments' variances
+        cov_a = np.diag(res.var_a) if diagonal_v and res.var_a is not None else res.cov_a
+        bias, drop = glr_bias(res.adjustments, cov_a, Vk, np.isfinite(res.z))
         order = [j for j in np.argsort(-np.nan_to_num(drop, nan=-1.0)) if flags[j]]
         J = _dense(system.jacobian(res.z_warm))
         chosen = None
@@ -176,12 +181,14 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
             if res.converged:
                 break
     out = []
+    n_vars = int(system.n_vars)
     for pos, zj, bj in log:
         v = int(measured[pos])
+        var = float(res.functional_covariance(np.eye(1, n_vars, v))[0, 0])
         out.append(EliminatedMeasurement(
             position=pos, variable=v, measured_value=float(y[pos]), z=zj, bias=bj,
             re_estimate=float(res.z_hat[v]),
-            re_estimate_sigma=float(np.sqrt(res.cov_z[v, v])) if res.cov_z[v, v] >= 0 else float("nan"),
+            re_estimate_sigma=float(np.sqrt(var)) if var >= 0 else float("nan"),
         ))
     return Elimination(res, tuple(out), keep, reason)
 

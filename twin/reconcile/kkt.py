@@ -151,14 +151,26 @@ class ScaledKKT:
                               shape=(N + m, N + m))
         self.K = K
         self._delta = np.r_[np.zeros(N), np.full(m, DELTA_CONSTRAINTS)]
+        self._factor()
+
+    def _factor(self) -> None:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("error", spla.MatrixRankWarning)
                 # symmetric ordering with a small pivot threshold keeps the fill low
-                self.lu = spla.splu(K, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.01,
+                self.lu = spla.splu(self.K, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.01,
                                     options={"SymmetricMode": True})
         except (RuntimeError, spla.MatrixRankWarning) as exc:
             raise KKTFactorisationError(f"KKT system is singular: {exc}") from None
+
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        del state["lu"]  # a SuperLU object does not pickle: factored again on load
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._factor()
 
     def solve(self, rhs: np.ndarray, sweeps: int = REFINE_SWEEPS) -> np.ndarray:
         """Solve ``K0 s = rhs`` (one or many columns) with iterative refinement.

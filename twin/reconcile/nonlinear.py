@@ -25,17 +25,21 @@ import scipy.linalg as sla
 import scipy.sparse as sp
 from scipy import stats as sps
 
+from twin.reconcile.covariance import (
+    LinearisedCovariance,
+    _final_dense,
+    _final_sparse,
+    covariance_fields,
+    dense_functional_covariance,
+)
 from twin.reconcile.kkt import KKTFactorisationError, ScaledKKT
 from twin.reconcile.linear import (
     DEFAULT_RANK_TOL,
-    REDUNDANCY_FLOOR,
     Classification,
     InconsistentConstraintsError,
-    _build_result,
     _check_inputs,
     _cov_factor,
     _solve,
-    classify,
 )
 
 #: Exceptions from the model callbacks that are treated as "no value here".
@@ -85,7 +89,7 @@ class LinearSystem:
 
 #: Valid values of :attr:`SolveOptions.method` and :attr:`SolveOptions.covariance`.
 METHODS = ("sparse", "dense")
-COVARIANCES = ("full", "measured", "none")
+COVARIANCES = ("full", "measured", "diagonal", "none")
 
 
 @dataclass(frozen=True)
@@ -133,11 +137,16 @@ class SolveOptions:
         ``noise_tol``, a remaining Gauss-Newton step under 1 % of every measurement's σ
         and the objective unchanged to ``1e-6`` relative, the iterate is accepted as
         converged at that floor (the message says so).
-    covariance : {"full", "measured", "none"}
+    covariance : {"full", "measured", "diagonal", "none"}
         Which covariances the result carries: all of ``cov_z``; only the measured
-        block of ``cov_z`` and ``cov_a`` (unmeasured rows/columns NaN); or none
-        (``cov_z``, ``cov_a``, ``z`` and ``redundancy`` NaN). The sparse method then
-        skips the corresponding solves.
+        block of ``cov_z`` and ``cov_a`` (unmeasured rows/columns NaN); only the
+        measured variances ``var_x`` and ``var_a`` (with ``z`` and ``redundancy``;
+        ``cov_z`` and ``cov_a`` read-only all-NaN placeholders), the mode for callers
+        that read the covariance of a few quantities through
+        :meth:`Result.functional_covariance`; or none (``cov_z``, ``cov_a``,
+        ``var_x``, ``var_a``, ``z`` and ``redundancy`` NaN). The sparse method then
+        skips the corresponding solves. ``var_x``/``var_a`` come with every mode but
+        ``"none"``; :meth:`Result.functional_covariance` works in every mode.
     """
 
     max_iter: int = 50
@@ -201,6 +210,10 @@ class Result:
         The final iterate with every entry finite (unobservable entries keep a
         feasible but arbitrary value): pass it as ``z0`` next time. NaN on failure.
     classification : Classification or None
+    var_x, var_a : ndarray, shape (n,), or None
+        ``diag Cov(x̂)`` and ``diag Cov(a)``; NaN with ``covariance="none"``.
+    covariance_operator : LinearisedCovariance or None
+        The final factorisation behind :meth:`functional_covariance` (sparse method).
     gain : ndarray, shape (n_vars, n), or None
         Whitened sensitivity of the solution to the data at the solution: with
         ``y = L w`` (``V = L Lᵀ``), ``δẑ = gain · δw`` and ``cov_z = gain · gainᵀ``
@@ -230,10 +243,47 @@ class Result:
     z_warm: np.ndarray
     classification: Classification | None = field(default=None)
     gain: np.ndarray | None = field(default=None)
+    var_x: np.ndarray | None = field(default=None)
+    var_a: np.ndarray | None = field(default=None)
+    covariance_operator: LinearisedCovariance | None = field(default=None, repr=False, compare=False)
 
     @property
     def converged(self) -> bool:
         return self.status == "converged"
+
+    def functional_covariance(self, G) -> np.ndarray:
+        """Covariance ``G Cov(ẑ) Gᵀ`` (k, k) of linear functionals ``G z`` of the solution.
+
+        ``G`` (k, n_vars), dense or sparse (a 1-D array is one row): e.g. the gradients
+        of k KPIs, or unit rows for single variables. The sparse method computes it from
+        the final KKT factorisation with 2k solves, whatever ``SolveOptions.covariance``
+        was (``"diagonal"`` is the cheap mode for callers that read only this and the
+        measured variances); the dense method from ``cov_z`` (needs ``"full"``). Rows and
+        columns of functionals with a non-zero coefficient on an unobservable variable
+        are NaN (as those variables' rows of ``cov_z``).
+        """
+        if not self.converged:
+            k = 1 if np.ndim(G) == 1 else G.shape[0]
+            return np.full((k, k), np.nan)
+        if self.covariance_operator is not None:
+            return self.covariance_operator.functional_covariance(G)
+        return dense_functional_covariance(G, self.cov_z, self.unmeasured, self.observable)
+
+    def functional_gain(self, G) -> np.ndarray:
+        """Whitened gain ``G · gain`` (k, n) of functionals ``G z``: ``Cov(G ẑ) = R Rᵀ``.
+
+        Column ``j`` is the part of each functional's response that comes from
+        measurement ``j`` (see ``gain``), e.g. to split a KPI's variance between the
+        instruments and the soft relations. Sparse method only (any covariance mode),
+        else ``G · gain`` when ``gain`` is there; NaN rows as in
+        :meth:`functional_covariance`.
+        """
+        if self.covariance_operator is not None and self.converged:
+            return self.covariance_operator.functional_gain(G)
+        if self.gain is None:
+            raise ValueError("functional_gain needs the sparse method or covariance='full'")
+        Gd = G.toarray() if sp.issparse(G) else np.atleast_2d(np.asarray(G, dtype=float))
+        return Gd @ self.gain
 
 
 def _failed(status, message, iterations, n_vars, measured, unmeasured) -> Result:
@@ -246,6 +296,7 @@ def _failed(status, message, iterations, n_vars, measured, unmeasured) -> Result
         dof=0, p_value=float("nan"), z=nan(n, np.nan), redundant=np.zeros(n, bool),
         observable=np.zeros(p, bool), redundancy=nan(n, np.nan), message=message,
         measured=measured, unmeasured=unmeasured, z_warm=nan(n_vars, np.nan),
+        var_x=nan(n, np.nan), var_a=nan(n, np.nan),
     )
 
 
@@ -372,7 +423,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
         return fail("model_error", f"model error at the starting point: {type(exc).__name__}: {exc}", 0)
     m = f.shape[0]
     y, V = _check_measurements(y, V, measured.size)
-    factor = _cov_factor(V)
+    factor = (np.sqrt(V), True) if V.ndim == 1 else _cov_factor(V)
     Lfac, diagonal = factor
     sigma = Lfac if diagonal else np.sqrt(np.diag(V))
 
@@ -401,13 +452,14 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
     def vinv(a):
         return a / Lfac**2 if diagonal else sla.cho_solve((Lfac, True), a)
 
+    V2 = np.diag(V) if (dense and V.ndim == 1) else V
     sparse_step = None if dense else _SparseStep(measured, unmeasured, Lfac, diagonal, vs, rs)
 
     def step(J, z, f, a):
         if sparse_step is not None:
             return sparse_step(J, z, f, a, n_vars)
         JM, JU = J[:, measured], J[:, unmeasured]
-        core = _solve(JM, y, V, JU, JM @ z[measured] - f, tol, factor)
+        core = _solve(JM, y, V2, JU, JM @ z[measured] - f, tol, factor)
         d = np.zeros(n_vars)
         d[measured] = core.x_hat - z[measured]
         d[unmeasured] = core.u_part
@@ -484,7 +536,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
         return fail(status, message, it)
     try:
         if dense:
-            stats = _final_dense(J, z, f, y, V, factor, measured, unmeasured, classification, tol)
+            stats = _final_dense(J, z, f, y, np.diag(V) if V.ndim == 1 else V, factor, measured, unmeasured, classification, tol)
         else:
             stats = _final_sparse(J, y, V, sigma, vs, rs, sparse_step, measured, unmeasured,
                                   classification, tol, opts.covariance)
@@ -495,88 +547,42 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
     adj = y - z[measured]
     gamma = float(adj @ vinv(adj))
     observable = cls.observable
-    nan = float("nan")
-    cov_z = np.full((n_vars, n_vars), nan)
-    cov_a = np.full((measured.size, measured.size), nan)
-    z_norm = np.full(measured.size, nan)
-    redundancy = np.full(measured.size, nan)
-    if opts.covariance != "none":
-        cov_a = V - cov_x
-        cov_z[np.ix_(measured, measured)] = cov_x
-        va = np.diag(cov_a)
-        redundancy = np.where(cls.redundant, 1.0 - np.diag(cov_x) / np.diag(V), 0.0)
-        ok = cls.redundant & (va > 0) & (redundancy > REDUNDANCY_FLOOR)
-        z_norm[ok] = adj[ok] / np.sqrt(va[ok])
-    if opts.covariance == "full":
-        cov_u = cov_u.copy()
-        cov_xu = cov_xu.copy()
-        cov_u[~observable, :] = nan
-        cov_u[:, ~observable] = nan
-        cov_xu[:, ~observable] = nan
-        cov_z[np.ix_(unmeasured, unmeasured)] = cov_u
-        cov_z[np.ix_(measured, unmeasured)] = cov_xu
-        cov_z[np.ix_(unmeasured, measured)] = cov_xu.T
-    gain = None
-    if gain_parts is not None and opts.covariance == "full":
-        gx, gu = gain_parts
-        gain = np.empty((n_vars, measured.size))
-        gain[measured] = gx
-        gain[unmeasured] = gu
-        gain[unmeasured[~observable]] = nan
+    fields = covariance_fields(opts.covariance, V, cov_x, cov_xu, cov_u, gain_parts, adj, cls,
+                               measured, unmeasured)
+    operator = None
+    if sparse_step is not None:
+        operator = LinearisedCovariance(lambda J=J: sparse_step.factor(J), measured, unmeasured,
+                                        sparse_step.Lfac, sparse_step.diagonal, sparse_step.su,
+                                        observable.copy())
     z_hat = z.copy()
     z_hat[unmeasured[~observable]] = np.nan
-    p_value = float(sps.chi2.sf(gamma, cls.dof)) if cls.dof > 0 else nan
+    p_value = float(sps.chi2.sf(gamma, cls.dof)) if cls.dof > 0 else float("nan")
     return Result(
-        status=status, iterations=it, z_hat=z_hat, x_hat=z[measured].copy(), cov_z=cov_z,
-        adjustments=adj, cov_a=cov_a, gamma=gamma, dof=cls.dof, p_value=p_value,
-        z=z_norm, redundant=cls.redundant.copy(), observable=observable.copy(),
-        redundancy=redundancy, message=message, measured=measured,
-        unmeasured=unmeasured, z_warm=z.copy(), classification=cls, gain=gain,
+        status=status, iterations=it, z_hat=z_hat, x_hat=z[measured].copy(),
+        adjustments=adj, gamma=gamma, dof=cls.dof, p_value=p_value,
+        redundant=cls.redundant.copy(), observable=observable.copy(), message=message,
+        measured=measured, unmeasured=unmeasured, z_warm=z.copy(), classification=cls,
+        covariance_operator=operator, **fields,
     )
 
 
 def _check_measurements(y, V, n):
-    _, y, V, _, _ = _check_inputs(np.zeros((1, n)), y, V, None, None)
-    return y, V
-
-
-def _final_dense(J, z, f, y, V, factor, measured, unmeasured, classification, tol):
-    """Classification and covariances by the dense projection at the solution."""
-    JM, JU = J[:, measured], J[:, unmeasured]
-    core = _solve(JM, y, V, JU, JM @ z[measured] - f, tol, factor)
-    lin = _build_result(core, JM, y, classification, measured, unmeasured, tol)
-    return lin.classification, lin.cov_x, lin.cov_xu, lin.cov_u, None
-
-
-def _final_sparse(J, y, V, sigma, vs, rs, sparse_step, measured, unmeasured,
-                  classification, tol, covariance):
-    """Classification (unless given) and the linearised covariance from the sparse KKT.
-
-    ``ŵ = X g`` and ``v̂ = U g`` for whitened data ``g``, so ``Cov(x̂) = L X Lᵀ``,
-    ``Cov(x̂, û) = L Uᵀ S`` and ``Cov(û) = S U Uᵀ S`` (see :class:`ScaledKKT`).
-    """
-    cls = classification
-    if cls is None:
-        cls = classify(J, measured, sigma=sigma, var_scale=vs, residual_scale=rs, rank_tol=tol)
-    n, p = measured.size, unmeasured.size
-    if covariance == "none":
-        return cls, None, None, None, None
-    kkt = sparse_step.factor(J)
-    X, U = kkt.sensitivities()
-    X = 0.5 * (X + X.T)
-    Lfac, diagonal = sparse_step.Lfac, sparse_step.diagonal
-    if diagonal:
-        cov_x = Lfac[:, None] * X * Lfac[None, :]
-        LUt = Lfac[:, None] * U.T
-    else:
-        cov_x = Lfac @ X @ Lfac.T
-        LUt = Lfac @ U.T
-    if covariance != "full":
-        return cls, cov_x, np.zeros((n, p)), np.zeros((p, p)), None
-    su = sparse_step.su
-    cov_xu = LUt * su[None, :]
-    SU = su[:, None] * U
-    cov_u = SU @ SU.T
-    # whitened gains: δx̂ = L X δw, δû = S U δw (X symmetric)
-    gx = Lfac[:, None] * X if diagonal else Lfac @ X
-    return cls, cov_x, cov_xu, cov_u, (gx, SU)
+    """``y`` (n,) and ``V``: 1-D (variances, kept 1-D so large problems stay linear) or (n, n)."""
+    Va = np.asarray(V.toarray() if sp.issparse(V) else V, dtype=float)
+    if Va.ndim != 1:
+        _, y, Va, _, _ = _check_inputs(np.zeros((1, n)), y, Va, None, None)
+        return y, Va
+    y = np.asarray(y, dtype=float).reshape(-1)
+    if y.shape != (n,):
+        raise ValueError(f"y has shape {y.shape}, expected ({n},) to match A columns")
+    bad = np.flatnonzero(~np.isfinite(y))
+    if bad.size:
+        raise ValueError(f"y contains non-finite values at indices {bad.tolist()}")
+    if Va.shape != (n,):
+        raise ValueError(f"V has shape {Va.shape}, expected ({n}, {n})")
+    if not np.all(np.isfinite(Va)):
+        raise ValueError("V contains non-finite values")
+    bad = np.flatnonzero(Va <= 0.0)
+    if bad.size:
+        raise ValueError(f"V is singular: non-positive variance at indices {bad.tolist()}")
+    return y, Va
