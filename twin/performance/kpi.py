@@ -25,6 +25,7 @@ from twin.model.flow import Boiler, Pump, Reheater
 from twin.model.flowsheet import Flowsheet
 from twin.model.heat_exchange import ClosedHeater, Condenser, OpenHeater
 from twin.model.turbine import ExhaustLoss, Generator
+from twin.performance import kpi_gradient as kg
 
 KJ_PER_KWH = 3600.0  # kJ/kWh per unit of dimensionless heat rate
 BTU_PER_KWH = 3412.1416  # Btu_IT/kWh per unit of dimensionless heat rate (1 Btu_IT = 1055.05585262 J)
@@ -227,13 +228,15 @@ class KpiDef:
 
     The dependency list lets the reconciliation propagate the full covariance
     to the KPI through a gradient over those columns only, and decide that the
-    KPI is unavailable when one of them is unobservable.
+    KPI is unavailable when one of them is unobservable. ``grad`` is the KPI's
+    analytic gradient ``{column: dKPI/dz}`` at a state (:mod:`twin.performance.kpi_gradient`).
     """
 
     name: str
     func: Callable[[Context], float]
     columns: tuple[int, ...]
     unit: str  # "W", "ratio", "K", "Pa", "kg/s" (for display only)
+    grad: Callable[[Context], dict[int, float]] | None = None
 
 
 def _stream_cols(fs: Flowsheet, streams: Sequence[str], qs: str = "mph") -> tuple[int, ...]:
@@ -289,59 +292,105 @@ def kpi_definitions(
     def boiler_eff(ctx: Context) -> float:
         return interpolate_boiler_efficiency(settings.boiler_efficiency, load(ctx))
 
+    # gradients (kpi_gradient): the same terms, chain rule through the stream states
+    def g_gen(ctx: Context) -> kg.Grad:
+        return dict.fromkeys(gen_cols, 1.0)
+
+    def g_q(ctx: Context) -> kg.Grad:
+        return kg.combine(*((1.0, kg.duty(ctx, e)) for e in heat))
+
+    def g_load(ctx: Context) -> kg.Grad:
+        return {load_col[0]: 1.0 / settings.design_flow}
+
+    def g_net(ctx: Context) -> kg.Grad:
+        return kg.combine((1.0, g_gen(ctx)), (-settings.auxiliary_variable, g_load(ctx)),
+                          (-1.0, dict.fromkeys(pump_cols, 1.0)))
+
+    def g_net_turbine(ctx: Context) -> kg.Grad:
+        return kg.combine((1.0, g_gen(ctx)), (-1.0, dict.fromkeys(fp_cols, 1.0)))
+
+    def g_boiler_eff(ctx: Context) -> kg.Grad:
+        return kg.combine((kg.interpolation_slope(settings.boiler_efficiency, load(ctx)), g_load(ctx)))
+
+    def g_over(num: Callable[[Context], float], g_num: Callable[[Context], kg.Grad],
+               den: Callable[[Context], float], g_den: Callable[[Context], kg.Grad],
+               eta: bool = False) -> Callable[[Context], kg.Grad]:
+        """Gradient of num / den (× 1 / boiler efficiency when ``eta``)."""
+        def g(c: Context) -> kg.Grad:
+            d, gd = den(c), g_den(c)
+            if eta:  # den · η_b
+                b = boiler_eff(c)
+                gd, d = kg.combine((b, gd), (d, g_boiler_eff(c))), d * b
+            return kg.ratio(num(c), g_num(c), d, gd)
+        return g
+
     net_cols = gen_cols + pump_cols + load_col
     defs = [
-        KpiDef("load_fraction", load, load_col, "ratio"),
-        KpiDef("gross_power", p_gen, gen_cols, "W"),
-        KpiDef("net_power", net, net_cols, "W"),
-        KpiDef("heat_input", q_in, q_cols, "W"),
-        KpiDef("gross_efficiency", lambda c: p_gen(c) / q_in(c), gen_cols + q_cols, "ratio"),
-        KpiDef("net_efficiency", lambda c: net(c) / q_in(c), net_cols + q_cols, "ratio"),
+        KpiDef("load_fraction", load, load_col, "ratio", g_load),
+        KpiDef("gross_power", p_gen, gen_cols, "W", g_gen),
+        KpiDef("net_power", net, net_cols, "W", g_net),
+        KpiDef("heat_input", q_in, q_cols, "W", g_q),
+        KpiDef("gross_efficiency", lambda c: p_gen(c) / q_in(c), gen_cols + q_cols, "ratio",
+               g_over(p_gen, g_gen, q_in, g_q)),
+        KpiDef("net_efficiency", lambda c: net(c) / q_in(c), net_cols + q_cols, "ratio", g_over(net, g_net, q_in, g_q)),
         # turbine-cycle gross heat rate: cycle heat input / generator output
-        KpiDef("turbine_heat_rate", lambda c: q_in(c) / p_gen(c), gen_cols + q_cols, "ratio"),
+        KpiDef("turbine_heat_rate", lambda c: q_in(c) / p_gen(c), gen_cols + q_cols, "ratio",
+               g_over(q_in, g_q, p_gen, g_gen)),
         # turbine-cycle net heat rate (ASME PTC 6): motor-driven feed-pump power deducted
-        KpiDef("turbine_net_heat_rate", lambda c: q_in(c) / net_turbine(c), gen_cols + fp_cols + q_cols, "ratio"),
+        KpiDef("turbine_net_heat_rate", lambda c: q_in(c) / net_turbine(c), gen_cols + fp_cols + q_cols, "ratio",
+               g_over(q_in, g_q, net_turbine, g_net_turbine)),
         # plant heat rate (fuel basis): turbine heat rate / boiler efficiency
         KpiDef("plant_heat_rate", lambda c: q_in(c) / (p_gen(c) * boiler_eff(c)), gen_cols + q_cols + load_col,
-               "ratio"),
+               "ratio", g_over(q_in, g_q, p_gen, g_gen, eta=True)),
         # net plant heat rate (fuel basis): (heat input / boiler efficiency) / (gross − auxiliaries)
-        KpiDef("net_plant_heat_rate", lambda c: q_in(c) / (net(c) * boiler_eff(c)), net_cols + q_cols, "ratio"),
+        KpiDef("net_plant_heat_rate", lambda c: q_in(c) / (net(c) * boiler_eff(c)), net_cols + q_cols, "ratio",
+               g_over(q_in, g_q, net, g_net, eta=True)),
     ]
 
     def section(inlet: str, outlet: str) -> Callable[[Context], float]:
         return lambda c: section_efficiency(c, inlet, outlet)
 
+    def g_section(inlet: str, outlet: str) -> Callable[[Context], kg.Grad]:
+        return lambda c: kg.section_efficiency(c, inlet, outlet)
+
     def qual(stream: str) -> Callable[[Context], float]:
         return lambda c: quality(c, stream)
+
+    def g_qual(stream: str, sign: float) -> Callable[[Context], kg.Grad]:
+        return lambda c: kg.combine((sign, kg.quality(c, stream)))
 
     def moist(stream: str) -> Callable[[Context], float]:
         return lambda c: 1.0 - quality(c, stream)
 
     for s in settings.sections:
         cols = _stream_cols(fs, [s.inlet, s.outlet], "ph")
-        defs.append(KpiDef(f"section_efficiency.{s.id}", section(s.inlet, s.outlet), cols, "ratio"))
+        defs.append(KpiDef(f"section_efficiency.{s.id}", section(s.inlet, s.outlet), cols, "ratio",
+                           g_section(s.inlet, s.outlet)))
         loss = next((e for e in fs.of_kind(ExhaustLoss) if e.port("inlet") == s.outlet), None)
         if loss is not None:
             ueep = loss.port("outlet")
             defs.append(KpiDef(f"section_efficiency.{s.id}_UEEP", section(s.inlet, ueep),
-                               _stream_cols(fs, [s.inlet, ueep], "ph"), "ratio"))
+                               _stream_cols(fs, [s.inlet, ueep], "ph"), "ratio", g_section(s.inlet, ueep)))
             for point, stream in (("elep", s.outlet), ("ueep", ueep)):
                 c2 = _stream_cols(fs, [stream], "ph")
-                defs.append(KpiDef(f"exhaust_quality_{point}", qual(stream), c2, "ratio"))
-                defs.append(KpiDef(f"exhaust_moisture_{point}", moist(stream), c2, "ratio"))
+                defs.append(KpiDef(f"exhaust_quality_{point}", qual(stream), c2, "ratio", g_qual(stream, 1.0)))
+                defs.append(KpiDef(f"exhaust_moisture_{point}", moist(stream), c2, "ratio", g_qual(stream, -1.0)))
 
     for e in fs.of_kind(ClosedHeater):
         assert isinstance(e, ClosedHeater)
         ti, to, st, do = e.port("tube_in"), e.port("tube_out"), e.port("steam_in"), e.port("drain_out")
         defs += [
-            KpiDef(f"heater_ttd.{e.id}", _ttd(st, to), _stream_cols(fs, [st], "p") + _stream_cols(fs, [to], "ph"), "K"),
-            KpiDef(f"heater_dca.{e.id}", _rise(ti, do), _stream_cols(fs, [do, ti], "ph"), "K"),
-            KpiDef(f"heater_temperature_rise.{e.id}", _rise(ti, to), _stream_cols(fs, [to, ti], "ph"), "K"),
-            KpiDef(f"extraction_flow.{e.id}", _flow(st), _stream_cols(fs, [st], "m"), "kg/s"),
+            KpiDef(f"heater_ttd.{e.id}", _ttd(st, to), _stream_cols(fs, [st], "p") + _stream_cols(fs, [to], "ph"), "K",
+                   _g_ttd(st, to)),
+            KpiDef(f"heater_dca.{e.id}", _rise(ti, do), _stream_cols(fs, [do, ti], "ph"), "K", _g_rise(ti, do)),
+            KpiDef(f"heater_temperature_rise.{e.id}", _rise(ti, to), _stream_cols(fs, [to, ti], "ph"), "K",
+                   _g_rise(ti, to)),
+            KpiDef(f"extraction_flow.{e.id}", _flow(st), _stream_cols(fs, [st], "m"), "kg/s", _g_column(fs, st, "m")),
         ]
     for e in fs.of_kind(OpenHeater):
         st = e.port("steam_in")
-        defs.append(KpiDef(f"extraction_flow.{e.id}", _flow(st), _stream_cols(fs, [st], "m"), "kg/s"))
+        defs.append(KpiDef(f"extraction_flow.{e.id}", _flow(st), _stream_cols(fs, [st], "m"), "kg/s",
+                           _g_column(fs, st, "m")))
 
     for e in fs.of_kind(Condenser):
         assert isinstance(e, Condenser)
@@ -365,12 +414,44 @@ def kpi_definitions(
                 return condenser_kpis(c, e, t_in, t_out, c.constants.get(e.id, {}).get("u_clean"))[key]
             return f
 
+        def g_cw(c: Context, e: Condenser = e, cw: tuple[int, int] | None = cw) -> tuple[kg.Grad, kg.Grad]:
+            """Gradients of the cooling-water inlet and outlet temperatures (as ``cw_temps``)."""
+            if cw is not None:
+                return {cw[0]: 1.0}, {cw[1]: 1.0}
+            k = c.constants.get(e.id, {})
+            if "cw_flow" in k:
+                return {}, kg.combine((1.0 / (k["cw_flow"] * e.params["cooling_water_cp"]), kg.duty(c, e)))
+            return {}, {}
+
+        def g_cond(key: str, e: Condenser = e, g_cw: Callable = g_cw,
+                   cw_temps: Callable = cw_temps) -> Callable[[Context], kg.Grad]:
+            def g(c: Context) -> kg.Grad:
+                g_in, g_out = g_cw(c)
+                g_ts = kg.saturation_temperature(c, e.port("exhaust"))
+                if key == "itd":
+                    return kg.combine((1.0, g_ts), (-1.0, g_in))
+                if key == "ttd":
+                    return kg.combine((1.0, g_ts), (-1.0, g_out))
+                # cleanliness = duty / (LMTD · area · U_clean)
+                t_s = c.water.T_sat(c.p(e.port("exhaust")))
+                t_in, t_out = cw_temps(c)
+                da, db = kg.lmtd_partials(t_s - t_in, t_s - t_out)
+                g_lmtd = kg.combine((da, g_ts), (-da, g_in), (db, g_ts), (-db, g_out))
+                lmtd = (t_out - t_in) / math.log((t_s - t_in) / (t_s - t_out))
+                scale = 1.0 / (e.params["area"] * c.constants.get(e.id, {}).get("u_clean", math.nan))
+                return kg.combine((scale, kg.ratio(e.duty(c), kg.duty(c, e), lmtd, g_lmtd)))
+            return g
+
         cw_cols = tuple(cw) if cw is not None else ()
         defs += [
-            KpiDef(f"condenser_pressure.{e.id}", _pressure(ex), _stream_cols(fs, [ex], "p"), "Pa"),
-            KpiDef(f"condenser_itd.{e.id}", cond("itd"), _stream_cols(fs, [ex], "p") + cw_cols[:1], "K"),
-            KpiDef(f"condenser_ttd.{e.id}", cond("ttd"), _stream_cols(fs, [ex], "p") + cw_cols[1:], "K"),
-            KpiDef(f"condenser_cleanliness.{e.id}", cond("cleanliness"), duty_cols + cw_cols, "ratio"),
+            KpiDef(f"condenser_pressure.{e.id}", _pressure(ex), _stream_cols(fs, [ex], "p"), "Pa",
+                   _g_column(fs, ex, "p")),
+            KpiDef(f"condenser_itd.{e.id}", cond("itd"), _stream_cols(fs, [ex], "p") + cw_cols[:1], "K",
+                   g_cond("itd")),
+            KpiDef(f"condenser_ttd.{e.id}", cond("ttd"), _stream_cols(fs, [ex], "p") + cw_cols[1:], "K",
+                   g_cond("ttd")),
+            KpiDef(f"condenser_cleanliness.{e.id}", cond("cleanliness"), duty_cols + cw_cols, "ratio",
+                   g_cond("cleanliness")),
         ]
     return defs
 
@@ -383,6 +464,19 @@ def _ttd(steam: str, out: str) -> Callable[[Context], float]:
 def _rise(cold: str, warm: str) -> Callable[[Context], float]:
     """T_warm − T_cold [K]."""
     return lambda c: c.ph(warm).T - c.ph(cold).T
+
+
+def _g_ttd(steam: str, out: str) -> Callable[[Context], kg.Grad]:
+    return lambda c: kg.combine((1.0, kg.saturation_temperature(c, steam)), (-1.0, kg.temperature(c, out)))
+
+
+def _g_rise(cold: str, warm: str) -> Callable[[Context], kg.Grad]:
+    return lambda c: kg.combine((1.0, kg.temperature(c, warm)), (-1.0, kg.temperature(c, cold)))
+
+
+def _g_column(fs: Flowsheet, stream: str, q: str) -> Callable[[Context], kg.Grad]:
+    col = getattr(fs.layout, q)(stream)
+    return lambda c: {col: 1.0}
 
 
 def _flow(stream: str) -> Callable[[Context], float]:

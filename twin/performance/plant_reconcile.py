@@ -28,6 +28,7 @@ import numpy as np
 from twin.model.core import Context
 from twin.model.flowsheet import Flowsheet
 from twin.model.solve import HeatBalance, Operation, SolveError, solve_design, solve_off_design
+from twin.performance import kpi_propagation
 from twin.performance.kpi import CyclePerformanceSettings, KpiDef, kpi_definitions
 from twin.performance.plant import K95, PlantSystem
 from twin.reconcile import (
@@ -400,11 +401,45 @@ class PlantReconciler:
 
     def _kpis(self, z: np.ndarray, cov: np.ndarray, names: Sequence[str] | None = None,
               share: _SoftShare | None = None) -> dict[str, Estimate]:
+        """Every wanted KPI ± U: analytic gradients, propagated together (:mod:`kpi_propagation`).
+
+        A definition without an analytic gradient goes through :meth:`_kpi_estimate`
+        (central differences over nudged contexts).
+        """
         wanted = None if names is None else set(names)
         base = self.system.context(z)
         shifted: dict[tuple[int, int], Context] = {}
-        return {d.name: self._kpi_estimate(d, z, cov, base, shifted, share)
-                for d in self.kpi_defs if wanted is None or d.name in wanted}
+        out: dict[str, Estimate] = {}
+        rows: list[tuple[str, float, list[int], dict[int, float]]] = []
+        for d in self.kpi_defs:
+            if wanted is not None and d.name not in wanted:
+                continue
+            if d.grad is None:
+                out[d.name] = self._kpi_estimate(d, z, cov, base, shifted, share)
+                continue
+            out[d.name] = Estimate()  # unless it has a value and a variance below
+            cols = list(dict.fromkeys(d.columns))  # a column listed twice enters once
+            if any(not math.isfinite(z[c]) for c in cols):
+                continue
+            try:
+                value = float(d.func(base))
+                grad = d.grad(base)
+            except (ValueError, ZeroDivisionError, ArithmeticError):
+                continue
+            if math.isfinite(value):
+                rows.append((d.name, value, cols, grad))
+        if not rows:
+            return out
+        used, G = kpi_propagation.gradient_matrix([(cols, g) for _, _, cols, g in rows])
+        var = kpi_propagation.variances(used, G, cov)
+        shares = (kpi_propagation.soft_shares(used, G, share.gain, share.soft) if share is not None
+                  else np.full(len(rows), math.nan))
+        for (name, value, _, _), v, sh in zip(rows, var, shares, strict=True):
+            if math.isfinite(v):
+                soft_share = float(sh)
+                out[name] = Estimate(value, K95 * math.sqrt(max(float(v), 0.0)), True, status=_status(soft_share),
+                                     soft_share=soft_share)
+        return out
 
     def _unmeasured(self, z: np.ndarray, cov: np.ndarray, share: _SoftShare | None = None) -> dict[str, Estimate]:
         """Unmeasured quantities worth reporting: LP exhaust enthalpies, line factors."""
