@@ -14,7 +14,7 @@ def test_bench_reconcile_quick_returns_all_keys():
     bench.add_arguments(parser)
     out = bench.run(parser.parse_args(["--quick"]))
     demo = out["demo_u1"]
-    for key in ("cold", "warm", "warm_no_covariance", "slsqp"):
+    for key in ("cold", "warm", "warm_no_covariance", "warm_diagonal_kpis", "slsqp"):
         assert {"median_ms", "p95_ms", "n"} <= set(demo[key])
     assert demo["warm"]["failed"] == 0 and demo["n_measured"] > 0
     assert "speedup_vs_slsqp" in demo
@@ -32,7 +32,7 @@ def test_bench_reconcile_quick_returns_all_keys():
     assert cycle["all"]["n"] == 4 and {"median_ms", "p99_ms", "max_ms"} <= set(cycle["all"])
     assert sum(cycle["deviation_status"].values()) == 4
     for kind in ("linear", "bilinear"):
-        for cov in ("covariance_full", "covariance_none"):
+        for cov in ("covariance_full", "covariance_diagonal", "covariance_kpi", "covariance_none"):
             row = out["synthetic"][kind][cov]
             assert set(row["median_ms"]) == {"100", "200"} and "loglog_slope" in row
 

@@ -10,7 +10,12 @@ the warm-started sparse solver's.
 elimination included) at design, 75 % and 50 % load, sliding and fixed pressure, in
 worker processes: the not-converged count and the median, p99 and worst solve times.
 (d) synthetic steam-metering networks of 100…2000 measurements (linear and bilinear),
-median time per reconciliation, and the fitted log-log slope of time against size.
+median time per reconciliation with the full covariance, with the measured variances and
+20 KPI-like linear functionals, with the functionals only, and without covariance, and
+the fitted log-log slope of time against size for each.
+The warm demo-u1 figures come with the full covariance (``warm``), with the measured
+variances and 20 KPI-like rows (``warm_diagonal_kpis``, what a cycle reads) and without
+covariance (``warm_no_covariance``).
 (e) where a warm demo-u1 solve spends its time (properties / model / KKT / covariance /
 other, an instrumented pass), the model evaluation against the straightforward one in the
 same process (the baseline that tells machine load from code speed), and the per-window
@@ -172,6 +177,18 @@ def _demo(args, rng) -> dict:
                       options=SolveOptions(covariance="none"))
         none_t.append(time.perf_counter() - t0)
     out["warm_no_covariance"] = _stats_ms(none_t)
+    # what a cycle reads: the measured variances and the covariance of 20 KPI-like rows
+    G = _kpi_rows(r, ps.n_vars, args.seed) if r.converged else None
+    diag_t = []
+    for _ in range(max(1, args.runs // 5)):
+        y = y_true + sigma * rng.standard_normal(sigma.size)
+        t0 = time.perf_counter()
+        r = reconcile(system, z_warm, measured, y, V, classification=cls,
+                      options=SolveOptions(covariance="diagonal"))
+        if G is not None and r.converged:
+            r.functional_covariance(G)
+        diag_t.append(time.perf_counter() - t0)
+    out["warm_diagonal_kpis"] = {**_stats_ms(diag_t), "kpi_rows": SYNTHETIC_KPIS}
     from twin.bench.reconcile_profile import evaluation_baseline, profile_split
 
     out["profile_split"] = profile_split(ps, z_warm, measured, y_true, sigma, cls, rng, max(3, args.runs // 2))
@@ -222,38 +239,69 @@ def _slsqp(system, z_start, measured, y_true, sigma, rng, args) -> dict:
     return {**_stats_ms(times), "converged": ok, "model_errors": errors}
 
 
+#: Covariance figures of the synthetic networks: (name, ``SolveOptions.covariance``, KPI rows read).
+SYNTHETIC_COVARIANCES = (("full", "full", False), ("diagonal", "diagonal", True), ("kpi", "none", True),
+                         ("none", "none", False))
+#: Linear functionals ("KPIs") whose covariance the synthetic figures read, and variables per row.
+SYNTHETIC_KPIS, SYNTHETIC_KPI_TERMS = 20, 5
+
+
+def _kpi_rows(first, n_vars: int, seed: int):
+    """``SYNTHETIC_KPIS`` sparse rows, each a signed sum of a few determined variables (KPI-like)."""
+    import scipy.sparse as sp
+
+    determined = np.ones(n_vars, bool)
+    determined[first.unmeasured[~first.observable]] = False
+    cols = np.flatnonzero(determined)
+    rng = np.random.default_rng(seed)
+    k, t = SYNTHETIC_KPIS, SYNTHETIC_KPI_TERMS
+    c = np.concatenate([rng.choice(cols, size=t, replace=False) for _ in range(k)])
+    return sp.csr_matrix((rng.choice([-1.0, 1.0], size=k * t), (np.repeat(np.arange(k), t), c)),
+                         shape=(k, n_vars))
+
+
 def _synthetic(args) -> dict:
-    from twin.reconcile import SolveOptions, reconcile
+    """Synthetic networks: median time per reconciliation and the log-log slope, per covariance figure.
+
+    ``full``: the whole linearised covariance; ``diagonal``: the measured variances (tests)
+    and the covariance of :data:`SYNTHETIC_KPIS` linear functionals; ``kpi``: only the
+    functionals' covariance (``Result.functional_covariance`` after a ``"none"`` solve);
+    ``none``: no covariance. ``V`` is passed 1-D (its diagonal), as a plant does.
+    """
+    from twin.reconcile import SolveOptions, reconcile, synthetic_network
 
     sizes = (100, 200) if args.quick else (100, 200, 500, 1000, 2000)
-    out: dict = {}
+    out: dict = {"kpi_rows": SYNTHETIC_KPIS}
     failures: list[str] = []
     for kind in ("linear", "bilinear"):
-        rows = {}
-        for cov in ("full", "none"):
-            med = []
-            for n in sizes:
-                from twin.reconcile import synthetic_network
-
-                net = synthetic_network(n, seed=args.seed, kind=kind)
-                first = reconcile(net.system, net.z0, net.measured, net.y, net.V)
-                cls = first.classification
-                start = first.z_warm if first.converged else net.z0
-                if not first.converged:
-                    failures.append(f"{kind} n={n}: {first.status}")
-                rng = np.random.default_rng(args.seed)
-                sd = np.sqrt(np.diag(net.V))
+        med: dict[str, list[float]] = {name: [] for name, _, _ in SYNTHETIC_COVARIANCES}
+        for n in sizes:
+            net = synthetic_network(n, seed=args.seed, kind=kind)
+            V = np.diag(net.V).copy()
+            first = reconcile(net.system, net.z0, net.measured, net.y, V)
+            cls = first.classification
+            start = first.z_warm if first.converged else net.z0
+            if not first.converged:
+                failures.append(f"{kind} n={n}: {first.status}")
+            G = _kpi_rows(first, net.system.n_vars, args.seed) if first.converged else None
+            sd = np.sqrt(V)
+            for name, cov, reads_kpis in SYNTHETIC_COVARIANCES:
+                rng = np.random.default_rng(args.seed)  # the same draws for every figure
                 times = []
                 for _ in range(max(1, args.repeat)):
                     y = net.z_true[net.measured] + sd * rng.standard_normal(sd.size)
                     t0 = time.perf_counter()
-                    reconcile(net.system, start, net.measured, y, net.V,
-                              classification=cls, options=SolveOptions(covariance=cov))
+                    r = reconcile(net.system, start, net.measured, y, V,
+                                  classification=cls, options=SolveOptions(covariance=cov))
+                    if reads_kpis and G is not None and r.converged:
+                        r.functional_covariance(G)
                     times.append(time.perf_counter() - t0)
-                med.append(float(np.median(times)))
-            slope = float(np.polyfit(np.log(sizes), np.log(med), 1)[0])
-            rows[f"covariance_{cov}"] = {
-                "median_ms": {str(n): round(t * 1e3, 3) for n, t in zip(sizes, med, strict=True)},
+                med[name].append(float(np.median(times)))
+        rows = {}
+        for name, t in med.items():
+            slope = float(np.polyfit(np.log(sizes), np.log(t), 1)[0])
+            rows[f"covariance_{name}"] = {
+                "median_ms": {str(n): round(x * 1e3, 3) for n, x in zip(sizes, t, strict=True)},
                 "loglog_slope": round(slope, 2),
             }
         out[kind] = rows
