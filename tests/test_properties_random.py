@@ -104,12 +104,17 @@ def test_lazy_quality_derivative_equals_the_saturation_line_form(w):
         x = (h - hf) / (hg - hf)
         assert st.dx_dp == pytest.approx(-(dhf * (1 - x) + x * dhg) / (hg - hf), rel=1e-5)
         assert st.dx_dp == st.dx_dp  # the first access stores it
+    # dataclasses.replace (the model's first-order moved states) keeps working and copies
+    # the lazy fields as they stand at the original (p, h); x from the lever rule of
+    # iapws' saturated enthalpies (IAPWS-IF97 region 4, regions 1 and 2 on the line)
     st = w.ph(1e6, 3.2e6)
-    with pytest.raises(dataclasses.FrozenInstanceError):
-        st.T = 300.0  # type: ignore[misc]
-    # dataclasses.replace (the model's first-order moved states) keeps working
     moved = dataclasses.replace(st, p=1.01e6)
     assert moved.p == 1.01e6 and moved.T == st.T and math.isfinite(moved.dx_dp)
+    assert moved.x == st.x and moved.dx_dh == st.dx_dh and moved.dx_dp == st.dx_dp
+    hf, hg = IAPWS97(P=1.0, x=0.0).h * kJ, IAPWS97(P=1.0, x=1.0).h * kJ
+    assert st.x == pytest.approx((3.2e6 - hf) / (hg - hf), rel=1e-9)
+    moved = dataclasses.replace(w.ph(1e6, 3.2e6), x=2.0)  # a replaced lazy field is the given one
+    assert moved.x == 2.0 and moved.dx_dh == st.dx_dh
 
 
 @pytest.mark.parametrize(("p", "T"), [(25e6, 1176.66), (26.4e6, 2207.05), (24.6e6, 1413.2), (10e6, 1500.0)])

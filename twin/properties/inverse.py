@@ -113,13 +113,16 @@ class WaterInverse(WaterBase):
             return _WET, x, ff, fg, tsat
         return (_LIQ if x < 0.0 else _VAP), x, ff, fg, tsat
 
-    def _single_T(self, func: str, p: float, target: float, by_s: bool, phase: int, tsat: float) -> float:
+    def _single_T(self, func: str, p: float, target: float, by_s: bool, phase: int, tsat: float,
+                  T_guess: float | None = None) -> float:
         """Forward-consistent single-phase T [K] at (p, h) (or (p, s)); leaves the state there.
 
-        Starts from the table of :mod:`twin.properties.guess` and refines on the
-        forward equation inside the phase's bracket, which keeps SAT_MARGIN from
-        T_sat; if that does not converge in a few steps, starts again from
-        CoolProp's backward-equation flash with a bracketed Newton.
+        Starts from T_guess [K] if it is given and inside the phase's bracket
+        (which keeps SAT_MARGIN from T_sat), else (or if that does not converge
+        in a few steps) from the table of :mod:`twin.properties.guess`, and
+        refines on the forward equation; if that does not converge either,
+        starts again from CoolProp's backward-equation flash with a bracketed
+        Newton.
         """
         key = "s" if by_s else "h"
         top = 2273.15 if p <= 50e6 else _T_HI
@@ -129,6 +132,10 @@ class WaterInverse(WaterBase):
             lo, hi = tsat * (1.0 + SAT_MARGIN), top
         else:
             lo, hi = _T_LO, top
+        if T_guess is not None and lo <= T_guess <= hi:
+            T = self._chord(p, target, by_s, T_guess, lo, hi)
+            if T == T:
+                return T
         T = self._chord(p, target, by_s, start_T(p, target, by_s, phase), lo, hi)
         if T == T:
             return T

@@ -54,7 +54,7 @@ def _check(func: str, **inputs: float) -> None:
             raise _error(func, "input is not a finite number", **inputs)
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class SatState:
     """Saturation line at one pressure, with derivatives along it.
 
@@ -63,6 +63,8 @@ class SatState:
     [J/(kg K Pa)]; dv_f_dp, dv_g_dp [m3/(kg Pa)]. Derivatives are central
     differences of the IF97 saturation states (one-sided next to the triple or
     critical point).
+
+    Read-only by convention (not a frozen dataclass: see :class:`PHState`).
     """
 
     p: float
@@ -82,7 +84,10 @@ class SatState:
     dv_g_dp: float
 
 
-@dataclass(frozen=True, slots=True)
+_UNSET: Any = None  # PHState(..., x=_UNSET ...): computed on first access
+
+
+@dataclass(slots=True, init=False)
 class PHState:
     """State fixed by pressure p [Pa] and specific enthalpy h [J/kg].
 
@@ -91,9 +96,15 @@ class PHState:
     two_phase. Partial derivatives at constant h (``d*_dp``, per Pa) and at
     constant p (``d*_dh``, per J/kg) of T, s, v and x.
 
-    In single phase ``dx_dp`` (four saturation evaluations) is computed on first
-    access by the :class:`~twin.properties.Water` that made the state (so read it
-    in that Water's thread); ``dataclasses.replace`` copies it as it stands.
+    Away from the saturation lines x and dx_dh (two saturation evaluations) and
+    dx_dp (four more) are computed on first access by the
+    :class:`~twin.properties.Water` that made the state (so read them in that
+    Water's thread) and then stored; ``dataclasses.replace`` copies them (reading
+    them first). The result is the same number as an eager computation.
+
+    Read-only by convention: not a frozen dataclass, because a frozen
+    dataclass's ``__init__`` (one ``object.__setattr__`` per field) costs about
+    nine times a plain one, and a state is made for every stream evaluation.
     """
 
     p: float
@@ -110,28 +121,63 @@ class PHState:
     ds_dh: float
     dv_dp: float
     dv_dh: float
-    _dx_dp: float | None = field(compare=False)
-    dx_dh: float = field(default=math.nan)
-    _water: Any = field(default=None, compare=False, repr=False)
+    dx_dp: float
+    dx_dh: float
+    _water: Any = field(compare=False, repr=False)
 
-    @property
-    def dx_dp(self) -> float:
-        """(∂x/∂p)_h [1/Pa]."""
-        d = self._dx_dp
-        if d is None:
-            d = self._water._dx_dp(self.p, self.x, self.dx_dh)
-            object.__setattr__(self, "_dx_dp", d)
-            object.__setattr__(self, "_water", None)
-        return d
+    def __init__(self, p: float, h: float, T: float, s: float, v: float, x: float, cp: float,
+                 two_phase: bool, dT_dp: float, dT_dh: float, ds_dp: float, ds_dh: float,
+                 dv_dp: float, dv_dh: float, dx_dp: float = _UNSET, dx_dh: float = _UNSET,
+                 _water: Any = None) -> None:
+        self.p = p
+        self.h = h
+        self.T = T
+        self.s = s
+        self.v = v
+        self.cp = cp
+        self.two_phase = two_phase
+        self.dT_dp = dT_dp
+        self.dT_dh = dT_dh
+        self.ds_dp = ds_dp
+        self.ds_dh = ds_dh
+        self.dv_dp = dv_dp
+        self.dv_dh = dv_dh
+        self._water = _water
+        # a lazy field is left unset: reading it calls __getattr__ once
+        if x is not _UNSET:
+            self.x = x
+        if dx_dp is not _UNSET:
+            self.dx_dp = dx_dp
+        if dx_dh is not _UNSET:
+            self.dx_dh = dx_dh
+
+    def __getattr__(self, name: str) -> float:
+        """Compute a lazy field (x, dx_dh: the lever rule at p; dx_dp: the line's slopes)."""
+        if name in ("x", "dx_dh", "dx_dp"):
+            water = self._water
+            if water is None:
+                raise AttributeError(f"PHState.{name} was not set and no Water can compute it")
+            try:
+                x = object.__getattribute__(self, "x")
+                dx_dh = object.__getattribute__(self, "dx_dh")
+            except AttributeError:
+                x, hf, hg = water._lever(self.p, self.h)
+                dx_dh = 1.0 / (hg - hf)
+                self.x, self.dx_dh = x, dx_dh
+            if name == "dx_dp":
+                self.dx_dp = water._dx_dp(self.p, x, dx_dh)
+            return float(object.__getattribute__(self, name))
+        raise AttributeError(name)
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class PSState:
     """State fixed by pressure p [Pa] and specific entropy s [J/(kg K)].
 
     h [J/kg], T [K], v [m3/kg], x [-] (equivalent quality, NaN for p >= P_CRIT),
     two_phase, and the exact partials dh_dp = v [m3/kg] (at constant s) and
-    dh_ds = T [K] (at constant p), from dh = T ds + v dp.
+    dh_ds = T [K] (at constant p), from dh = T ds + v dp. Read-only by convention
+    (not a frozen dataclass: see :class:`PHState`).
     """
 
     p: float

@@ -7,8 +7,10 @@ import math
 from collections.abc import Callable
 from typing import Any
 
+from twin.properties.backend import PQ as _PQ
 from twin.properties.backend import PT as _PT
 from twin.properties.base import _diff
+from twin.properties.guess import line_side
 from twin.properties.inverse import WaterInverse
 from twin.properties.states import (
     _DP_REL,
@@ -17,6 +19,7 @@ from twin.properties.states import (
     _NAN,
     _NOLINE,
     _T_LO,
+    _UNSET,
     _VAP,
     P_CRIT,
     P_TRIPLE,
@@ -35,6 +38,11 @@ _T_REGION13 = 623.15  # [K] IAPWS-IF97 region 1 / 3 boundary
 # [K] below this, liquid (∂v/∂T)_p may be negative (density maximum 277.13 K at 0.1 MPa,
 # lower at higher pressure [memory]); there it comes from central differences
 _T_DENSITY_MAX = 300.0
+_INF = math.inf
+# [K] beyond this from T_sat neither derivative stencil reaches the saturation line (the T
+# step is 0.01 K; p_sat(T) is more than 1 % from p there, the p step 0.01 %), so ph() skips
+# the p_sat(T) bound of _dv_stencils
+_FAR_K = 1.0
 
 
 class Water(WaterInverse):
@@ -50,18 +58,31 @@ class Water(WaterInverse):
 
     __slots__ = ()
 
-    def ph(self, p: float, h: float) -> PHState:
+    def ph(self, p: float, h: float, T_guess: float | None = None) -> PHState:
         """Full state and partial derivatives at pressure p [Pa], enthalpy h [J/kg].
 
-        Single phase: the forward-equation temperature (table start, chord
+        ``T_guess`` [K], optional: a temperature near the answer, typically the
+        ``T`` of the same stream's state at the previous evaluation
+        (``water.ph(p, h, T_guess=previous.T)``). The forward-equation
+        refinement then starts from it instead of the start table; the result
+        is the same state (T to the refinement's tolerance, 1e-7 K, which
+        leaves every field within ~1e-10 relative). A guess on the other side
+        of the saturation line, NaN, or one that does not converge quickly is
+        ignored (the table start is used), so any number is safe to pass.
+
+        Single phase: the forward-equation temperature (start, chord
         refinement; see :meth:`_single_T`), then (p, T) getters. Derivatives
         from dh = T ds + v dp (ds_dh = 1/T, ds_dp = -v/T), dT_dh = 1/cp,
         dT_dp = -(∂h/∂p)_T/cp with (∂h/∂p)_T = v - T(∂v/∂T)_p; in region-1
         liquid (∂v/∂p)_T = -(cp/cv) v²/w² and (∂v/∂T)_p = sqrt(-(∂v/∂p)_T (cp - cv)/T)
         (a central difference in T below 300 K, where its sign is not known),
         elsewhere central differences for (∂v/∂T)_p (±0.01 K) and (∂v/∂p)_T
-        (±1e-4 p), one-sided where a step would cross the saturation line;
-        dx_dp on first access.
+        (±1e-4 p), one-sided where a step would cross the saturation line.
+        Where the line table of :mod:`twin.properties.guess` shows the state
+        well inside one phase, the saturation line is not evaluated: x, dx_dh
+        and dx_dp are computed on first access (the same numbers); next to the
+        lines the exact phase test on the line decides, x and dx_dh are eager
+        and dx_dp on first access.
         Two-phase (|x| up to X_SATURATED outside [0, 1] included, so that a
         saturated state a rounding error off the line reads as saturated): lever
         rule on the saturation line (s, v and their partials
@@ -70,27 +91,35 @@ class Water(WaterInverse):
         is the (extrapolated) equivalent quality, dx_dh = 1/(h_g - h_f),
         dx_dp = -(dh_f/dp (1 - x) + x dh_g/dp)/(h_g - h_f); NaN at p >= P_CRIT.
         """
-        _check("ph", p=p, h=h)
-        x = dx_dh = _NAN
-        dx_dp: float | None = _NAN
+        if not (-_INF < p < _INF and -_INF < h < _INF):
+            _check("ph", p=p, h=h)
+        try:
+            return self._ph(p, h, T_guess)
+        except (ValueError, IndexError) as exc:  # CoolProp range errors
+            if isinstance(exc, PropertyError):
+                raise
+            raise _range_error("ph", exc, p=p, h=h) from None
+
+    def _ph(self, p: float, h: float, T_guess: float | None) -> PHState:
+        x = dx_dh = dx_dp = _UNSET
+        up, rho = self._up, self._rho
         if P_TRIPLE <= p < P_CRIT:
-            try:
+            phase = line_side(p, h, False)
+            if phase < 0:  # next to a line: the exact test on the saturation line
                 tsat, hf, hg = self._sat_h(p)
                 hfg = hg - hf
                 x = (h - hf) / hfg
                 dx_dh = 1.0 / hfg
                 if -X_SATURATED <= x <= 1.0 + X_SATURATED:
                     return self._ph_wet(p, h, x, dx_dh)
-            except (ValueError, IndexError) as exc:
-                if isinstance(exc, PropertyError):
-                    raise
-                raise _range_error("ph", exc, p=p, h=h) from None
-            phase = _LIQ if x < 0.0 else _VAP
-            dx_dp = None  # computed on first access (PHState.dx_dp)
+                phase = _LIQ if x < 0.0 else _VAP
+            else:
+                up(_PQ, p, 0.0)
+                tsat = self._t()
         else:
             phase, tsat = _NOLINE, _NAN
-        T = self._single_T("ph", p, h, False, phase, tsat)
-        up, rho = self._up, self._rho
+            x = dx_dh = dx_dp = _NAN
+        T = self._single_T("ph", p, h, False, phase, tsat, T_guess)
         up(_PT, p, T)
         s, v, cp = self._s(), 1.0 / rho(), self._cp()
         if phase != _VAP and T <= _T_REGION13:
@@ -104,6 +133,17 @@ class Water(WaterInverse):
                 dv_dT = math.sqrt(max(-dv_dp_T * (cp - cv) / T, 0.0))
             else:
                 dv_dT = self._dv_dT_stencil(p, T, tsat if tsat == tsat else math.inf)
+        elif abs(T - tsat) > _FAR_K or tsat != tsat:
+            # central differences as in _dv_stencils (which see), inlined: no bound is reached
+            dp = _DP_REL * p
+            up(_PT, p, T + _DT)
+            a = 1.0 / rho()
+            up(_PT, p, T - _DT)
+            dv_dT = (a - 1.0 / rho()) / (2.0 * _DT)
+            up(_PT, p + dp, T)
+            a = 1.0 / rho()
+            up(_PT, p - dp, T)
+            dv_dp_T = (a - 1.0 / rho()) / (2.0 * dp)
         else:
             dv_dT, dv_dp_T = self._dv_stencils(p, T, tsat, phase == _LIQ)
         dT_dp = -(v - T * dv_dT) / cp
@@ -169,9 +209,9 @@ def _guarded(name: str, method: Callable[..., Any]) -> Callable[..., Any]:
     """Turn any CoolProp range error escaping ``method`` into a PropertyError naming the inputs."""
 
     @functools.wraps(method)
-    def wrapper(self: Water, *args: float) -> Any:
+    def wrapper(self: Water, *args: float, **kwargs: float | None) -> Any:
         try:
-            return method(self, *args)
+            return method(self, *args, **kwargs)
         except PropertyError:
             raise
         except (ValueError, IndexError) as exc:
@@ -182,5 +222,5 @@ def _guarded(name: str, method: Callable[..., Any]) -> Callable[..., Any]:
 
 
 for _name in ("s_pT", "v_pT", "cp_pT", "w_pT", "dh_dp_T", "T_ph", "s_ph", "v_ph", "x_ph", "h_ps",
-              "T_sat", "p_sat", "h_f", "h_g", "s_f", "s_g", "v_f", "v_g", "sat", "ph", "ps"):  # h_pT maps its own
+              "T_sat", "p_sat", "h_f", "h_g", "s_f", "s_g", "v_f", "v_g", "sat", "ps"):  # h_pT, ph map their own
     setattr(Water, _name, _guarded(_name, getattr(Water, _name)))
