@@ -107,6 +107,11 @@ def test_unobservable_functionals_are_nan_and_pickled_results_still_answer():
                                r.cov_z[np.ix_(r.measured[:2], r.measured[:2])], rtol=1e-10)
     again = pickle.loads(pickle.dumps(r))
     np.testing.assert_array_equal(again.functional_covariance(G), C)
+    # a "none" solve factors its final system on the first request, also after pickling
+    none = reconcile(net.system, net.z0, net.measured, net.y, np.diag(net.V), options=SolveOptions(covariance="none"))
+    assert np.isnan(none.var_x).all()
+    for res in (none, pickle.loads(pickle.dumps(none))):
+        np.testing.assert_allclose(res.functional_covariance(G), C, rtol=1e-9, equal_nan=True)
 
 
 def test_functional_covariance_matches_the_dense_closed_form():

@@ -30,8 +30,12 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from twin.reconcile.kkt import ScaledKKT
+from twin.reconcile.kkt import KKTFactorisationError, ScaledKKT
 from twin.reconcile.linear import REDUNDANCY_FLOOR, _build_result, _solve, classify
+
+
+def _unavailable() -> ScaledKKT:
+    raise KKTFactorisationError("the final KKT system could not be factored")
 
 
 class LinearisedCovariance:
@@ -75,8 +79,16 @@ class LinearisedCovariance:
     def __getstate__(self) -> dict:
         state = dict(self.__dict__)
         state["_kkt_source"] = None
-        state["_kkt"] = self.kkt  # ScaledKKT pickles without its factorisation
+        try:
+            state["_kkt"] = self.kkt  # ScaledKKT pickles without its factorisation
+        except KKTFactorisationError:
+            state["_kkt"] = None  # answers NaN after loading
         return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        if self._kkt is None:
+            self._kkt_source = _unavailable
 
     def _rhs(self, G) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """``a`` (n, k), ``b`` (p, k) and the rows of ``G`` that touch an unobservable variable."""

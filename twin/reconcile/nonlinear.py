@@ -260,13 +260,17 @@ class Result:
         was (``"diagonal"`` is the cheap mode for callers that read only this and the
         measured variances); the dense method from ``cov_z`` (needs ``"full"``). Rows and
         columns of functionals with a non-zero coefficient on an unobservable variable
-        are NaN (as those variables' rows of ``cov_z``).
+        are NaN (as those variables' rows of ``cov_z``); all NaN when the solve failed
+        or the final system cannot be factored.
         """
+        k = 1 if np.ndim(G) == 1 else G.shape[0]
         if not self.converged:
-            k = 1 if np.ndim(G) == 1 else G.shape[0]
             return np.full((k, k), np.nan)
         if self.covariance_operator is not None:
-            return self.covariance_operator.functional_covariance(G)
+            try:
+                return self.covariance_operator.functional_covariance(G)
+            except KKTFactorisationError:  # "none" mode: the final system is factored on first use
+                return np.full((k, k), np.nan)
         return dense_functional_covariance(G, self.cov_z, self.unmeasured, self.observable)
 
     def functional_gain(self, G) -> np.ndarray:
