@@ -75,6 +75,7 @@ class Equipment:
         self.id: str = cfg.id
         self.ports: dict[str, str | list[str]] = dict(cfg.ports)
         self.params: dict[str, Any] = dict(cfg.params)
+        self._relations: dict[str, str] = {}
 
     # ----------------------------------------------------------- structure
     def port(self, name: str) -> str:
@@ -97,7 +98,11 @@ class Equipment:
         return ()
 
     def relation(self, rel: str) -> str:
-        return f"{self.id}.{rel}"
+        """The row name ``<id>.<rel>``; the same string object every call (a cheap layout guard)."""
+        name = self._relations.get(rel)
+        if name is None:
+            name = self._relations[rel] = f"{self.id}.{rel}"
+        return name
 
     # ----------------------------------------------------------- equations
     def balances(self, ctx: Context, rows: Rows) -> None:

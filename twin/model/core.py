@@ -12,7 +12,9 @@ Each row has a name (``"<equipment>.<relation>"``), a set (``"balance"`` or
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass, field, replace
+from itertools import chain
 
 import numpy as np
 import scipy.sparse as sp
@@ -34,48 +36,36 @@ PERFORMANCE = "performance"
 class Rows:
     """Accumulates residual rows and their sparse gradients during one evaluation.
 
-    Gradients are kept in the order they were written (one run of entries per row,
-    plus entries added to earlier rows by :meth:`add_entry`); :meth:`jacobian`
-    assembles them into CSR through a :class:`SparsityPattern` when one is attached
-    (``pattern``), which is built once and reused while the entry layout repeats.
+    Each row keeps its gradient dictionary as written (plus entries added to earlier
+    rows by :meth:`add_entry`); :meth:`jacobian` flattens them once and assembles
+    CSR through a :class:`SparsityPattern` when one is attached (``pattern``): built
+    once per kind of evaluation, later evaluations only gather their values into it.
+    ``context`` is the evaluation context the rows were written from (the pattern
+    learns from it which stream states an evaluation of its kind reads, see
+    :meth:`Context.prefetch`).
     """
 
-    __slots__ = (
-        "_cols",
-        "_counts",
-        "_data",
-        "_xcols",
-        "_xdata",
-        "_xrows",
-        "names",
-        "pattern",
-        "scales",
-        "sets",
-        "values",
-    )
+    __slots__ = ("_grads", "_xcols", "_xdata", "_xrows", "context", "names", "pattern", "scales", "sets", "values")
 
-    def __init__(self, pattern: SparsityPattern | None = None) -> None:
+    def __init__(self, pattern: SparsityPattern | None = None, context: Context | None = None) -> None:
         self.names: list[str] = []
         self.sets: list[str] = []
         self.values: list[float] = []
         self.scales: list[float] = []
         self.pattern = pattern
-        self._counts: list[int] = []
-        self._cols: list[int] = []
-        self._data: list[float] = []
+        self.context = context
+        self._grads: list[dict[int, float]] = []
         self._xrows: list[int] = []
         self._xcols: list[int] = []
         self._xdata: list[float] = []
 
     def add(self, name: str, eq_set: str, value: float, grad: dict[int, float], scale: float) -> None:
-        """Append one residual ``value`` with gradient ``{column: derivative}``."""
+        """Append one residual ``value`` with gradient ``{column: derivative}`` (kept, not copied)."""
         self.names.append(name)
         self.sets.append(eq_set)
         self.values.append(float(value))
         self.scales.append(scale)
-        self._counts.append(len(grad))
-        self._cols.extend(grad)
-        self._data.extend(grad.values())
+        self._grads.append(grad)
 
     def add_entry(self, row: int, col: int, d: float) -> None:
         """Add ``d`` to the gradient of an existing row ``row`` at column ``col``."""
@@ -86,17 +76,25 @@ class Rows:
     def residuals(self) -> np.ndarray:
         return np.asarray(self.values, dtype=float)
 
+    def counts(self) -> list[int]:
+        """Number of gradient entries written with each row (not counting :meth:`add_entry`)."""
+        return list(map(len, self._grads))
+
+    def columns(self) -> list[int]:
+        """Columns of all gradient entries in the order written (rows' own, then added ones)."""
+        return [*chain.from_iterable(self._grads), *self._xcols]
+
+    def data(self) -> list[float]:
+        """Values of all gradient entries, in the order of :meth:`columns`."""
+        return [*chain.from_iterable(map(dict.values, self._grads)), *self._xdata]
+
     def entries(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """All gradient entries as ``(rows, cols, values)`` in the order written."""
-        counts = np.asarray(self._counts, dtype=np.int64)
+        counts = np.asarray(self.counts(), dtype=np.int64)
         r = np.repeat(np.arange(counts.size, dtype=np.int64), counts)
-        c = np.asarray(self._cols, dtype=np.int64)
-        d = np.asarray(self._data, dtype=float)
         if self._xrows:
             r = np.concatenate([r, np.asarray(self._xrows, dtype=np.int64)])
-            c = np.concatenate([c, np.asarray(self._xcols, dtype=np.int64)])
-            d = np.concatenate([d, np.asarray(self._xdata, dtype=float)])
-        return r, c, d
+        return r, np.asarray(self.columns(), dtype=np.int64), np.asarray(self.data(), dtype=float)
 
     def jacobian(self, n_vars: int) -> sp.csr_matrix:
         """The gradient rows as a sparse matrix; repeated entries are summed."""
@@ -109,57 +107,76 @@ class Rows:
 class SparsityPattern:
     """The CSR structure of a Jacobian whose entries are written in a fixed order.
 
-    The first :meth:`assemble` sorts the entries into CSR (summing repeated
-    ones) and remembers where each entry lands; later calls with the same entry
-    layout (same rows, columns and order; checked every call) only scatter the
-    values into that structure. A different layout rebuilds the pattern
-    (counted in ``rebuilds``).
+    The first :meth:`assemble` sorts the entries into CSR (summing repeated ones)
+    and remembers where each entry lands; later calls only gather the values into
+    that structure. The guard is cheap: the counts of rows, entries and added
+    entries, the column count and the row names (the same string objects every call
+    for the equipment rows, see :meth:`twin.model.base.Equipment.relation`); a
+    different layout rebuilds the pattern (counted in ``rebuilds``). The columns of a
+    named row depend only on the plant, the constants and the equipment code, not on
+    the state, so a layout that passes the guard has the same columns; with
+    ``verify`` set (tests) every call also compares the columns entry by entry and
+    raises if the guard missed a change.
+
+    It also keeps ``states``: the streams whose property state evaluations of this
+    kind read (learned from the rows' context), which the next evaluation computes
+    in one pass up front (:meth:`Context.prefetch`).
     """
+
+    #: Compare every entry's row and column with the kept structure on every call (tests).
+    verify = False
 
     def __init__(self) -> None:
         self.rebuilds = 0
-        self._counts: np.ndarray | None = None
-        self._cols = np.empty(0, dtype=np.int64)
-        self._xrows = np.empty(0, dtype=np.int64)
+        self.states: tuple[int, ...] = ()
+        self._state_set: frozenset[int] = frozenset()
+        self._signature: tuple[int, int, int, int] | None = None
+        self._names: list[str] = []
+        self._layout: tuple[list[int], list[int], list[int]] = ([], [], [])
         self._shape = (0, 0)
+        self._gather = np.empty(0, dtype=np.int64)
         self._slot = np.empty(0, dtype=np.int64)
         self._indices = np.empty(0, dtype=np.int32)
         self._indptr = np.empty(0, dtype=np.int32)
         self._unique = True
 
-    def _matches(self, counts: np.ndarray, cols: np.ndarray, xrows: np.ndarray, shape: tuple[int, int]) -> bool:
-        return (self._counts is not None and shape == self._shape and np.array_equal(counts, self._counts)
-                and np.array_equal(cols, self._cols) and np.array_equal(xrows, self._xrows))
-
     def assemble(self, rows: Rows, n_vars: int) -> sp.csr_matrix:
         """The Jacobian of ``rows`` over ``n_vars`` columns (CSR, sorted, no repeated entries)."""
-        m = len(rows.values)
-        counts = np.asarray(rows._counts, dtype=np.int64)
-        cols = np.asarray(rows._cols + rows._xcols, dtype=np.int64)
-        xrows = np.asarray(rows._xrows, dtype=np.int64)
-        data = np.asarray(rows._data + rows._xdata, dtype=float)
-        if not self._matches(counts, cols, xrows, (m, n_vars)):
-            self._build(counts, cols, xrows, (m, n_vars))
-        nnz = self._indices.size
+        data = rows.data()
+        signature = (len(rows.values), n_vars, len(data), len(rows._xdata))
+        if signature != self._signature or rows.names != self._names:
+            self._build(rows, signature)
+        elif self.verify and self._layout != (rows.counts(), rows.columns(), rows._xrows):
+            raise RuntimeError("SparsityPattern: the entry layout changed but the guard (counts, row names) passed")
+        if rows.context is not None:
+            self._learn(rows.context)
         values: np.ndarray
         if self._unique:
-            values = np.empty(nnz)
-            values[self._slot] = data
+            values = np.asarray(data, dtype=float)[self._gather]
         else:
-            values = np.bincount(self._slot, weights=data, minlength=nnz).astype(float)
-        return sp.csr_matrix((values, self._indices.copy(), self._indptr.copy()), shape=(m, n_vars))
+            values = np.bincount(self._slot, weights=data, minlength=self._indices.size).astype(float)
+        return sp.csr_matrix((values, self._indices.copy(), self._indptr.copy()), shape=self._shape)
 
-    def _build(self, counts: np.ndarray, cols: np.ndarray, xrows: np.ndarray, shape: tuple[int, int]) -> None:
-        m, n_vars = shape
-        r = np.concatenate([np.repeat(np.arange(m, dtype=np.int64), counts), xrows])
-        key = r * max(n_vars, 1) + cols
+    def _build(self, rows: Rows, signature: tuple[int, int, int, int]) -> None:
+        m, n_vars = signature[0], signature[1]
+        r, c, _ = rows.entries()
+        key = r * max(n_vars, 1) + c
         uniq, slot = np.unique(key, return_inverse=True)
         self._slot = slot.astype(np.int64).reshape(-1)
         self._unique = uniq.size == key.size
+        # unique entries: CSR value k is written entry _gather[k] (the inverse permutation of _slot)
+        self._gather = np.argsort(self._slot, kind="stable") if self._unique else np.empty(0, dtype=np.int64)
         self._indices = (uniq % max(n_vars, 1)).astype(np.int32)
         self._indptr = np.searchsorted(uniq // max(n_vars, 1), np.arange(m + 1)).astype(np.int32)
-        self._counts, self._cols, self._xrows, self._shape = counts, cols, xrows, shape
+        self._signature, self._shape = signature, (m, n_vars)
+        self._names = list(rows.names)
+        self._layout = (rows.counts(), rows.columns(), list(rows._xrows))
         self.rebuilds += 1
+
+    def _learn(self, ctx: Context) -> None:
+        if not ctx._ph.keys() <= self._state_set:
+            self._state_set = self._state_set.union(ctx._ph)
+            self.states = tuple(sorted(self._state_set))
 
 
 def add_grad(grad: dict[int, float], col: int, d: float) -> None:
@@ -170,9 +187,10 @@ def add_grad(grad: dict[int, float], col: int, d: float) -> None:
 class Context:
     """Read access to ``z`` by stream name, with cached property states.
 
-    One context serves one evaluation of the equations at one ``z``; property
-    states of a stream are computed once and shared by every equation that
-    needs them.
+    One context serves one evaluation of the equations at one ``z`` (``z`` is read
+    once, when the context is made: change it through :meth:`with_value`, not in
+    place); property states of a stream are computed once and shared by every
+    equation that needs them.
     """
 
     def __init__(self, layout: Layout, z: np.ndarray, water: Water, constants: dict) -> None:
@@ -182,24 +200,45 @@ class Context:
         self.constants = constants
         self._ph: dict[int, PHState] = {}
         self._sat: dict[float, SatState] = {}
+        # z as Python floats: the stream accessors below are read hundreds of times per evaluation
+        self._zl: list[float] = np.asarray(z, dtype=float).tolist()
 
     def m(self, stream: str) -> float:
-        return float(self.z[self.layout.m(stream)])
+        return self._zl[self.layout._m[stream]]
 
     def p(self, stream: str) -> float:
-        return float(self.z[self.layout.p(stream)])
+        return self._zl[self.layout._p[stream]]
 
     def h(self, stream: str) -> float:
-        return float(self.z[self.layout.h(stream)])
+        return self._zl[self.layout._h[stream]]
 
     def ph(self, stream: str) -> PHState:
         """Property state of a stream at its (p, h), cached for this evaluation."""
-        k = self.layout.stream_index[stream]
+        k = self.layout._stream_index[stream]
         st = self._ph.get(k)
         if st is None:
-            st = self.water.ph(self.p(stream), self.h(stream))
+            zl = self._zl
+            st = self.water.ph(zl[3 * k + 1], zl[3 * k + 2])
             self._ph[k] = st
         return st
+
+    def prefetch(self, streams: Iterable[int]) -> None:
+        """Compute the property states of ``streams`` (indices into the layout) in one pass.
+
+        :meth:`Flowsheet.evaluate <twin.model.flowsheet.Flowsheet.evaluate>` calls it at
+        the start of an evaluation with the streams the previous evaluation of the same
+        kind read, so the states come from one loop instead of one by one from inside
+        the equations; each is exactly the state :meth:`ph` would compute. A stream
+        whose state cannot be computed (outside the property range) is left to
+        :meth:`ph`, so the error is raised where, and only if, the state is read.
+        """
+        cache, zl, ph = self._ph, self._zl, self.water.ph
+        for k in streams:
+            if k not in cache:
+                try:
+                    cache[k] = ph(zl[3 * k + 1], zl[3 * k + 2])
+                except ValueError:
+                    continue
 
     def sat(self, pressure: float) -> SatState:
         """Saturation state at pressure [Pa], cached for this evaluation."""
@@ -289,6 +328,9 @@ class Layout:
     extras: tuple[str, ...]
     _stream_index: dict[str, int] = field(init=False, repr=False, compare=False)
     _extra_index: dict[str, int] = field(init=False, repr=False, compare=False)
+    _m: dict[str, int] = field(init=False, repr=False, compare=False)
+    _p: dict[str, int] = field(init=False, repr=False, compare=False)
+    _h: dict[str, int] = field(init=False, repr=False, compare=False)
 
     @property
     def stream_index(self) -> dict[str, int]:
@@ -299,19 +341,21 @@ class Layout:
         object.__setattr__(
             self, "_extra_index", {e: 3 * len(self.streams) + i for i, e in enumerate(self.extras)}
         )
+        for q, offset in (("_m", 0), ("_p", 1), ("_h", 2)):  # column of each stream's m, p, h
+            object.__setattr__(self, q, {s: 3 * i + offset for i, s in enumerate(self.streams)})
 
     @property
     def n_vars(self) -> int:
         return 3 * len(self.streams) + len(self.extras)
 
     def m(self, stream: str) -> int:
-        return 3 * self._stream_index[stream]
+        return self._m[stream]
 
     def p(self, stream: str) -> int:
-        return 3 * self._stream_index[stream] + 1
+        return self._p[stream]
 
     def h(self, stream: str) -> int:
-        return 3 * self._stream_index[stream] + 2
+        return self._h[stream]
 
     def extra(self, name: str) -> int:
         return self._extra_index[name]

@@ -131,6 +131,7 @@ class Flowsheet:
         specs: Sequence[Spec] = (),
         constants: dict | None = None,
         context: Context | None = None,
+        fixed_pattern: bool = True,
     ) -> Rows:
         """Residuals and gradients of the balances, performance relations and specs at ``z``.
 
@@ -149,6 +150,11 @@ class Flowsheet:
         context : Context, optional
             The evaluation context at this ``z`` (with ``constants``) when the caller shares
             its property cache; a new one otherwise.
+        fixed_pattern : bool
+            Attach the :class:`SparsityPattern` kept for this kind of evaluation and compute
+            the stream states it read last time in one pass first (the default); False
+            gives the straightforward evaluation (states read lazily, Jacobian from
+            coordinate triplets), the reference the fast path is tested against.
 
         Returns
         -------
@@ -158,13 +164,17 @@ class Flowsheet:
         """
         ctx = context if context is not None else self.context(z, constants)
         skipped = frozenset(skip)
-        key = (performance, skipped, tuple(spec.name for spec in specs))
-        pattern = self._patterns.get(key)
-        if pattern is None:
-            if len(self._patterns) > 64:
-                self._patterns.clear()
-            pattern = self._patterns[key] = SparsityPattern()
-        rows = Rows(pattern)
+        if fixed_pattern:
+            key = (performance, skipped, tuple(spec.name for spec in specs))
+            pattern = self._patterns.get(key)
+            if pattern is None:
+                if len(self._patterns) > 64:
+                    self._patterns.clear()
+                pattern = self._patterns[key] = SparsityPattern()
+            ctx.prefetch(pattern.states)  # every stream state this kind of evaluation reads, in one pass
+            rows = Rows(pattern, ctx)
+        else:
+            rows = Rows()
         for e in self.equipment:
             e.balances(ctx, rows)
         if performance:
