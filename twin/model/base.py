@@ -76,12 +76,16 @@ class Equipment:
         self.ports: dict[str, str | list[str]] = dict(cfg.ports)
         self.params: dict[str, Any] = dict(cfg.params)
         self._relations: dict[str, str] = {}
+        self._single_ports = {k: v for k, v in self.ports.items() if isinstance(v, str)}
 
     # ----------------------------------------------------------- structure
     def port(self, name: str) -> str:
-        value = self.ports[name]
-        assert isinstance(value, str)
-        return value
+        try:
+            return self._single_ports[name]
+        except KeyError:
+            value = self.ports[name]
+            assert isinstance(value, str)
+            return value
 
     def port_list(self, name: str) -> list[str]:
         value = self.ports.get(name, [])
@@ -135,10 +139,12 @@ class Equipment:
         value = 0.0
         for s in inlets:
             value += ctx.m(s)
-            grad[lay.m(s)] = grad.get(lay.m(s), 0.0) + 1.0
+            col = lay.m(s)
+            grad[col] = grad.get(col, 0.0) + 1.0
         for s in outlets:
             value -= ctx.m(s)
-            grad[lay.m(s)] = grad.get(lay.m(s), 0.0) - 1.0
+            col = lay.m(s)
+            grad[col] = grad.get(col, 0.0) - 1.0
         rows.add(self.relation(rel), BALANCE, value, grad, SCALE_MASS)
 
     def energy_sum(
@@ -153,6 +159,7 @@ class Equipment:
             for s in streams:
                 m, h = ctx.m(s), ctx.h(s)
                 value += sign * m * h
-                grad[lay.m(s)] = grad.get(lay.m(s), 0.0) + sign * h
-                grad[lay.h(s)] = grad.get(lay.h(s), 0.0) + sign * m
+                cm, ch = lay.m(s), lay.h(s)
+                grad[cm] = grad.get(cm, 0.0) + sign * h
+                grad[ch] = grad.get(ch, 0.0) + sign * m
         rows.add(self.relation(rel), BALANCE, value, grad, SCALE_ENERGY_FLOW)

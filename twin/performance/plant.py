@@ -405,30 +405,31 @@ class PlantSystem:
             ctx = fs.context(z, self.constants)
         rows = fs.evaluate(z, skip=self._skip, constants=self.constants, context=ctx)
         scales = list(rows.scales)
+        zl = np.asarray(z, dtype=float).tolist()  # Python floats: the same numbers, cheaper to read one by one
         # soft relations: r_j(z) − e_j = 0
         for i, name in enumerate(rows.names):
             r = self.soft_by_name.get(name)
             if r is not None:
-                rows.values[i] -= float(z[r.column])
+                rows.values[i] -= zl[r.column]
                 rows.add_entry(i, r.column, -1.0)
         lay = fs.layout
         for col, r in self._levels:
-            rows.add(r.name, "performance", z[col] - 1.0 - z[r.column], {col: 1.0, r.column: -1.0}, 1.0)
+            rows.add(r.name, "performance", zl[col] - 1.0 - zl[r.column], {col: 1.0, r.column: -1.0}, 1.0)
             scales.append(1.0)
         for e, r in self._supply:
             out = e.port("outlet")
             col = lay.p(out)
-            rows.add(r.name, "performance", z[col] - float(self.design.z[col]) - z[r.column],
+            rows.add(r.name, "performance", zl[col] - float(self.design.z[col]) - zl[r.column],
                      {col: 1.0, r.column: -1.0}, 1e5)
             scales.append(1e5)
         for b in self.sensors:
             if b.kind == "T":
                 T, dT_dp, dT_dh = sensor_temperature(ctx, b.target)
-                rows.add(f"sensor.{b.tag}", "sensor", z[b.column] - T,
+                rows.add(f"sensor.{b.tag}", "sensor", zl[b.column] - T,
                          {b.column: 1.0, lay.p(b.target): -dT_dp, lay.h(b.target): -dT_dh}, 10.0)
             else:
                 scale = max(abs(float(self.design.z[b.target_column])) if b.target_column < self.n_model else 300.0, 1.0)
-                rows.add(f"sensor.{b.tag}", "sensor", z[b.column] - z[b.target_column],
+                rows.add(f"sensor.{b.tag}", "sensor", zl[b.column] - zl[b.target_column],
                          {b.column: 1.0, b.target_column: -1.0}, scale)
             scales.append(rows.scales[-1])
         return rows, scales
