@@ -127,3 +127,15 @@ def test_straightforward_rows_keep_no_pattern(system):
     J = rows.jacobian(system.fs.n_vars)
     assert isinstance(J, sp.csr_matrix)
     np.testing.assert_array_equal(J.toarray(), _dense(rows, system.fs.n_vars))
+
+
+def test_warm_started_states_match_the_table_started_reference():
+    # each stream's state started from its previous temperature (Flowsheet(warm_start=True));
+    # reference: the straightforward evaluation, every state from the start table
+    from twin.model.flowsheet import Flowsheet
+
+    _, _, design = demo_design()
+    fs = Flowsheet.from_config(demo_config(), warm_start=True)
+    warm = PlantSystem(fs, demo_config().sensors, design)
+    assert _compare(warm, random_states(warm, 100, seed=23)) >= 90
+    assert fs.previous_T is not None and sum(t == t for t in fs.previous_T) >= 30  # the states were read warm

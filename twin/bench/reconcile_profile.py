@@ -124,7 +124,7 @@ def straightforward_evaluation(ps: Any, z: np.ndarray) -> tuple[np.ndarray, Any]
             r.append(i)
             c.append(soft.column)
             d.append(-1.0)
-    ctx = fs.context(z, ps.constants)
+    ctx = fs.context(z, ps.constants, warm=False)
     lay = fs.layout
 
     def add(value: float, grad: dict[int, float]) -> None:

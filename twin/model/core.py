@@ -193,11 +193,15 @@ class Context:
     equation that needs them.
     """
 
-    def __init__(self, layout: Layout, z: np.ndarray, water: Water, constants: dict) -> None:
+    def __init__(self, layout: Layout, z: np.ndarray, water: Water, constants: dict,
+                 previous_T: list[float] | None = None) -> None:
         self.layout = layout
         self.z = z
         self.water = water
         self.constants = constants
+        # each stream's last computed temperature [K], the Newton start of its next state
+        # (shared by the contexts of one flowsheet; None: every state from the start table)
+        self.previous_T = previous_T
         self._ph: dict[int, PHState] = {}
         self._sat: dict[float, SatState] = {}
         # z as Python floats: the stream accessors below are read hundreds of times per evaluation
@@ -217,8 +221,12 @@ class Context:
         k = self.layout._stream_index[stream]
         st = self._ph.get(k)
         if st is None:
-            zl = self._zl
-            st = self.water.ph(zl[3 * k + 1], zl[3 * k + 2])
+            zl, tp = self._zl, self.previous_T
+            if tp is None:
+                st = self.water.ph(zl[3 * k + 1], zl[3 * k + 2])
+            else:
+                st = self.water.ph(zl[3 * k + 1], zl[3 * k + 2], tp[k])
+                tp[k] = st.T
             self._ph[k] = st
         return st
 
@@ -232,13 +240,16 @@ class Context:
         whose state cannot be computed (outside the property range) is left to
         :meth:`ph`, so the error is raised where, and only if, the state is read.
         """
-        cache, zl, ph = self._ph, self._zl, self.water.ph
+        cache, zl, ph, tp = self._ph, self._zl, self.water.ph, self.previous_T
         for k in streams:
             if k not in cache:
                 try:
-                    cache[k] = ph(zl[3 * k + 1], zl[3 * k + 2])
+                    st = ph(zl[3 * k + 1], zl[3 * k + 2]) if tp is None else ph(zl[3 * k + 1], zl[3 * k + 2], tp[k])
                 except ValueError:
                     continue
+                cache[k] = st
+                if tp is not None:
+                    tp[k] = st.T
 
     def sat(self, pressure: float) -> SatState:
         """Saturation state at pressure [Pa], cached for this evaluation."""
@@ -260,7 +271,7 @@ class Context:
         fresh one would; saturation states are keyed by pressure and all kept. Used where
         many nearby vectors are evaluated (finite differences, outputs at the solution).
         """
-        new = Context(self.layout, z, self.water, self.constants)
+        new = Context(self.layout, z, self.water, self.constants, self.previous_T)
         if self._ph:
             n_s = len(self.layout.streams)
             zs, zo = z[: 3 * n_s], self.z[: 3 * n_s]
@@ -308,7 +319,7 @@ class Context:
     def _shifted(self, col: int, value: float) -> Context:
         z = self.z.copy()
         z[col] = value
-        new = Context(self.layout, z, self.water, self.constants)
+        new = Context(self.layout, z, self.water, self.constants, self.previous_T)
         new._ph = dict(self._ph)
         new._sat = self._sat  # keyed by the exact pressure: valid in every context
         return new

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -84,9 +85,15 @@ class Flowsheet:
         Objects with ``id``, ``kind``, ``ports`` and ``params`` (SI, defaults filled).
     props : Water, optional
         Property calculator; the per-thread default when omitted.
+    warm_start : bool
+        Start each stream's (p, h) state from the temperature its previous state had
+        (``Water.ph(p, h, T_guess)``). The states agree with the table-started ones
+        to the refinement tolerance (~1e-10 relative), not bit for bit, so results
+        then depend, at that level, on what was evaluated before; off by default.
     """
 
-    def __init__(self, streams: Sequence[Any], equipment: Sequence[Any], props: Water | None = None) -> None:
+    def __init__(self, streams: Sequence[Any], equipment: Sequence[Any], props: Water | None = None,
+                 warm_start: bool = False) -> None:
         self.water = props or water()
         self.stream_configs = {s.id: s for s in streams}
         self.equipment: list[Equipment] = []
@@ -101,12 +108,13 @@ class Flowsheet:
                 e.members = [self.by_id[t] for t in e.params["turbines"]]
         extras = tuple(x for e in self.equipment for x in e.extras())
         self.layout = Layout(tuple(s.id for s in streams), extras)
+        self.previous_T: list[float] | None = [math.nan] * len(self.layout.streams) if warm_start else None
         # one Jacobian structure per kind of evaluation (performance, skipped relations, specs)
         self._patterns: dict[tuple, SparsityPattern] = {}
 
     @classmethod
-    def from_config(cls, config: Any, props: Water | None = None) -> Flowsheet:
-        return cls(config.streams, config.equipment, props)
+    def from_config(cls, config: Any, props: Water | None = None, warm_start: bool = False) -> Flowsheet:
+        return cls(config.streams, config.equipment, props, warm_start)
 
     # ------------------------------------------------------------ queries
     @property
@@ -118,8 +126,9 @@ class Flowsheet:
             return [e for e in self.equipment if e.kind == kind]
         return [e for e in self.equipment if isinstance(e, kind)]
 
-    def context(self, z: np.ndarray, constants: dict | None = None) -> Context:
-        return Context(self.layout, z, self.water, constants or {})
+    def context(self, z: np.ndarray, constants: dict | None = None, warm: bool = True) -> Context:
+        """An evaluation context at ``z``; ``warm=False``: states from the start table even with ``warm_start``."""
+        return Context(self.layout, z, self.water, constants or {}, self.previous_T if warm else None)
 
     # ------------------------------------------------------------ equations
     def evaluate(
@@ -153,8 +162,8 @@ class Flowsheet:
         fixed_pattern : bool
             Attach the :class:`SparsityPattern` kept for this kind of evaluation and compute
             the stream states it read last time in one pass first (the default); False
-            gives the straightforward evaluation (states read lazily, Jacobian from
-            coordinate triplets), the reference the fast path is tested against.
+            gives the straightforward evaluation (states read lazily from the start table,
+            Jacobian from coordinate triplets), the reference the fast path is tested against.
 
         Returns
         -------
@@ -162,7 +171,7 @@ class Flowsheet:
             With a :class:`SparsityPattern` attached that is kept per kind of evaluation, so
             the Jacobian's CSR structure is built once.
         """
-        ctx = context if context is not None else self.context(z, constants)
+        ctx = context if context is not None else self.context(z, constants, warm=fixed_pattern)
         skipped = frozenset(skip)
         if fixed_pattern:
             key = (performance, skipped, tuple(spec.name for spec in specs))
