@@ -44,8 +44,11 @@ def test_bench_reconcile_cycle_only_over_load_steps():
     assert set(out) == {"openblas_num_threads", "cycle"}
     cycle = out["cycle"]
     assert cycle["loads"] == [1.0, 0.9] and cycle["all"]["n"] == 6
-    assert {"deviation_part", "first_split_at_new_load_ms", "exact_cause_runs"} <= set(cycle)
+    assert {"deviation_part", "first_split_at_new_load_ms", "exact_cause_runs", "all_cpu"} <= set(cycle)
     assert cycle["expected_node_solves"] >= 9  # at least the first grid cell
+    split = cycle["cycle_split"]
+    assert set(split) == {"reconcile", "kpis", "expected", "deviation_by_cause", "monitors", "other"}
+    assert all({"median_ms", "p99_ms"} <= set(v) for v in split.values()) and split["kpis"]["median_ms"] > 0
 
 
 def test_bench_reconcile_rejects_bad_cycle_loads(capsys):

@@ -52,6 +52,11 @@ DRIFT_KPIS = ("section_efficiency.HP", "section_efficiency.IP", "section_efficie
 #: Version of :meth:`UnitCycle.snapshot`'s layout; a snapshot of another version is not restored.
 SNAPSHOT_VERSION = 1
 
+#: Windows the operating point stays in one cell of the expected model's grid before its
+#: expected values are interpolated there; until then they are a direct solve at the point and
+#: the cell's stencil is solved a few nodes per window (so no window solves a whole cell).
+SETTLE_WINDOWS = 5
+
 
 def suspect_alarm_name(tag: str) -> str:
     """The one name of a tag's suspect alarm: in results, on screen, in logs, metrics and MQTT events."""
@@ -100,9 +105,12 @@ class CycleOutput:
     result: CycleResult
     transitions: list[Transition]
     notes: list[tuple[str, dict[str, Any]]] = field(default_factory=list)  # (event, fields)
-    reconcile_seconds: float = math.nan
+    reconcile_seconds: float = math.nan  # the reconciliation, KPIs ± U included
     deviation_seconds: float = math.nan  # expected model and heat-rate split
     cause_model_runs: int = 0  # causes that needed an exact model run (others from stored sensitivities)
+    kpi_seconds: float = math.nan  # the KPIs ± U (part of reconcile_seconds)
+    expected_seconds: float = math.nan  # the expected values (part of deviation_seconds)
+    monitors_seconds: float = math.nan  # alarms, suspects, drift
 
 
 def window_values(config: PlantConfig, stats: Mapping[str, WindowStats]) -> tuple[dict[str, float], dict[str, str]]:
@@ -169,6 +177,7 @@ class UnitCycle:
             expected_model.start_over()
         self.expected_model = expected_model or ExpectedModel.from_config(config, fs, op, design,
                                                                           self.reconciler.settings)
+        self.expected_model.settle_windows = SETTLE_WINDOWS
         self.fs, self.op = fs, op
         self.kpi_names = tuple(d.name for d in self.reconciler.kpi_defs)
         self.steady: SteadyStateDetector | None = steady_detector(config)
@@ -220,7 +229,9 @@ class UnitCycle:
         expected = dict(dev.expected)
         if steady:
             self._steady_windows += 1
+        t_mon = time.perf_counter()
         transitions = self._update_monitors(t_end, steady, load, rec, kpis, expected)
+        t_mon = time.perf_counter() - t_mon
         result = CycleResult(
             unit_id=self.config.unit.id, window_start=t_end - window.window_seconds, window_end=t_end,
             steady=steady, steady_status=verdict.status if verdict is not None else "steady",
@@ -241,7 +252,8 @@ class UnitCycle:
         )
         if not rec.converged:
             notes.append(("reconcile_failed", {"window_end": t_end, "status": rec.status, "message": rec.message}))
-        return CycleOutput(result, transitions, notes, t_rec, t_dev, dev.model_runs)
+        return CycleOutput(result, transitions, notes, t_rec, t_dev, dev.model_runs, rec.kpi_seconds,
+                           dev.expected_seconds, t_mon)
 
     def _kpis(self, rec: PlantReconciliation) -> dict[str, Estimate]:
         """Every KPI of the plant, unavailable where the window gave no value."""
@@ -335,6 +347,8 @@ class UnitCycle:
             # the expected model's previous load (a ramp is solved directly); its node cache is not state
             "expected_last_load": _finite_or_none(self.expected_model.last_load),
             "expected_last_cw_inlet": _finite_or_none(self.expected_model.last_cw_inlet),
+            # the grid cell of the last windows and for how many in a row (when values are interpolated)
+            "expected_settle": None if self.expected_model.settle is None else list(self.expected_model.settle),
         }
 
     def restore(self, snap: Mapping[str, Any]) -> None:
@@ -359,6 +373,8 @@ class UnitCycle:
         self.expected_model.last_load = math.nan if last is None else float(last)
         last = snap.get("expected_last_cw_inlet")
         self.expected_model.last_cw_inlet = math.nan if last is None else float(last)
+        settle = snap.get("expected_settle")
+        self.expected_model.settle = None if settle is None else (int(settle[0]), int(settle[1]), int(settle[2]))
 
 
 def _finite_or_none(v: float) -> float | None:

@@ -209,7 +209,9 @@ def cycle_figures(config_path: str, cycles: int, seed: int, loads: tuple[float, 
     The cycles are spread evenly over ``loads`` (sliding pressure, in that order), so
     every change of load is a new operating point of the expected model; the first
     split window after each change (where the node's sensitivities are computed) is
-    reported apart in ``first_split_at_new_load``.
+    reported apart in ``first_split_at_new_load``. ``cycle_split`` is where each
+    cycle's time goes (medians and p99 of: reconciliation without the KPIs, KPIs ± U,
+    expected values, deviation by cause, monitors, and the rest of ``UnitCycle.run``).
     """
     from twin.config import load_config
     from twin.cycle import UnitCycle, WindowInput
@@ -224,11 +226,14 @@ def cycle_figures(config_path: str, cycles: int, seed: int, loads: tuple[float, 
     cycle_s = float(uc.cycle_seconds)
     t_end = 1_700_000_000.0
     all_t: list[float] = []
+    cpu_t: list[float] = []  # this process's CPU time per cycle (less sensitive to a shared machine)
     split_t: list[float] = []
     other_t: list[float] = []
     rec_t: list[float] = []
     dev_t: list[float] = []
     first_split: list[float] = []
+    parts: dict[str, list[float]] = {k: [] for k in ("reconcile", "kpis", "expected", "deviation_by_cause",
+                                                     "monitors", "other")}
     statuses: dict[str, int] = {}
     runs = 0
     n_cycles = max(1, cycles)
@@ -245,9 +250,10 @@ def cycle_figures(config_path: str, cycles: int, seed: int, loads: tuple[float, 
         for tag, v in truth.items():
             m = v + sig[tag] * rng.standard_normal()
             stats[tag] = WindowStats(m, sig[tag], 300, 0, t_end - 0.05, 0.05, m, m, False)
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         out = uc.run(WindowInput(t_end, float(uc.window_seconds), stats, stats))
         dt = time.perf_counter() - t0
+        cpu_t.append(time.process_time() - c0)
         res = out.result
         all_t.append(dt)
         if math.isfinite(out.reconcile_seconds):
@@ -256,6 +262,12 @@ def cycle_figures(config_path: str, cycles: int, seed: int, loads: tuple[float, 
         if math.isfinite(dev_s):
             dev_t.append(dev_s)
         runs += int(getattr(out, "cause_model_runs", 0))
+        got = {"kpis": out.kpi_seconds, "expected": out.expected_seconds, "monitors": out.monitors_seconds}
+        got["reconcile"] = out.reconcile_seconds - got["kpis"]
+        got["deviation_by_cause"] = dev_s - got["expected"]
+        got["other"] = dt - out.reconcile_seconds - dev_s - got["monitors"]
+        for key, v in got.items():
+            parts[key].append(v if math.isfinite(v) else 0.0)
         status = str(getattr(res, "heat_rate_deviation_status", "") or "").split(":")[0] or "n/a"
         statuses[status] = statuses.get(status, 0) + 1
         if res.heat_rate_deviation_by_cause:
@@ -266,8 +278,12 @@ def cycle_figures(config_path: str, cycles: int, seed: int, loads: tuple[float, 
         else:
             other_t.append(dt)
     grid = getattr(uc.expected_model, "grid", None)
-    return {"loads": list(loads), "all": _percentiles(all_t), "deviation_split": _percentiles(split_t),
+    return {"loads": list(loads), "all": _percentiles(all_t), "all_cpu": _percentiles(cpu_t),
+            "deviation_split": _percentiles(split_t),
             "without_split": _percentiles(other_t), "reconcile_part": _percentiles(rec_t),
             "deviation_part": _percentiles(dev_t), "first_split_at_new_load_ms": first_split,
             "exact_cause_runs": runs, "expected_node_solves": getattr(grid, "solves", None),
-            "deviation_status": statuses}
+            "expected_direct_solves": getattr(uc.expected_model, "direct_solves", None),
+            "deviation_status": statuses,
+            "cycle_split": {k: {"median_ms": _percentiles(v)["median_ms"], "p99_ms": _percentiles(v)["p99_ms"]}
+                            for k, v in parts.items()}}

@@ -16,9 +16,9 @@ and one residual evaluation per driver). A window's cause is then
   at once such as the feedwater heaters, or a cause without a registered driver).
 
 The work is spread: windows that are not split (not steady, e.g. while the load
-settles after a change) at the same node as the window before, the load holding, advance the node's pending sensitivity and probe work for
-:data:`PREFETCH_SECONDS` each (:func:`prefetch`); a split window finishes what is
-left. Everything stored is a function of the node alone (solved from the design point, probe
+settles after a change) at the same node as the window before advance the node's
+pending sensitivity and probe work for :data:`PREFETCH_SECONDS` each (:func:`prefetch`);
+a split window finishes what is left. Everything stored is a function of the node alone (solved from the design point, probe
 at a fixed step), so the split of a window does not depend on which windows came
 before it; ``tests/test_cause_sensitivity.py`` compares the estimates with exact runs.
 """

@@ -53,6 +53,7 @@ registered driver (``"linear"`` in its run) is always an exact run.
 from __future__ import annotations
 
 import math
+import time
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -78,7 +79,13 @@ from twin.performance.kpi import (
     interpolate_boiler_efficiency,
     kpi_definitions,
 )
-from twin.performance.operating_point import CW_STEP, LOAD_STEP, Node, OperatingPoints
+from twin.performance.operating_point import (
+    CW_STEP,
+    FILL_PER_WINDOW,
+    LOAD_STEP,
+    Node,
+    OperatingPoints,
+)
 from twin.performance.section_path import (
     SectionPath,
     expected_section_efficiency,
@@ -175,6 +182,8 @@ class WindowDeviation:
         Cause → fuel cost per hour [currency/h] at the configured fuel price (empty without one).
     model_runs : int
         Causes computed by an exact model run (the others from first-order sensitivities).
+    expected_seconds : float
+        Wall time of the expected values (grid or direct solve, section efficiencies) [s] (for the bench).
     """
 
     total: float
@@ -184,6 +193,7 @@ class WindowDeviation:
     fuel_power_by_cause: Mapping[str, float] = field(default_factory=dict)
     cost_per_hour_by_cause: Mapping[str, float] = field(default_factory=dict)
     model_runs: int = 0
+    expected_seconds: float = math.nan
 
 
 class ExpectedModel:
@@ -229,6 +239,12 @@ class ExpectedModel:
         #: the previous window's load [-] (NaN: none); part of ``UnitCycle.snapshot``
         self.last_load = math.nan
         self.last_cw_inlet = math.nan  # [K]
+        #: windows an operating point must stay in one grid cell before its values are interpolated
+        #: (0: at once, solving the cell's stencil in that window; see :meth:`deviation`)
+        self.settle_windows = 0
+        #: (load index, cooling-water index, consecutive windows) of the cell the windows are in
+        self.settle: tuple[int, int, int] | None = None
+        self.direct_solves = 0  # direct solves at a window's point so far (bench and tests)
         knots = [a for a, _ in control.schedule] if control.mode == "schedule" else []
         self.grid = OperatingPoints(lambda load, cw: self._solve(load, cw, None), self._node_values, cw0, knots)
 
@@ -242,6 +258,7 @@ class ExpectedModel:
         """
         self.last_load = math.nan
         self.last_cw_inlet = math.nan
+        self.settle = None
         self._last_node = None
         self._z = None
         self._walk_memo.clear()
@@ -302,11 +319,13 @@ class ExpectedModel:
         return out
 
     def expected_at(self, load: float, cw_inlet: float | None = None, *,
-                    direct: bool = False) -> tuple[dict[str, float], Node]:
+                    direct: bool = False, fill: int | None = None) -> tuple[dict[str, float], Node]:
         """Expected KPIs at ``load`` [-] and cooling-water inlet [K] from the grid, and the nearest node.
 
         ``direct``: solve at the point itself (from the design point) instead; also the
-        fallback when a grid node cannot be solved.
+        fallback when a grid node cannot be solved. ``fill``: the values from a direct
+        solve as well, but the node is the grid's nearest one, and at most ``fill``
+        missing nodes of the stencil are solved (the nearest first): a cell being settled into.
 
         Raises
         ------
@@ -316,11 +335,21 @@ class ExpectedModel:
         try:
             if direct:
                 raise ValueError("direct solve")
-            values = self.grid.interpolate(load, cw_inlet)
-            node = self.grid.nearest(load, cw_inlet)
-            if node.hb is None:
-                raise ValueError(node.error)
+            if fill is not None:
+                self.grid.fill(load, cw_inlet, fill)
+                node = self.grid.nearest(load, cw_inlet)
+                if node.hb is None:
+                    raise ValueError(node.error)
+                self.direct_solves += 1
+                hb = self._solve(load, cw_inlet, None)
+                values = self._node_values(hb)
+            else:
+                values = self.grid.interpolate(load, cw_inlet)
+                node = self.grid.nearest(load, cw_inlet)
+                if node.hb is None:
+                    raise ValueError(node.error)
         except ValueError:
+            self.direct_solves += 1
             hb = self._solve(load, cw_inlet, None)
             node = Node(load, cw_inlet, hb, self._node_values(hb))
             values = dict(node.values)
@@ -559,9 +588,18 @@ class ExpectedModel:
         moving = abs(step) > LOAD_STEP or abs(cw_now - self.last_cw_inlet) > CW_STEP
         holding = abs(step) <= _HOLD_LOAD  # the operating point holds (False without a previous window)
         self.last_load, self.last_cw_inlet = load_c, cw_now
+        # settling: fewer than settle_windows consecutive windows in this grid cell (a function of
+        # the windows alone, not of what the grid holds): values from a direct solve, the stencil
+        # filled a few nodes per window, so no window solves a whole new cell
+        cell = self.grid.cell(load_c, cw_inlet)
+        streak = self.settle[2] + 1 if self.settle is not None and self.settle[:2] == cell else 1
+        self.settle = (cell[0], cell[1], min(streak, max(self.settle_windows, 1)))
+        settling = streak < self.settle_windows and not moving
         solves = self.grid.solves
+        t_exp = time.perf_counter()
         try:
-            exp, node = self.expected_at(load_c, cw_inlet, direct=moving)
+            exp, node = self.expected_at(load_c, cw_inlet, direct=moving,
+                                         fill=FILL_PER_WINDOW if settling else None)
         except (SolveError, ValueError, PropertyError) as exc:
             return WindowDeviation(math.nan, {}, f"unavailable: expected model failed ({type(exc).__name__})")
         ref = node.hb
@@ -574,14 +612,15 @@ class ExpectedModel:
                 exp[f"section_efficiency.{sec}"] = math.nan
         hr_exp = exp["turbine_heat_rate"]
         total = hr_act - hr_exp
+        t_exp = time.perf_counter() - t_exp
         last, self._last_node = self._last_node, node
-        if not (moving or holding or math.isnan(step)) and self.grid.solves == solves:
+        if not (moving or settling or holding or math.isnan(step)) and self.grid.solves == solves:
             # a slow ramp: build the next grid row a node per window (none if this window solved one)
             self.grid.prefetch(load_c + math.copysign(LOAD_STEP, step), cw_inlet)
         if not causes:
-            if node is last and holding:  # spread the node's one-off split work over unsplit windows
+            if node is last:  # spread the node's one-off split work over unsplit windows at the same node
                 cause_sensitivity.prefetch(self, node)
-            return WindowDeviation(total, {}, "not split: window not steady", exp)
+            return WindowDeviation(total, {}, "not split: window not steady", exp, expected_seconds=t_exp)
         runs, failed = self._cause_runs(ctx, ref, load_c, cw_inlet, p_throttle)
         hr_ref = node.values["turbine_heat_rate"]
         linear = cause_sensitivity.estimates(self, node, runs)
@@ -614,7 +653,7 @@ class ExpectedModel:
         eta_b = interpolate_boiler_efficiency(self.settings.boiler_efficiency, load)
         fuel = {c: v * p_gen / eta_b for c, v in by_cause.items()} if math.isfinite(p_gen) and eta_b > 0 else {}
         cost = {c: v * 3600.0 * self.fuel_price for c, v in fuel.items()} if self.fuel_price is not None else {}
-        return WindowDeviation(total, by_cause, status, exp, fuel, cost, exact)
+        return WindowDeviation(total, by_cause, status, exp, fuel, cost, exact, t_exp)
 
     def ref_overrides(self, ref: HeatBalance) -> dict[tuple[str, str], float]:
         """The expected run's set throttle pressure (fixed or scheduled), kept in every cause run."""

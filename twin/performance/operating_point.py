@@ -24,7 +24,11 @@ While the load or the cooling water moves by more than a grid step from one wind
 to the next (a ramp, a step), the expected model solves that window's point directly instead of adding
 grid rows it would use once (:meth:`twin.performance.expected.ExpectedModel.deviation`);
 while it ramps more slowly, each window solves at most one node of the row ahead
-(:meth:`OperatingPoints.prefetch`), so a new row is not built in one window.
+(:meth:`OperatingPoints.prefetch`), so a new row is not built in one window. The
+live cycle also spreads a new cell's stencil (:meth:`OperatingPoints.fill`): until
+the operating point has stayed in one cell for a few windows, the window's expected
+values are a direct solve at its point and at most :data:`FILL_PER_WINDOW` stencil
+nodes are solved (:attr:`twin.performance.expected.ExpectedModel.settle_windows`).
 
 Every node is solved from the design point, never from the previous window's
 solution, so a cached value depends only on the node, not on the order in which the
@@ -57,6 +61,8 @@ LOAD_STEP = 0.02
 CW_STEP = 1.0
 #: Nodes kept (least recently used dropped first).
 MAX_NODES = 256
+#: Stencil nodes a window solves while its operating point settles into a cell.
+FILL_PER_WINDOW = 2
 
 _LOAD_MIN, _LOAD_MAX = 10, 60  # node indices of 0.2 and 1.2 at LOAD_STEP
 
@@ -179,6 +185,31 @@ class OperatingPoints:
         wj = _weights(u) if (self.cw_design is not None and cw is not None and math.isfinite(cw)) else None
         cols = ((j - 1, wj[0]), (j, wj[1]), (j + 1, wj[2])) if wj is not None else ((j, 1.0),)
         return [((i + di, jj), a * b) for di, a in zip((-1, 0, 1), wi, strict=True) for jj, b in cols]
+
+    def cell(self, load: float, cw: float | None) -> tuple[int, int]:
+        """The centre (load index, cooling-water index) of the point's interpolation stencil."""
+        i, _, j, _ = self._index(load, cw)
+        return i, j
+
+    def fill(self, load: float, cw: float | None, budget: int) -> int:
+        """Solve up to ``budget`` missing nodes of the stencil at (``load``, ``cw``); the number solved.
+
+        The nearest node first (the one a window's cause split is made at), then the
+        stencil in order; the values are the same whenever a node is solved.
+        """
+        if not 0.2 <= load <= 1.2 or budget <= 0:
+            return 0
+        x = load / LOAD_STEP
+        near = (min(max(round(x), _LOAD_MIN), _LOAD_MAX), self._index(load, cw)[2])
+        keys = [near] + [k for k, _ in self._stencil(load, cw) if k != near]
+        done = 0
+        for key in keys:
+            if done >= budget:
+                break
+            if key not in self._nodes:
+                self.node(*key)
+                done += 1
+        return done
 
     def prefetch(self, load: float, cw: float | None) -> bool:
         """Solve one missing node of the stencil at (``load``, ``cw``); False if there was none.
