@@ -262,7 +262,8 @@ def cycle_figures(config_path: str, cycles: int, seed: int, loads: tuple[float, 
         if math.isfinite(dev_s):
             dev_t.append(dev_s)
         runs += int(getattr(out, "cause_model_runs", 0))
-        got = {"kpis": out.kpi_seconds, "expected": out.expected_seconds, "monitors": out.monitors_seconds}
+        got = {k: float(getattr(out, f"{k}_seconds", math.nan)) for k in ("kpi", "expected", "monitors")}
+        got["kpis"] = got.pop("kpi")
         got["reconcile"] = out.reconcile_seconds - got["kpis"]
         got["deviation_by_cause"] = dev_s - got["expected"]
         got["other"] = dt - out.reconcile_seconds - dev_s - got["monitors"]

@@ -59,7 +59,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy.optimize import brentq
 
 from twin.model.core import Context
 from twin.model.flow import CycleLoss, Reheater, ThrottleValve
@@ -72,7 +71,7 @@ from twin.model.solve import (
     solve_off_design,
 )
 from twin.model.turbine import TurbineGroup
-from twin.performance import cause_sensitivity
+from twin.performance import cause_runs, cause_sensitivity
 from twin.performance.kpi import (
     CyclePerformanceSettings,
     evaluate_kpis,
@@ -109,12 +108,6 @@ CAUSES = (
 
 PRESSURE_CONTROLS = ("sliding", "fixed", "schedule")
 
-#: Changes below these are treated as none (the cause is exactly 0, no model run).
-_PRESSURE_TOL = 1.0  # [Pa]
-_RATIO_TOL = 1e-6  # [-]
-_FACTOR_TOL = 1e-7  # [-]
-_TEMPERATURE_TOL = 1e-4  # [K]
-_FLOW_TOL = 1e-4  # [kg/s]
 
 _THROTTLE = "_throttle_pressure"  # the grid's interpolated throttle pressure [Pa] (not a KPI)
 _HOLD_LOAD = 0.002  # [-] a load change per window below this is the operating point holding (noise)
@@ -395,59 +388,6 @@ class ExpectedModel:
         """Section efficiency with design group efficiencies at the actual boundary conditions [-]."""
         return expected_section_efficiency(ctx, path, self._walk_design(ctx, path))
 
-    # ------------------------------------------------------------------ pressure
-    def _stodola_inlet_pressure(self, ctx: Context) -> float:
-        """HP inlet pressure [Pa] the first HP group's design Stodola constant gives at the actual flow."""
-        g = self.first_hp
-        assert g is not None
-        a, b = g.port("inlet"), g.port("outlet")
-        K = self.design.constants[g.id]["stodola"]
-        m, h, pb = ctx.m(a), ctx.h(a), ctx.p(b)
-
-        def r(p: float) -> float:
-            return m - K * math.sqrt((p * p - pb * pb) / (p * ctx.water.v_ph(p, h)))
-
-        return float(brentq(r, pb * 1.0001, 4.0 * max(ctx.p(a), pb), xtol=1.0))
-
-    def _pressure_runs(self, ctx: Context, ref: HeatBalance, load: float,
-                       expected_throttle: float = math.nan) -> dict[str, dict[str, Any]]:
-        """The main-steam-pressure and throttling runs (see the module docstring).
-
-        ``expected_throttle`` [Pa] is the expected throttle pressure at the window's own
-        load when ``ref`` is a nearby grid node: the run then moves the node's throttle
-        pressure by the actual / expected ratio.
-        """
-        if self.valve is None or self.first_hp is None:
-            return {}
-        vin, vout = self.valve.port("inlet"), self.valve.port("outlet")
-        p_ms, p_hp = ctx.p(vin), ctx.p(vout)
-        if not (math.isfinite(p_ms) and math.isfinite(p_hp) and p_ms > 0):
-            return {}
-        rctx = ref.context()
-        r_ref = rctx.p(vout) / rctx.p(vin)
-        p_stod = self._stodola_inlet_pressure(ctx)
-        p_set = self.control.throttle_pressure(load)
-        p_exp = p_stod if not math.isfinite(p_set) else max(p_set, p_stod)
-        r_exp = min(p_stod / p_exp, 1.0)
-        dp = p_ms - p_exp
-        r_act = min(p_hp / p_ms, 1.0)
-        skip = frozenset({self.valve.relation("open"), self.first_hp.relation("stodola")})
-        rho = p_ms / expected_throttle if math.isfinite(expected_throttle) else p_ms / rctx.p(vin)
-        p_a = rctx.p(vin) * rho  # the actual throttle pressure, valves as expected
-        sigma = r_act / r_exp
-        runs: dict[str, dict[str, Any]] = {}
-        if abs(dp) > _PRESSURE_TOL:
-            runs["main_steam_pressure"] = {"overrides": {(vin, "pressure"): p_a, (vout, "pressure"): p_a * r_ref},
-                                           "skip": skip, "linear": {"rho": rho - 1.0}}
-        else:
-            runs["main_steam_pressure"] = {"zero": True}
-        if abs(sigma - 1.0) > _RATIO_TOL:
-            runs["throttling"] = {"overrides": {(vin, "pressure"): p_a, (vout, "pressure"): p_a * r_ref * sigma},
-                                  "skip": skip, "minus": "main_steam_pressure", "linear": {"sigma": sigma - 1.0}}
-        else:
-            runs["throttling"] = {"zero": True}
-        return runs
-
     # ------------------------------------------------------------------ causes
     def _cause_runs(self, ctx: Context, ref: HeatBalance, load: float, cw_inlet: float | None,
                     expected_throttle: float = math.nan) -> tuple[dict[str, dict[str, Any]], dict[str, str]]:
@@ -475,16 +415,16 @@ class ExpectedModel:
             t, t_ref = ctx.ph(stream).T, rctx.ph(stream).T
             if not math.isfinite(t):
                 raise ValueError("not observable")
-            if abs(t - t_ref) < _TEMPERATURE_TOL:
+            if abs(t - t_ref) < cause_runs.TEMPERATURE_TOL:
                 return {"zero": True}
             return {"overrides": {(stream, "temperature"): t}, "linear": {f"T:{stream}": t - t_ref}}
 
         attempt("main_steam_temperature", lambda: temperature(ms))
-        attempt("pressure", lambda: self._pressure_runs(ctx, ref, load, expected_throttle))
+        attempt("pressure", lambda: cause_runs.pressure_runs(self, ctx, ref, load, expected_throttle))
         if self.reheat_stream:
             attempt("reheat_temperature", lambda: temperature(str(self.reheat_stream)))
         if self.condensers:
-            attempt("condenser_pressure", lambda: self._condenser_run(ctx, rctx, cw_inlet))
+            attempt("condenser_pressure", lambda: cause_runs.condenser_run(self, ctx, rctx, cw_inlet))
         for sec, cause in (("HP", "hp_efficiency"), ("IP", "ip_efficiency"), ("LP", "lp_efficiency")):
             path = self.sections.get(sec)
             if path is None:
@@ -492,7 +432,7 @@ class ExpectedModel:
 
             def eff(path: SectionPath = path) -> dict[str, Any]:
                 f = self.section_factor(ctx, path)
-                if abs(f - 1.0) < _FACTOR_TOL:
+                if abs(f - 1.0) < cause_runs.FACTOR_TOL:
                     return {"zero": True}
                 return {"constants": {g.id: {"efficiency_factor": f} for g in path.groups},
                         "linear": {f"factor:{path.id}": f - 1.0}}
@@ -507,7 +447,7 @@ class ExpectedModel:
                 for k in ("ttd", "dca"):
                     name = f"heater_{k}.{h}"
                     v, v_ref = kd[name].func(ctx), kd[name].func(rctx)
-                    if math.isfinite(v) and abs(v - v_ref) > _TEMPERATURE_TOL:
+                    if math.isfinite(v) and abs(v - v_ref) > cause_runs.TEMPERATURE_TOL:
                         consts.setdefault(h, {})[k] = float(v)
                         linear[f"{k}:{h}"] = float(v - v_ref)
             return {"constants": consts, "linear": linear} if consts else {"zero": True}
@@ -515,49 +455,8 @@ class ExpectedModel:
         if self.heaters:
             attempt("feedwater_heaters", heaters)
         if self.losses:
-            attempt("cycle_isolation", lambda: self._isolation_run(ctx, rctx))
+            attempt("cycle_isolation", lambda: cause_runs.isolation_run(self, ctx, rctx))
         return runs, failed
-
-    def _isolation_run(self, ctx: Context, rctx: Context) -> dict[str, Any]:
-        """Every cycle-loss sink at its actual flow instead of its normal loss (make-up beyond normal)."""
-        overrides: dict[tuple[str, str], float] = {}
-        linear: dict[str, float] = {}  # drivers: flow change / design main-steam flow
-        for e in self.losses:
-            a = e.port("inlet")
-            m = ctx.m(a)
-            if not math.isfinite(m):
-                raise ValueError("cycle loss not observable")
-            if abs(m - rctx.m(a)) > _FLOW_TOL:
-                overrides[(a, "mass_flow")] = m
-                linear[f"loss:{e.id}"] = (m - rctx.m(a)) / self.design_flow
-        if not overrides:
-            return {"zero": True}
-        return {"overrides": overrides, "linear": linear,
-                "skip": frozenset(e.relation("flow") for e in self.losses if (e.port("inlet"), "mass_flow") in overrides)}
-
-    def _condenser_run(self, ctx: Context, rctx: Context, cw_inlet: float | None) -> dict[str, Any]:
-        """The condenser at its actual performance: the UA that gives the actual back-pressure at the actual duty.
-
-        ``Tsat(p) = T_cw,in + Q / (m_cw c_p (1 − exp(−UA/(m_cw c_p))))`` with the design
-        cooling-water flow, inverted for UA at the actual duty Q and inlet temperature
-        (a lower cooling-water flow shows as a lower UA). The run keeps the cooling
-        relation, so extra duty from a turbine loss raises the back-pressure in that
-        loss's own run, not here.
-        """
-        c = self.condensers[0]
-        k = self.design.constants[c.id]
-        t_cw = cw_inlet if cw_inlet is not None and math.isfinite(cw_inlet) else c.params["cooling_water_inlet_temperature"]
-        duty = c.duty(ctx)
-        f_act = (ctx.water.T_sat(ctx.p(c.port("exhaust"))) - t_cw) / duty
-        cap = k["cw_flow"] * c.params["cooling_water_cp"]
-        if not (math.isfinite(f_act) and f_act * cap > 1.0):
-            raise ValueError("condenser duty or back-pressure not observable")
-        ua = -cap * math.log(1.0 - 1.0 / (cap * f_act))
-        if abs(ua / k["ua"] - 1.0) < _RATIO_TOL:
-            return {"zero": True}
-        # driver: 1 / (1 − exp(−UA/(m_cw c_p))), to which the back-pressure rise is proportional
-        x_design = 1.0 / -math.expm1(-k["ua"] / cap)
-        return {"constants": {c.id: {"ua": ua}}, "linear": {f"approach:{c.id}": cap * f_act / x_design - 1.0}}
 
     def deviation(self, ctx: Context, actual: Mapping[str, float], cw_inlet: float | None = None, *,
                   causes: bool = True) -> WindowDeviation:
@@ -618,7 +517,9 @@ class ExpectedModel:
             # a slow ramp: build the next grid row a node per window (none if this window solved one)
             self.grid.prefetch(load_c + math.copysign(LOAD_STEP, step), cw_inlet)
         if not causes:
-            if node is last:  # spread the node's one-off split work over unsplit windows at the same node
+            if node is last and self.grid.solves == solves:
+                # spread the node's one-off split work over unsplit windows at the same node that
+                # solved no grid node (one kind of extra work per window)
                 cause_sensitivity.prefetch(self, node)
             return WindowDeviation(total, {}, "not split: window not steady", exp, expected_seconds=t_exp)
         runs, failed = self._cause_runs(ctx, ref, load_c, cw_inlet, p_throttle)
