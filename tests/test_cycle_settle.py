@@ -93,3 +93,22 @@ def test_results_do_not_depend_on_what_the_grid_already_holds(run) -> None:
 def _cw_inlet(r) -> float:
     cw = [t for t in r.tags.values() if t.quantity == "cooling_water_inlet_temperature" and t.valid]
     return cw[0].reconciled
+
+
+def test_a_settled_point_moving_into_a_neighbouring_cell_stays_on_the_grid() -> None:
+    """Load 1.0 settled, then 0.985 (the next cell down, less than a grid step): grid values, 3 new nodes at most."""
+    cfg = demo_config()
+    fs, op, design = demo_design()
+    truths = {load: sensor_truth(cfg, design if load == 1.0 else solve_off_design(fs, op, design, load, "sliding"))
+              for load in (1.0, 0.985)}
+    cyc = _cycle()
+    em = cyc.expected_model
+    for k, load in enumerate([1.0] * SETTLE_WINDOWS + [0.985] * 2):
+        before = em.grid.solves + em.direct_solves
+        r = cyc.run(window(truths[load], T0 + 30.0 * (k + 1))).result
+        work = em.grid.solves + em.direct_solves - before
+        if load == 0.985:
+            assert work <= 3, (k, work)
+            fresh, _ = ExpectedModel.from_config(cfg, fs, op, design).expected_at(r.kpis["load_fraction"].value,
+                                                                                _cw_inlet(r))
+            assert r.expected["turbine_heat_rate"] == fresh["turbine_heat_rate"], k  # the grid, no direct solve

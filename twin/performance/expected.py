@@ -493,7 +493,13 @@ class ExpectedModel:
         # the windows alone, not of what the grid holds): values from a direct solve, the stencil
         # filled a few nodes per window, so no window solves a whole new cell
         cell = self.grid.cell(load_c, cw_inlet)
-        streak = self.settle[2] + 1 if self.settle is not None and self.settle[:2] == cell else 1
+        streak = 1
+        if self.settle is not None:
+            i0, j0, n0 = self.settle
+            if (i0, j0) == cell:
+                streak = n0 + 1
+            elif n0 >= self.settle_windows and abs(cell[0] - i0) + abs(cell[1] - j0) == 1 and not moving:
+                streak = n0  # settled, into a neighbouring cell (noise at a boundary, a slow ramp): 3 new nodes at most
         self.settle = (cell[0], cell[1], min(streak, max(self.settle_windows, 1)))
         settling = streak < self.settle_windows and not moving
         solves = self.grid.solves
