@@ -2,7 +2,8 @@
 
 All functions take a model ``Context`` (a state ``z`` of the flowsheet) so
 the same code serves the forward heat balance, the reconciled state and,
-through numerical gradients, the uncertainty of each KPI.
+through each definition's analytic gradient (:mod:`twin.performance.kpi_gradient`),
+the uncertainty of each KPI.
 
 References
 ----------
