@@ -184,7 +184,7 @@ def sensor_temperature(ctx: Any, stream: str) -> tuple[float, float, float]:
     T(p, h) exactly.
     """
     st = ctx.ph(stream)
-    if math.isnan(st.x) or not st.two_phase:  # single phase or supercritical: exact
+    if not st.two_phase or math.isnan(st.x):  # single phase or supercritical: exact (x not read: lazy)
         return st.T, st.dT_dp, st.dT_dh
     p, h = ctx.p(stream), ctx.h(stream)
     sat = ctx.sat(p)
