@@ -2,6 +2,9 @@
 
 - :func:`reconcile_linear`: closed form for ``A x + B u = c`` (projection by pivoted QR).
 - :func:`reconcile`: nonlinear ``f(z) = 0`` by successive linearisation (Gauss-Newton SQP).
+- :meth:`Result.functional_covariance`: covariance of linear functionals ``G z`` (KPI
+  gradients) from the final KKT factorisation (:mod:`twin.reconcile.covariance`); with
+  ``SolveOptions(covariance="diagonal")`` the solve keeps only the measured variances.
 - :func:`classify`: redundancy of measurements, observability of unmeasured variables.
 - :mod:`twin.reconcile.stats`: global and measurement tests, GLR, detection power, MDB,
   uncertainty of derived quantities.

@@ -30,7 +30,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from twin.reconcile.kkt import KKTFactorisationError, ScaledKKT
+from twin.reconcile.kkt import KKTFactorisationError, ScaledKKT, column_blocks
 from twin.reconcile.linear import REDUNDANCY_FLOOR, _build_result, _solve, classify
 
 
@@ -193,11 +193,23 @@ def _final_sparse(J, y, V, sigma, vs, rs, sparse_step, measured, unmeasured,
 
 
 def measured_variances(kkt: ScaledKKT, Lfac: np.ndarray, diagonal: bool) -> np.ndarray:
-    """``diag Cov(x̂) = diag(L X Lᵀ)`` (n,) from the factored KKT system."""
-    X, _ = kkt.sensitivities()
-    if diagonal:
-        return Lfac**2 * np.diag(X)
-    return np.einsum("ij,ij->i", Lfac @ X, Lfac)
+    """``diag Cov(x̂) = diag(L X Lᵀ)`` (n,) from the factored KKT system.
+
+    With a diagonal ``V`` only ``diag X`` is needed: the columns of ``X`` are solved
+    :data:`~twin.reconcile.kkt.SOLVE_CHUNK` at a time (each column's solve is independent, so the
+    numbers are those of :meth:`ScaledKKT.sensitivities`) and only their diagonal kept.
+    """
+    if not diagonal:
+        X, _ = kkt.sensitivities()
+        return np.einsum("ij,ij->i", Lfac @ X, Lfac)
+    n, size = kkt.n, kkt.n + kkt.p + kkt.m
+    dX = np.empty(n)
+    for j0, j1 in column_blocks(n):
+        rhs = np.zeros((size, j1 - j0))
+        rhs[np.arange(j0, j1), np.arange(j1 - j0)] = 1.0
+        s = kkt.solve(rhs, sweeps=1)
+        dX[j0:j1] = s[np.arange(j0, j1), np.arange(j1 - j0)]
+    return Lfac**2 * dX
 
 
 def covariance_fields(mode, V, cov_x, cov_xu, cov_u, gain_parts, adj, cls, measured, unmeasured):

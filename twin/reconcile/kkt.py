@@ -40,6 +40,17 @@ EPS_UNMEASURED = 1e-9
 DELTA_CONSTRAINTS = 1e-11
 #: Iterative-refinement sweeps against the system without ``δ``.
 REFINE_SWEEPS = 2
+#: Right-hand sides solved at a time for many columns (above twice this many): each
+#: column's solve is independent (same numbers), and blocks of this width stay in cache
+#: (n = 2 000 synthetic networks: 0.4-0.5x the time of one wide solve; demo-u1's 118
+#: columns stay one solve, where two blocks measured 1.04-1.2x).
+SOLVE_CHUNK = 64
+
+
+def column_blocks(n: int) -> list[tuple[int, int]]:
+    """``[(j0, j1), …]`` covering ``range(n)`` in blocks of :data:`SOLVE_CHUNK` (one block up to 2×)."""
+    width = n if n <= 2 * SOLVE_CHUNK else SOLVE_CHUNK
+    return [(j0, min(n, j0 + width)) for j0 in range(0, max(n, 1), max(width, 1))]
 
 
 class KKTFactorisationError(ArithmeticError):
@@ -198,7 +209,13 @@ class ScaledKKT:
         allowed by the constraints, so ``Cov(ŵ) = X``, ``Cov(v̂, ŵ) = U`` and
         ``Cov(v̂) = U Uᵀ`` (minimum-norm values in unobservable directions).
         """
-        rhs = np.zeros((self.n + self.p + self.m, self.n))
-        rhs[: self.n] = np.eye(self.n)
-        s = self.solve(rhs, sweeps=1)
-        return s[: self.n], s[self.n: self.n + self.p]
+        n, p = self.n, self.p
+        X = np.empty((n, n))
+        U = np.empty((p, n))
+        for j0, j1 in column_blocks(n):
+            rhs = np.zeros((n + p + self.m, j1 - j0))
+            rhs[np.arange(j0, j1), np.arange(j1 - j0)] = 1.0
+            s = self.solve(rhs, sweeps=1)
+            X[:, j0:j1] = s[:n]
+            U[:, j0:j1] = s[n: n + p]
+        return X, U
