@@ -1,6 +1,7 @@
 """The straightforward (p, h) state of twin.properties before the fast paths, kept as a reference.
 
-:func:`reference_ph` is ``Water.ph`` as it was before the line table, the warm
+:func:`reference_ph` is ``Water.ph`` (:func:`reference_ps` ``Water.ps`` in single phase) as it was
+before the line table, the warm
 start and the lazy quality: the saturation line evaluated for every state below
 the critical pressure (exact phase test, x and dx_dh eager), the refinement
 started from the start table, and the derivative stencils always bounded by
@@ -11,7 +12,7 @@ from __future__ import annotations
 
 import math
 
-from twin.properties import P_CRIT, P_TRIPLE, X_SATURATED, PHState, Water
+from twin.properties import P_CRIT, P_TRIPLE, X_SATURATED, PHState, PSState, Water
 from twin.properties.backend import PT
 from twin.properties.base import _diff
 from twin.properties.states import _DP_REL, _DT, _LIQ, _NAN, _NOLINE, _VAP, T_CRIT
@@ -74,3 +75,26 @@ def reference_ph(w: Water, p: float, h: float) -> PHState:
     return PHState(p, h, T, s, v, x, cp, False,
                    dT_dp, 1.0 / cp, -v / T, 1.0 / T,
                    dv_dp_T + dv_dT * dT_dp, dv_dT / cp, dx_dp, dx_dh)
+
+
+def reference_ps(w: Water, p: float, s: float) -> PSState:
+    """The (p, s) state [SI units] with the exact phase test on the line for every state below P_CRIT."""
+    from twin.properties.backend import PQ
+
+    if P_TRIPLE <= p < P_CRIT:
+        w._up(PQ, p, 0.0)
+        tsat, sf = w._t(), w._s()
+        w._up(PQ, p, 1.0)
+        x = (s - sf) / (w._s() - sf)
+        if -X_SATURATED <= x <= 1.0 + X_SATURATED:
+            return w.ps(p, s)  # two-phase: the lever rule (unchanged)
+        phase = _LIQ if x < 0.0 else _VAP
+    else:
+        phase, tsat = _NOLINE, _NAN
+    T = w._single_T("ps", p, s, True, phase, tsat)
+    h, v = w._h(), 1.0 / w._rho()
+    x = _NAN
+    if phase != _NOLINE:
+        _, hf, hg = w._sat_h(p)
+        x = (h - hf) / (hg - hf)
+    return PSState(p, s, h, T, v, x, False, v, T)

@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 from iapws import IAPWS97
 
-from tests.properties_reference import reference_ph
+from tests.properties_reference import reference_ph, reference_ps
 from twin.properties import P_CRIT, P_TRIPLE, X_SATURATED, Water
 from twin.properties.guess import line_side
 from twin.properties.states import _LIQ, _VAP
@@ -118,6 +118,27 @@ def test_fast_ph_equals_the_straightforward_evaluation(waters):
             _agree(w.ph(p, h, T_guess=guess), want, kind, p, h)  # warm, good and bad guesses
         prev_T = T
     assert min(kinds.values()) >= 30, kinds
+
+
+def test_fast_ps_equals_the_straightforward_evaluation(waters):
+    # the same states by (p, s): h_ps and ps, cold and warm-started, against reference_ps
+    w, ref_w = waters
+    n = 0
+    for kind, p, h, _ in _states(ref_w):
+        s = ref_w.ph(p, h).s
+        want = reference_ps(ref_w, p, s)
+        for guess in (None, want.T, want.T + 0.2, want.T - 40.0, math.nan):
+            got = w.ps(p, s) if guess is None else w.ps(p, s, T_guess=guess)
+            h_only = w.h_ps(p, s) if guess is None else w.h_ps(p, s, T_guess=guess)
+            assert got.two_phase == want.two_phase, (kind, p, s)
+            assert h_only == pytest.approx(want.h, rel=1e-9, abs=1e-4), (kind, p, s)
+            # h ~ 0 at the triple point, x ~ 0 on the line: absolute floors 1e-4 J/kg and 1e-11
+            # (1e-11 h_fg is what ~1e-9 K of T makes, inside the refinement tolerance)
+            for name, floor in (("h", 1e-4), ("T", 0.0), ("v", 0.0), ("x", 1e-11), ("dh_dp", 0.0), ("dh_ds", 0.0)):
+                a, b = getattr(got, name), getattr(want, name)
+                assert (math.isnan(a) and math.isnan(b)) or a == pytest.approx(b, rel=1e-9, abs=floor), (kind, p, s, name)
+        n += 1
+    assert n == N_STATES
 
 
 def test_warm_started_temperature_matches_iapws(waters):

@@ -168,18 +168,22 @@ def test_states_just_off_the_line_are_single_phase_and_continuous(w):
 
 def test_near_line_buckets_cover_the_saturation_line():
     # (p, T) calls check T against T_sat(p) exactly only when p lies in the kelvin bucket
-    # [p_sat(273 + k), p_sat(274 + k)] of T; every point of the line must be inside its
-    # bucket (iapws' IAPWS-IF97 Eq. (30) p_sat(T)), and so p < P_CRIT there
+    # [p_sat(k), p_sat(k + 1)] of T, k = int(T); every point of the line must be inside its
+    # bucket (iapws' IAPWS-IF97 Eq. (30) p_sat(T)), and so p < P_CRIT there; the buckets
+    # of every other kelvin are empty
     from iapws.iapws97 import _PSat_T
 
     from twin.properties import base
 
     for T in np.linspace(273.15, 647.096, 20000):
-        k = int(T) - 273
+        k = int(T)
         ps = _PSat_T(T) * MPa
         if 611.657 <= ps < 22.064e6:  # T_sat(p) exists from the triple to the critical point
             assert base._P_SAT_LO[k] <= ps <= base._P_SAT_HI[k] * (1 + 1e-15), T
-    assert min(base._P_SAT_LO) >= 611.657 and max(base._P_SAT_HI) < 22.064e6  # where T_sat(p) exists
+    line = range(273, 648)
+    assert min(base._P_SAT_LO[k] for k in line) >= 611.657  # where T_sat(p) exists
+    assert max(base._P_SAT_HI[k] for k in line) < 22.064e6
+    assert all(base._P_SAT_LO[k] > base._P_SAT_HI[k] for k in range(len(base._P_SAT_LO)) if k not in line)
     w = Water()  # just outside the line's pressure range, (p, T) works as before
     assert w.h_pT(611.5, 273.155) == pytest.approx(IAPWS97(P=611.5 / MPa, T=273.155).h * kJ, rel=1e-9)
     assert w.h_pT(22.064e6 * (1 + 1e-10), 647.09) == pytest.approx(w.h_pT(22.064e6, 647.09), rel=1e-6)

@@ -13,7 +13,6 @@ from twin.properties.backend import new_state
 from twin.properties.states import (
     _DP_REL,
     _T_LO,
-    _T_SAT_TOP,
     P_CRIT,
     P_TRIPLE,
     SAT_MARGIN,
@@ -34,20 +33,25 @@ def _diff(f: Callable[[float], float], x0: float, step: float, lo: float, hi: fl
     return (f(x0 + step) - f(x0 - step)) / (2.0 * step)
 
 
-# Near the saturation line at all? A (p, T) with T in [273 + k, 274 + k) K can lie on the
-# line only if p_sat(273 + k) <= p <= p_sat(274 + k); only such a (p, T) pays for the
-# exact T_sat(p) check. One bucket per kelvin, 273.15 K - T_CRIT, widened by 1e-9 and
-# kept inside P_TRIPLE <= p < P_CRIT, where T_sat(p) exists.
+# Near the saturation line at all? A (p, T) with T in [k, k + 1) K can lie on the line
+# only if p_sat(k) <= p <= p_sat(k + 1); only such a (p, T) pays for the exact T_sat(p)
+# check. One bucket per kelvin, indexed by int(T) itself (no range test on the hot path):
+# 273.15 K - T_CRIT hold the line's pressures, widened by 1e-9 and kept inside
+# P_TRIPLE <= p < P_CRIT, where T_sat(p) exists; every other kelvin up to _T_TOP_TABLE an
+# empty bucket (+inf, -inf). A T beyond it raises IndexError, read as out of range.
+_T_TOP_TABLE = 2300  # [K] above IF97 region 5 (2273.15 K)
+
+
 def _sat_buckets() -> tuple[list[float], list[float]]:
     st = new_state()
-    lo, hi = [], []
-    for k in range(int(T_CRIT) - 273 + 1):
+    lo, hi = [math.inf] * _T_TOP_TABLE, [-math.inf] * _T_TOP_TABLE
+    for k in range(273, int(T_CRIT) + 1):
         ends = []
-        for T in (max(273.0 + k, _T_LO), min(274.0 + k, T_CRIT)):
+        for T in (max(float(k), _T_LO), min(k + 1.0, T_CRIT)):
             st.update(_QT, 0.0, T)
             ends.append(st.p())
-        lo.append(max(ends[0] * (1.0 - 1e-9), P_TRIPLE))  # T_sat(p) exists for P_TRIPLE <= p < P_CRIT
-        hi.append(min(ends[1] * (1.0 + 1e-9), math.nextafter(P_CRIT, 0.0)))
+        lo[k] = max(ends[0] * (1.0 - 1e-9), P_TRIPLE)  # T_sat(p) exists for P_TRIPLE <= p < P_CRIT
+        hi[k] = min(ends[1] * (1.0 + 1e-9), math.nextafter(P_CRIT, 0.0))
     return lo, hi
 
 
@@ -88,21 +92,20 @@ class WaterBase:
         On the saturation line (T == T_sat(p)) the saturated liquid, as for every
         (p, T) function here; one ulp above T_sat(p) the saturated vapour.
         """
-        # inlined _pt (the most frequent call; no wrapper, one try)
+        # inlined _pt (the most frequent call; no wrapper, one try, one bucket test)
         try:
-            if _T_LO <= T <= _T_SAT_TOP:
-                k = int(T) - 273
-                if _P_SAT_LO[k] <= p <= _P_SAT_HI[k]:
-                    self._up(_PQ, p, 0.0)
-                    tsat = self._t()
-                    if abs(T - tsat) <= SAT_MARGIN * tsat:
-                        T = tsat * (1.0 - SAT_MARGIN) if tsat >= T else tsat * (1.0 + SAT_MARGIN)
+            k = int(T)
+            if _P_SAT_LO[k] <= p <= _P_SAT_HI[k]:
+                self._up(_PQ, p, 0.0)
+                tsat = self._t()
+                if abs(T - tsat) <= SAT_MARGIN * tsat:
+                    T = tsat * (1.0 - SAT_MARGIN) if tsat >= T else tsat * (1.0 + SAT_MARGIN)
             self._up(_PT, p, T)
             return self._h()
-        except (ValueError, IndexError) as exc:
+        except (ValueError, IndexError, OverflowError) as exc:  # int(nan), T beyond the table, int(inf)
             if not (isfinite(p) and isfinite(T)):
                 raise _error("h_pT", "input is not a finite number", p=p, T=T) from None
-            raise _range_error("h_pT", exc, p=p, T=T) from None
+            raise _range_error("h_pT", None if isinstance(exc, IndexError) else exc, p=p, T=T) from None
 
     def s_pT(self, p: float, T: float) -> float:
         """Specific entropy [J/(kg K)] at pressure p [Pa] and temperature T [K]."""
@@ -158,14 +161,15 @@ class WaterBase:
         if not (isfinite(p) and isfinite(T)):
             raise _error(func, "input is not a finite number", p=p, T=T)
         try:
-            if _T_LO <= T <= _T_SAT_TOP and _P_SAT_LO[int(T) - 273] <= p <= _P_SAT_HI[int(T) - 273]:
+            k = int(T)
+            if _P_SAT_LO[k] <= p <= _P_SAT_HI[k]:
                 self._up(_PQ, p, 0.0)
                 tsat = self._t()
                 if abs(T - tsat) <= SAT_MARGIN * tsat:  # CoolProp's region pick is unsure here
                     T = tsat * (1.0 - SAT_MARGIN) if tsat >= T else tsat * (1.0 + SAT_MARGIN)
             self._up(_PT, p, T)
-        except (ValueError, IndexError) as exc:
-            raise _range_error(func, exc, p=p, T=T) from None
+        except (ValueError, IndexError) as exc:  # IndexError: T beyond the bucket table
+            raise _range_error(func, None if isinstance(exc, IndexError) else exc, p=p, T=T) from None
         return T
 
     # ------------------------------------------------------- saturation
@@ -228,6 +232,10 @@ class WaterBase:
         1e-4 p (one-sided next to the triple and critical points).
         """
         self._pq("sat", p, 0.0)
+        return self._sat_state(p)
+
+    def _sat_state(self, p: float, mid: tuple[float, ...] | None = None) -> SatState:
+        """sat(p) for a checked p; ``mid`` = (T, h_f, h_g, s_f, s_g, v_f, v_g) at p if known."""
         up, th, ts, tr = self._up, self._h, self._s, self._rho
 
         def line(pp: float) -> tuple[float, ...]:
@@ -236,7 +244,8 @@ class WaterBase:
             up(_PQ, pp, 1.0)
             return t, hf, th(), sf, ts(), vf, 1.0 / tr()
 
-        mid = line(p)
+        if mid is None:
+            mid = line(p)
         dp = _DP_REL * p
         if p - dp <= P_TRIPLE:
             a, b = line(p + dp), line(p + 2.0 * dp)

@@ -10,7 +10,7 @@ from twin.properties.backend import PQ as _PQ
 from twin.properties.backend import PS as _PS
 from twin.properties.backend import PT as _PT
 from twin.properties.base import WaterBase
-from twin.properties.guess import start_T
+from twin.properties.guess import line_side, start_T
 from twin.properties.states import (
     _LIQ,
     _NAN,
@@ -99,11 +99,17 @@ class WaterInverse(WaterBase):
 
         x = (f - f_f)/(f_g - f_f) with f = h (or s) and the saturated values f_f,
         f_g [J/kg or J/(kg K)] at p; a state with x within X_SATURATED of [0, 1] is
-        wet. _NOLINE (x, f_f, f_g, T_sat NaN) at p >= P_CRIT or p < P_TRIPLE.
+        wet. _NOLINE (x, f_f, f_g, T_sat NaN) at p >= P_CRIT or p < P_TRIPLE. Where
+        the line table (:func:`~twin.properties.guess.line_side`) shows the state
+        well inside one phase, only T_sat is evaluated and x, f_f, f_g are NaN.
         """
         if not P_TRIPLE <= p < P_CRIT:
             return _NOLINE, _NAN, _NAN, _NAN, _NAN
         up, get = self._up, (self._s if by_s else self._h)
+        side = line_side(p, target, by_s)
+        if side >= 0:
+            up(_PQ, p, 0.0)
+            return side, _NAN, _NAN, _NAN, self._t()
         up(_PQ, p, 0.0)
         tsat, ff = self._t(), get()
         up(_PQ, p, 1.0)
@@ -270,7 +276,8 @@ class WaterInverse(WaterBase):
         return self._lever(p, h)[0]
 
     # ------------------------------------------------------------ (p, s)
-    def _ps_common(self, func: str, p: float, s: float) -> tuple[float, float, float, float, bool]:
+    def _ps_common(self, func: str, p: float, s: float,
+                   T_guess: float | None) -> tuple[float, float, float, float, bool]:
         """(h, T, v, x, two_phase) at pressure p [Pa] and entropy s [J/(kg K)]."""
         _check(func, p=p, s=s)
         phase, x, _, _, tsat = self._phase(p, s, True)
@@ -281,7 +288,7 @@ class WaterInverse(WaterBase):
             up(_PQ, p, 1.0)
             hg, vg = self._h(), 1.0 / self._rho()
             return hf + x * (hg - hf), tsat, vf + x * (vg - vf), x, True
-        T = self._single_T(func, p, s, True, phase, tsat)
+        T = self._single_T(func, p, s, True, phase, tsat, T_guess)
         h = self._h()
         v = 1.0 / self._rho()
         if phase != _NOLINE:
@@ -289,22 +296,35 @@ class WaterInverse(WaterBase):
             x = (h - hf) / (hg - hf)
         return h, T, v, x, False
 
-    def h_ps(self, p: float, s: float) -> float:
+    def h_ps(self, p: float, s: float, T_guess: float | None = None) -> float:
         """Specific enthalpy [J/kg] at pressure p [Pa] and specific entropy s [J/(kg K)].
 
         Two-phase states use the lever rule on the saturation line (fast);
-        single phase starts from the table of :mod:`twin.properties.guess` (or
-        CoolProp's (p, s) flash) and refines on the forward equation.
+        single phase starts from ``T_guess`` [K] if given (as :meth:`ph`, e.g.
+        the previous evaluation's isentropic end temperature ``ps(...).T``), else
+        from the table of :mod:`twin.properties.guess` (or CoolProp's (p, s)
+        flash), and refines on the forward equation.
         """
-        return self._ps_common("h_ps", p, s)[0]
+        _check("h_ps", p=p, s=s)
+        phase, x, _, _, tsat = self._phase(p, s, True)
+        if phase == _WET:
+            up = self._up
+            up(_PQ, p, 0.0)
+            hf = self._h()
+            up(_PQ, p, 1.0)
+            return hf + x * (self._h() - hf)
+        self._single_T("h_ps", p, s, True, phase, tsat, T_guess)
+        return self._h()
 
-    def ps(self, p: float, s: float) -> PSState:
+    def ps(self, p: float, s: float, T_guess: float | None = None) -> PSState:
         """State at pressure p [Pa] and specific entropy s [J/(kg K)]: h, T, v, x, partials.
+
+        ``T_guess`` [K], optional: a start temperature, as in :meth:`h_ps`.
 
         dh_dp = v [m3/kg] at constant s and dh_ds = T [K] at constant p (dh = T ds + v dp)
         in single phase; in two-phase the partials of the lever rule that computes h.
         """
-        h, T, v, x, wet = self._ps_common("ps", p, s)
+        h, T, v, x, wet = self._ps_common("ps", p, s, T_guess)
         if not wet:
             return PSState(p, s, h, T, v, x, wet, v, T)
         # two-phase: partials of the lever rule h = h_f + x (h_g - h_f), x = (s - s_f)/(s_g - s_f)

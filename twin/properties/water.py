@@ -27,6 +27,7 @@ from twin.properties.states import (
     X_SATURATED,
     PHState,
     PropertyError,
+    SatState,
     _check,
     _range_error,
 )
@@ -106,12 +107,19 @@ class Water(WaterInverse):
         if P_TRIPLE <= p < P_CRIT:
             phase = line_side(p, h, False)
             if phase < 0:  # next to a line: the exact test on the saturation line
-                tsat, hf, hg = self._sat_h(p)
+                up(_PQ, p, 0.0)
+                tsat, hf = self._t(), self._h()
+                up(_PQ, p, 1.0)
+                hg = self._h()
                 hfg = hg - hf
                 x = (h - hf) / hfg
                 dx_dh = 1.0 / hfg
                 if -X_SATURATED <= x <= 1.0 + X_SATURATED:
-                    return self._ph_wet(p, h, x, dx_dh)
+                    # the saturation state at p from these updates (still at Q = 1), then its slopes
+                    sg, vg = self._s(), 1.0 / rho()
+                    up(_PQ, p, 0.0)
+                    mid = (tsat, hf, hg, self._s(), sg, 1.0 / rho(), vg)
+                    return self._ph_wet(p, h, x, dx_dh, self._sat_state(p, mid))
                 phase = _LIQ if x < 0.0 else _VAP
             else:
                 up(_PQ, p, 0.0)
@@ -188,8 +196,9 @@ class Water(WaterInverse):
 
         return _diff(v_of_T, T, _DT, lo_T, hi_T), _diff(v_of_p, p, _DP_REL * p, lo_p, hi_p)
 
-    def _ph_wet(self, p: float, h: float, x: float, dx_dh: float) -> PHState:
-        st = self.sat(p)
+    def _ph_wet(self, p: float, h: float, x: float, dx_dh: float, st: SatState | None = None) -> PHState:
+        if st is None:
+            st = self.sat(p)
         dx_dp = -(st.dh_f_dp * (1.0 - x) + x * st.dh_g_dp) * dx_dh  # as _dx_dp, from sat()'s line
         s = st.s_f + x * (st.s_g - st.s_f)
         vfg = st.v_g - st.v_f
