@@ -78,7 +78,10 @@ def reference_ph(w: Water, p: float, h: float) -> PHState:
 
 
 def reference_ps(w: Water, p: float, s: float) -> PSState:
-    """The (p, s) state [SI units] with the exact phase test on the line for every state below P_CRIT."""
+    """The (p, s) state [SI units] with the exact phase test on the line for every state below P_CRIT.
+
+    Two-phase with the saturation state from a separate sat(p), as before.
+    """
     from twin.properties.backend import PQ
 
     if P_TRIPLE <= p < P_CRIT:
@@ -86,8 +89,16 @@ def reference_ps(w: Water, p: float, s: float) -> PSState:
         tsat, sf = w._t(), w._s()
         w._up(PQ, p, 1.0)
         x = (s - sf) / (w._s() - sf)
-        if -X_SATURATED <= x <= 1.0 + X_SATURATED:
-            return w.ps(p, s)  # two-phase: the lever rule (unchanged)
+        if -X_SATURATED <= x <= 1.0 + X_SATURATED:  # two-phase: the lever rule, sat(p)'s slopes
+            w._up(PQ, p, 0.0)
+            hf, vf = w._h(), 1.0 / w._rho()
+            w._up(PQ, p, 1.0)
+            hg, vg = w._h(), 1.0 / w._rho()
+            st = w.sat(p)
+            sfg, hfg = st.s_g - st.s_f, st.h_g - st.h_f
+            dx_dp = -((1.0 - x) * st.ds_f_dp + x * st.ds_g_dp) / sfg
+            dh_dp = (1.0 - x) * st.dh_f_dp + x * st.dh_g_dp + hfg * dx_dp
+            return PSState(p, s, hf + x * (hg - hf), tsat, vf + x * (vg - vf), x, True, dh_dp, hfg / sfg)
         phase = _LIQ if x < 0.0 else _VAP
     else:
         phase, tsat = _NOLINE, _NAN

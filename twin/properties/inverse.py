@@ -277,24 +277,28 @@ class WaterInverse(WaterBase):
 
     # ------------------------------------------------------------ (p, s)
     def _ps_common(self, func: str, p: float, s: float,
-                   T_guess: float | None) -> tuple[float, float, float, float, bool]:
-        """(h, T, v, x, two_phase) at pressure p [Pa] and entropy s [J/(kg K)]."""
+                   T_guess: float | None) -> tuple[float, float, float, float, tuple[float, ...] | None]:
+        """(h, T, v, x, line) at pressure p [Pa] and entropy s [J/(kg K)].
+
+        ``line`` is None in single phase; two-phase, the saturated values
+        (T, h_f, h_g, s_f, s_g, v_f, v_g) at p that the lever rule used.
+        """
         _check(func, p=p, s=s)
-        phase, x, _, _, tsat = self._phase(p, s, True)
+        phase, x, sf, sg, tsat = self._phase(p, s, True)
         if phase == _WET:
             up = self._up
             up(_PQ, p, 0.0)
             hf, vf = self._h(), 1.0 / self._rho()
             up(_PQ, p, 1.0)
             hg, vg = self._h(), 1.0 / self._rho()
-            return hf + x * (hg - hf), tsat, vf + x * (vg - vf), x, True
+            return hf + x * (hg - hf), tsat, vf + x * (vg - vf), x, (tsat, hf, hg, sf, sg, vf, vg)
         T = self._single_T(func, p, s, True, phase, tsat, T_guess)
         h = self._h()
         v = 1.0 / self._rho()
         if phase != _NOLINE:
             _, hf, hg = self._sat_h(p)
             x = (h - hf) / (hg - hf)
-        return h, T, v, x, False
+        return h, T, v, x, None
 
     def h_ps(self, p: float, s: float, T_guess: float | None = None) -> float:
         """Specific enthalpy [J/kg] at pressure p [Pa] and specific entropy s [J/(kg K)].
@@ -324,12 +328,13 @@ class WaterInverse(WaterBase):
         dh_dp = v [m3/kg] at constant s and dh_ds = T [K] at constant p (dh = T ds + v dp)
         in single phase; in two-phase the partials of the lever rule that computes h.
         """
-        h, T, v, x, wet = self._ps_common("ps", p, s, T_guess)
-        if not wet:
-            return PSState(p, s, h, T, v, x, wet, v, T)
-        # two-phase: partials of the lever rule h = h_f + x (h_g - h_f), x = (s - s_f)/(s_g - s_f)
-        st = self.sat(p)
+        h, T, v, x, line = self._ps_common("ps", p, s, T_guess)
+        if line is None:
+            return PSState(p, s, h, T, v, x, False, v, T)
+        # two-phase: partials of the lever rule h = h_f + x (h_g - h_f), x = (s - s_f)/(s_g - s_f),
+        # the line's slopes around the saturated values just used (as sat(p))
+        st = self._sat_state(p, line)
         sfg, hfg = st.s_g - st.s_f, st.h_g - st.h_f
         dx_dp = -((1.0 - x) * st.ds_f_dp + x * st.ds_g_dp) / sfg
         dh_dp = (1.0 - x) * st.dh_f_dp + x * st.dh_g_dp + hfg * dx_dp
-        return PSState(p, s, h, T, v, x, wet, dh_dp, hfg / sfg)
+        return PSState(p, s, h, T, v, x, True, dh_dp, hfg / sfg)
