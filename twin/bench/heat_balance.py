@@ -68,12 +68,12 @@ def _counting_water() -> Any:
     def counted(name: str) -> Callable[..., Any]:
         method = getattr(Water, name)
 
-        def wrapper(self: Any, *args: float) -> Any:
+        def wrapper(self: Any, *args: float, **kwargs: Any) -> Any:  # kwargs: T_guess
             if self._depth == 0:
                 self.calls += 1
             self._depth += 1
             try:
-                return method(self, *args)
+                return method(self, *args, **kwargs)
             finally:
                 self._depth -= 1
 

@@ -168,9 +168,9 @@ def _record(config: str) -> list[tuple[str, tuple[float, ...]]]:
             if not callable(attr):
                 return attr
 
-            def recorded(*a: float) -> Any:
+            def recorded(*a: float, **kw: Any) -> Any:  # a T_guess is not recorded (replayed apart)
                 calls.append((name, a))
-                return attr(*a)
+                return attr(*a, **kw)
 
             return recorded
 

@@ -34,10 +34,10 @@ class _TimedWater:
         if not callable(attr):
             return attr
 
-        def timed(*args: Any) -> Any:
+        def timed(*args: Any, **kwargs: Any) -> Any:  # kwargs: T_guess
             t0 = time.perf_counter()
             try:
-                return attr(*args)
+                return attr(*args, **kwargs)
             finally:
                 self.seconds += time.perf_counter() - t0
                 self.calls += 1

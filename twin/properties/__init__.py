@@ -22,6 +22,14 @@ plant model needs on top of it:
   identities: in region-1 liquid (∂v/∂p)_T and (∂v/∂T)_p from cv and the speed
   of sound, elsewhere central differences on cheap (p, T) updates;
   (∂x/∂p)_h is computed on first access;
+* saturation work only next to the saturation lines: a table of the line
+  (:func:`twin.properties.guess.line_side`) tells that a (p, h) or (p, s) state is
+  well inside one phase, and then x and (∂x/∂h)_p of a (p, h) state are computed on
+  first access too (the same numbers);
+* warm starts: ``Water.ph(p, h, T_guess=...)`` (and ``ps``, ``h_ps``) start the
+  forward-equation refinement from a previous temperature, e.g. the same
+  stream's state at the previous evaluation; any guess is safe (a useless one
+  falls back to the start table);
 * :class:`PropertyError` naming the function and its inputs for NaN or
   out-of-range input, never a silent number;
 * ``*_array`` variants that return NaN ("no valid state") instead of raising.
@@ -29,14 +37,16 @@ plant model needs on top of it:
 Units are SI base units throughout: pressure [Pa] (absolute), temperature [K],
 specific enthalpy [J/kg], specific entropy [J/(kg K)], specific volume [m3/kg].
 
-Speed (``twin bench properties --n 5000 --repeat 7``, idle 2-core machine, twin
-against a raw CoolProp ``AbstractState`` loop in the same process, median paired
-ratio over 6 runs): ``h_pT`` x1.28-1.36 (0.86-1.07 µs; the kelvin-bucket test for
-"next to the saturation line" is the extra cost); ``T_ph`` x0.89-0.99 against the
-raw backward-only flash (the forward refinement starts from the table of
-:mod:`twin.properties.guess`, not from CoolProp's (p, h) flash); ``ph()`` with x
-and all partial derivatives x1.05-1.13 against a raw (p, h) update with T, s, v
-and cp getters (17.5-20.7 µs).
+Speed, twin against a raw CoolProp ``AbstractState`` doing the same in the same
+process (``twin bench properties``: median paired ratios; instruction counts of
+valgrind's callgrind beside them, which do not depend on the machine's load):
+``h_pT`` x1.2-1.3 (the kelvin-bucket test for "next to the saturation line" and
+the Python call are the extra cost); ``T_ph`` x0.85-0.95 against the raw
+backward-only flash; ``ph()`` with all partial derivatives x0.75-0.85 against a
+raw (p, h) update with T, s, v and cp getters (x0.83 in instructions; x0.75
+warm-started); the 45 distinct property calls of one demo-u1 model evaluation
+4.9 M instructions cold, 4.6 M warm-started, against 6.8 M before the line
+table, the lazy quality and the warm start.
 
 Modules: ``backend`` (CoolProp), ``states`` (constants, errors, result types),
 ``base`` ((p, T) and the saturation line), ``guess`` (start temperatures),
@@ -138,7 +148,7 @@ def T_ph(p: float, h: float) -> float: return water().T_ph(p, h)
 def s_ph(p: float, h: float) -> float: return water().s_ph(p, h)
 def v_ph(p: float, h: float) -> float: return water().v_ph(p, h)
 def x_ph(p: float, h: float) -> float: return water().x_ph(p, h)
-def h_ps(p: float, s: float) -> float: return water().h_ps(p, s)
+def h_ps(p: float, s: float, T_guess: float | None = None) -> float: return water().h_ps(p, s, T_guess)
 def T_sat(p: float) -> float: return water().T_sat(p)
 def p_sat(T: float) -> float: return water().p_sat(T)
 def h_f(p: float) -> float: return water().h_f(p)
@@ -148,8 +158,8 @@ def s_g(p: float) -> float: return water().s_g(p)
 def v_f(p: float) -> float: return water().v_f(p)
 def v_g(p: float) -> float: return water().v_g(p)
 def sat(p: float) -> SatState: return water().sat(p)
-def ph(p: float, h: float) -> PHState: return water().ph(p, h)
-def ps(p: float, s: float) -> PSState: return water().ps(p, s)
+def ph(p: float, h: float, T_guess: float | None = None) -> PHState: return water().ph(p, h, T_guess)
+def ps(p: float, s: float, T_guess: float | None = None) -> PSState: return water().ps(p, s, T_guess)
 
 
 for _f in (h_pT, s_pT, v_pT, cp_pT, w_pT, dh_dp_T, T_ph, s_ph, v_ph, x_ph, h_ps, T_sat, p_sat,
