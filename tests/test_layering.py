@@ -26,7 +26,7 @@ ROOT = "twin"
 # one module. A module may import from its own package or from lower layers.
 LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
     ("L9 commands", ("twin.cli", "twin.commands.*", "twin.bench.*")),
-    ("L8 orchestrators", ("twin.daemon", "twin.backfill", "twin.demo.*")),
+    ("L8 orchestrators", ("twin.daemon", "twin.backfill.*", "twin.demo.*")),
     ("L7b cycle", ("twin.cycle",)),
     ("L7 adapters", ("twin.mqtt", "twin.sparkplug", "twin.metrics", "twin.history.*", "twin.ingest.*",
                      "twin.diagram", "twin.state")),
@@ -61,8 +61,8 @@ GATEWAYS: dict[str, str] = {
     "amqtt": "twin.demo._broker_main",
     "matplotlib": "twin.diagram",
     "pyarrow": "twin.history.*",
-    "distributed": "twin.backfill",
-    "dask": "twin.backfill",
+    "distributed": "twin.backfill.*",
+    "dask": "twin.backfill.*",
 }
 
 

@@ -1,0 +1,144 @@
+"""The chunk function: one chunk's windows through a fresh :class:`twin.cycle.UnitCycle` (workers, Dask)."""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import time
+from dataclasses import replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from twin.backfill.openmetrics import openmetrics_text
+from twin.backfill.plan import ChunkSpec
+from twin.backfill.rows import event_row, result_rows
+from twin.backfill.windows import window_inputs
+from twin.history import Samples
+from twin.result import CycleResult, InputStats
+
+_WORKER: dict[str, Any] = {}
+_MEASURED = ("seconds", "peak_rss_mb")  # machine figures of a chunk: reported, never written to outputs
+
+
+def _model_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, str], Any]:
+    """(config, reconciler, KPI units, expected model), built once per process and grid (the costly part)."""
+    key = f"{config_path}|{cycle!r}|{window!r}"
+    if key not in _WORKER:
+        os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+        from twin.config import load_config
+        from twin.performance.plant_reconcile import PlantReconciler
+
+        config = load_config(config_path)
+        config.monitoring.cycle, config.monitoring.window = cycle, window
+        # no wall-clock time budget: the result must not depend on the machine's load
+        reconciler = PlantReconciler(config, time_budget=math.inf)
+        units = {d.name: {"ratio": "1"}.get(d.unit, d.unit) for d in reconciler.kpi_defs}
+        from twin.model.solve import Operation
+        from twin.performance.expected import ExpectedModel
+
+        # its operating-point grid is solved from the design point (not from the windows),
+        # so the chunks of one process share it; each chunk starts it over
+        expected = ExpectedModel.from_config(config, reconciler.fs, Operation.from_config(config),
+                                             reconciler.design, reconciler.settings)
+        _WORKER.clear()
+        _WORKER[key] = (config, reconciler, units, expected)
+    return _WORKER[key]
+
+
+def fresh_cycle(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, str]]:
+    """A new :class:`twin.cycle.UnitCycle` in its initial state on the process's reconciler.
+
+    New for every chunk: every warm start and filter (also those not in the
+    snapshot, e.g. the expected model's previous point) starts from the same state, so
+    a chunk's output does not depend on which chunks its process ran before. The
+    expected model's grid is kept (:meth:`ExpectedModel.start_over`): its nodes are
+    solved from the design point, so keeping them changes the time, not the numbers.
+    """
+    from twin.cycle import UnitCycle
+
+    config, reconciler, units, expected = _model_for(config_path, cycle, window)
+    reconciler.reset()
+    return config, UnitCycle(config, reconciler=reconciler, expected_model=expected), units
+
+
+def _peak_rss_mb() -> float:
+    """This process's peak resident memory [MiB] (VmHWM; unlike ru_maxrss it is not inherited across exec)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return float(line.split()[1]) / 1024.0
+    except OSError:
+        pass
+    return math.nan
+
+
+def load_spool(spool: str | Path) -> Samples:
+    parts = sorted(Path(spool).glob("*.npz")) if Path(spool).exists() else []
+    if not parts:
+        return Samples(np.zeros(0), np.zeros(0, np.int32), np.zeros(0), np.zeros(0, bool))
+    arrays = [np.load(p) for p in parts]
+    return Samples(*(np.concatenate([a[k] for a in arrays]) for k in ("t", "tag", "value", "ok")))
+
+
+def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
+    """Run one chunk and write its outputs atomically to ``spec.out``; returns its summary.
+
+    A pure function of the spec and the spool files: the same chunk run twice
+    (another process, another machine of a Dask cluster) writes the same bytes.
+    """
+    from twin.cycle import WindowInput
+
+    config, cyc, units = fresh_cycle(spec.config_path, spec.cycle, spec.window)
+    samples = load_spool(spec.spool)
+    tags = [s.tag for s in config.sensors]
+    max_age = [float(s.max_age) for s in config.sensors]
+    gate_tags = list(config.monitoring.steady_signals)
+    inputs = window_inputs(samples, tags, spec.ends, spec.window, spec.cycle, max_age, gate_tags, spec.lookback)
+    sample_t = np.sort(samples.t)
+    base_index = int(np.searchsorted(sample_t, spec.first_end - spec.window, "left"))
+    rejected = dict(spec.rejected)
+    tmp = Path(spec.out + ".tmp")
+    shutil.rmtree(tmp, ignore_errors=True)
+    tmp.mkdir(parents=True)
+    results: list[CycleResult] = []
+    summary = {"index": spec.index, "windows": 0, "steady": 0, "converged": 0, "not_converged": 0,
+               "transitions": 0, "alarms_raised": 0, "suspects_raised": 0, "seconds": 0.0}
+    started = time.perf_counter()
+    with open(tmp / "reconciled.csv", "w", encoding="utf-8", newline="") as rec_f, \
+            open(tmp / "events.csv", "w", encoding="utf-8", newline="") as ev_f:
+        for k, (t_end, stats, gate) in enumerate(inputs):
+            warm = k < spec.warmup
+            msgs = spec.messages_before + int(np.searchsorted(sample_t, t_end, "left")) - base_index
+            out = cyc.run(WindowInput(t_end=t_end, window_seconds=spec.window, stats=stats, gate_stats=gate,
+                                      inputs=InputStats(messages=max(msgs, 0), rejected=rejected)))
+            if warm:
+                continue
+            r = replace(out.result, compute_seconds=math.nan)
+            summary["windows"] += 1
+            summary["steady"] += int(r.steady)
+            summary["converged"] += int(r.reconcile_status == "converged")
+            summary["not_converged"] += int(r.reconcile_status not in ("converged", "not_steady"))
+            if "csv" in spec.formats or "parquet" in spec.formats:
+                rec_f.writelines(result_rows(r, units))
+            for tr in out.transitions:
+                ev_f.write(event_row(tr))
+                summary["transitions"] += 1
+                if tr.new == "active":
+                    summary["suspects_raised" if str(tr.level) == "suspect" else "alarms_raised"] += 1
+            if "openmetrics" in spec.formats:
+                results.append(r)
+    if "openmetrics" in spec.formats and results:
+        (tmp / "metrics.om").write_text(openmetrics_text(results), encoding="utf-8")
+    summary["seconds"] = time.perf_counter() - started
+    (tmp / "summary.json").write_text(json.dumps({k: v for k, v in summary.items() if k not in _MEASURED},
+                                                 sort_keys=True), encoding="utf-8")
+    summary["peak_rss_mb"] = _peak_rss_mb()
+    final = Path(spec.out)
+    shutil.rmtree(final, ignore_errors=True)
+    os.replace(tmp, final)
+    return summary
+
