@@ -350,9 +350,19 @@ def _query_range(prom, expr: str, start: float, end: float) -> list[dict]:
 
 def test_openmetrics_writer_equals_the_metrics_module():
     """The back-fill's fast writer gives exactly the text of twin.metrics.openmetrics_lines."""
+    from dataclasses import replace
+
     from twin.backfill import openmetrics_text
     from twin.metrics import openmetrics_lines
-    from twin.result import AlarmView, CycleResult, DriftView, Estimate, InputStats, TagResult
+    from twin.result import (
+        AlarmView,
+        CycleResult,
+        DriftView,
+        Estimate,
+        InputStats,
+        StreamState,
+        TagResult,
+    )
 
     results = []
     for k in range(3):
@@ -371,7 +381,14 @@ def test_openmetrics_writer_equals_the_metrics_module():
                                                   "warning" if k else "", active=bool(k))},
             drift={"turbine_heat_rate": DriftView("turbine_heat_rate", 0.1, -1.0, 1.0, 2.0, 0.0, False, "up")},
             inputs=InputStats(messages=1000 * k, rejected={"out_of_range": k}), compute_seconds=1e7 * k,
+            steady_r={"GEN-MW1": 1.1 + k, "HP-MS-F1": math.nan}, steady_frozen=("GEN-MW1",) if k == 1 else (),
+            streams={"ms": StreamState(300.0, 1.6e7, 813.0 + k, 3.4e6, math.nan),
+                     "lp_exhaust": StreamState(250.0, 5e3, 306.0, 2.3e6, 0.9 - 0.01 * k)},
+            heat_rate_deviation_fuel_power_by_cause={"condenser": 2.5e5 * (k - 1)},
+            heat_rate_deviation_cost_by_cause={"condenser": 12.5 * k}, currency="EUR" if k else "",
         ))
+    # the second unit's result interleaves its own series
+    results.append(replace(results[0], unit_id="demo-u2", window_end=START + 30.0))
     assert openmetrics_text(results) == openmetrics_lines(results)
 
 

@@ -269,6 +269,12 @@ class _Families:
         fam = self._family(CounterMetricFamily, name, doc, labels)
         fam.add_metric([*self.common.values(), *labels.values()], float(value), timestamp=self.timestamp)
 
+    def info(self, name: str, doc: str, values: dict[str, str]) -> None:
+        """An info family of one sample (no common labels)."""
+        fam = InfoMetricFamily(name, doc)
+        fam.add_metric([], values, timestamp=self.timestamp)
+        self.families[name] = fam
+
     def enum(self, name: str, doc: str, label: str, current: str, values: Iterable[str], **labels: str) -> None:
         """One sample per value of ``values`` (plus ``current`` if foreign), 1 for ``current``."""
         states = list(values)
@@ -289,15 +295,22 @@ def build_families(result: CycleResult | None, timestamp: float | None = None) -
     ``twin_cycle_result_available 0``.
     """
     f = _Families({"unit_id": result.unit_id} if result is not None else {}, timestamp)
-    info = InfoMetricFamily("twin_build", "twin version and steam-property formulation of the result")
-    info.add_metric(
-        [], {"version": __version__, "formulation": result.formulation if result else "unknown"},
-        timestamp=timestamp,
-    )
-    f.families["twin_build"] = info
+    write_result(f, result)
+    return list(f.families.values())
+
+
+def write_result(f: Any, result: CycleResult | None) -> None:
+    """Every sample of one result, as calls on ``f`` (the methods of ``_Families``).
+
+    :func:`build_families` passes a collector of prometheus-client families; the
+    back-fill passes its own text writer (``twin.backfill.openmetrics``), so both
+    write the same names, labels and values from this one place.
+    """
+    f.info("twin_build", "twin version and steam-property formulation of the result",
+           {"version": __version__, "formulation": result.formulation if result else "unknown"})
     if result is None:
         f.flag("twin_cycle_result_available", "1 once a monitoring cycle has produced a result", False)
-        return list(f.families.values())
+        return
     f.flag("twin_cycle_result_available", "1 once a monitoring cycle has produced a result", True)
     _window(f, result)
     _inputs(f, result)
@@ -307,7 +320,6 @@ def build_families(result: CycleResult | None, timestamp: float | None = None) -
     _deviation(f, result)
     _alarms(f, result)
     _drift(f, result)
-    return list(f.families.values())
 
 
 def _window(f: _Families, r: CycleResult) -> None:
