@@ -61,6 +61,7 @@ GATEWAYS: dict[str, str] = {
     "amqtt": "twin.demo._broker_main",
     "matplotlib": "twin.diagram",
     "pyarrow": "twin.history.*",
+    "isal": "twin.history.*",
     "distributed": "twin.backfill.*",
     "dask": "twin.backfill.*",
 }
