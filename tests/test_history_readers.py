@@ -212,6 +212,17 @@ def test_unreadable_files_say_what_was_expected(config, tmp_path):
         _read(config, tmp_path / "x.parquet")
     with pytest.raises(FileNotFoundError):
         _read(config, tmp_path / "missing.csv")
+    import gzip
+
+    good = gzip.compress(b"timestamp,tag,value\n" + b"2026-01-05T00:00:00Z,GEN-MW1,300\n" * 50)
+    (tmp_path / "cut.csv.gz").write_bytes(good[: len(good) // 2])  # a copy that stopped half-way
+    with pytest.raises(HistoryError, match=r"cut\.csv\.gz: cannot be read .*expected CSV \(optionally gzip\)"):
+        _read(config, tmp_path / "cut.csv.gz")
+    bad = bytearray(good)
+    bad[-6] ^= 0xFF  # the CRC-32 in the gzip trailer (RFC 1952)
+    (tmp_path / "crc.csv.gz").write_bytes(bytes(bad))
+    with pytest.raises(HistoryError, match=r"crc\.csv\.gz: cannot be read"):
+        _read(config, tmp_path / "crc.csv.gz")
 
 
 def test_memory_bounded_by_block(config, tmp_path):
