@@ -13,12 +13,12 @@ from typing import Any
 
 import numpy as np
 
-from twin.backfill.openmetrics import openmetrics_text
+from twin.backfill.openmetrics import OpenMetricsWriter
 from twin.backfill.plan import ChunkSpec
 from twin.backfill.rows import event_row, result_rows
 from twin.backfill.windows import window_inputs
 from twin.history import Samples
-from twin.result import CycleResult, InputStats
+from twin.result import InputStats
 
 _WORKER: dict[str, Any] = {}
 _MEASURED = ("seconds", "peak_rss_mb")  # machine figures of a chunk: reported, never written to outputs
@@ -104,7 +104,7 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
     tmp = Path(spec.out + ".tmp")
     shutil.rmtree(tmp, ignore_errors=True)
     tmp.mkdir(parents=True)
-    results: list[CycleResult] = []
+    metrics = OpenMetricsWriter() if "openmetrics" in spec.formats else None
     summary = {"index": spec.index, "windows": 0, "steady": 0, "converged": 0, "not_converged": 0,
                "transitions": 0, "alarms_raised": 0, "suspects_raised": 0, "seconds": 0.0}
     started = time.perf_counter()
@@ -129,10 +129,10 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
                 summary["transitions"] += 1
                 if tr.new == "active":
                     summary["suspects_raised" if str(tr.level) == "suspect" else "alarms_raised"] += 1
-            if "openmetrics" in spec.formats:
-                results.append(r)
-    if "openmetrics" in spec.formats and results:
-        (tmp / "metrics.om").write_text(openmetrics_text(results), encoding="utf-8")
+            if metrics is not None:
+                metrics.add(r)
+    if metrics is not None and metrics.stamps:
+        metrics.write(tmp / "metrics.om")
     summary["seconds"] = time.perf_counter() - started
     (tmp / "summary.json").write_text(json.dumps({k: v for k, v in summary.items() if k not in _MEASURED},
                                                  sort_keys=True), encoding="utf-8")
