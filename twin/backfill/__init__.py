@@ -44,7 +44,14 @@ chunk function run by workers), :mod:`.run` (spool, pool or Dask, manifest, asse
 
 from __future__ import annotations
 
-from twin.backfill.chunk import _model_for, _peak_rss_mb, fresh_cycle, load_spool, run_chunk
+from twin.backfill.chunk import (
+    _model_for,
+    _peak_rss_mb,
+    fresh_cycle,
+    load_spool,
+    reference_pass,
+    run_chunk,
+)
 from twin.backfill.openmetrics import openmetrics_text
 from twin.backfill.plan import BackfillError, ChunkSpec, Plan, make_plan
 from twin.backfill.rows import (
@@ -56,6 +63,8 @@ from twin.backfill.rows import (
     rfc3339,
 )
 from twin.backfill.run import (
+    DEFAULT_CHUNK_WINDOWS,
+    DEFAULT_WARMUP_WINDOWS,
     FORMATS,
     MANIFEST_VERSION,
     BackfillOptions,
@@ -67,8 +76,31 @@ from twin.backfill.run import (
 from twin.backfill.windows import window_inputs
 
 __all__ = [
-    "EVENTS_HEADER", "FORMATS", "MANIFEST_VERSION", "RECONCILED_COLUMNS", "RECONCILED_HEADER", "BackfillError",
-    "BackfillOptions", "BackfillSummary", "ChunkSpec", "Plan", "Progress", "_model_for", "_peak_rss_mb", "backfill",
-    "event_row", "fresh_cycle", "load_spool", "make_plan", "openmetrics_text", "output_digest", "result_rows",
-    "rfc3339", "run_chunk", "window_inputs",
+    "DEFAULT_CHUNK_WINDOWS",
+    "DEFAULT_WARMUP_WINDOWS",
+    "EVENTS_HEADER",
+    "FORMATS",
+    "MANIFEST_VERSION",
+    "RECONCILED_COLUMNS",
+    "RECONCILED_HEADER",
+    "BackfillError",
+    "BackfillOptions",
+    "BackfillSummary",
+    "ChunkSpec",
+    "Plan",
+    "Progress",
+    "_model_for",
+    "_peak_rss_mb",
+    "backfill",
+    "event_row",
+    "fresh_cycle",
+    "load_spool",
+    "make_plan",
+    "openmetrics_text",
+    "output_digest",
+    "reference_pass",
+    "result_rows",
+    "rfc3339",
+    "run_chunk",
+    "window_inputs",
 ]

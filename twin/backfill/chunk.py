@@ -7,6 +7,7 @@ import math
 import os
 import shutil
 import time
+from collections.abc import Iterator
 from dataclasses import replace
 from pathlib import Path
 from typing import Any
@@ -21,7 +22,8 @@ from twin.history import Samples
 from twin.result import InputStats
 
 _WORKER: dict[str, Any] = {}
-_MEASURED = ("seconds", "peak_rss_mb")  # machine figures of a chunk: reported, never written to outputs
+# machine figures of a chunk: reported, never written to outputs
+_MEASURED = ("seconds", "peak_rss_mb", "setup_seconds", "warmup_seconds", "cycle_seconds", "reconcile_seconds")
 
 
 def _model_for(config_path: str, cycle: float, window: float) -> tuple[Any, Any, dict[str, str], Any]:
@@ -84,15 +86,10 @@ def load_spool(spool: str | Path) -> Samples:
     return Samples(*(np.concatenate([a[k] for a in arrays]) for k in ("t", "tag", "value", "ok")))
 
 
-def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
-    """Run one chunk and write its outputs atomically to ``spec.out``; returns its summary.
-
-    A pure function of the spec and the spool files: the same chunk run twice
-    (another process, another machine of a Dask cluster) writes the same bytes.
-    """
+def _window_inputs(spec: ChunkSpec, config: Any) -> Iterator[Any]:
+    """The chunk's :class:`twin.cycle.WindowInput` in time order, warm-up first (from its spool)."""
     from twin.cycle import WindowInput
 
-    config, cyc, units = fresh_cycle(spec.config_path, spec.cycle, spec.window)
     samples = load_spool(spec.spool)
     tags = [s.tag for s in config.sensors]
     max_age = [float(s.max_age) for s in config.sensors]
@@ -101,22 +98,79 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
     sample_t = np.sort(samples.t)
     base_index = int(np.searchsorted(sample_t, spec.first_end - spec.window, "left"))
     rejected = dict(spec.rejected)
+    for t_end, stats, gate in inputs:
+        msgs = spec.messages_before + int(np.searchsorted(sample_t, t_end, "left")) - base_index
+        yield WindowInput(t_end=t_end, window_seconds=spec.window, stats=stats, gate_stats=gate,
+                          inputs=InputStats(messages=max(msgs, 0), rejected=rejected))
+
+
+def reference_pass(spec: ChunkSpec) -> dict[str, Any]:
+    """The drift charts' reference as one sequential pass from the start of the range learns it.
+
+    Runs the first chunk's windows (``spec``, warm-up included) through a fresh
+    cycle, as that chunk does, and stops at the first window after which no
+    drift KPI is learning: every μ0 and σ is then the one an uninterrupted pass
+    uses for the rest of the range. Returns ``learned_at`` (that window's end
+    [s], None when the first chunk does not complete the reference), ``drift``
+    (the bank's snapshot, JSON text) and ``windows`` (windows run).
+    """
+    config, cyc, _ = fresh_cycle(spec.config_path, spec.cycle, spec.window)
+    started = time.perf_counter()
+    done: dict[str, Any] = {"learned_at": None, "drift": "", "windows": 0}
+    if cyc.drift.reference:  # nothing to learn: no reference to hand on
+        for k, w in enumerate(_window_inputs(spec, config)):
+            cyc.run(w)
+            if not cyc.drift.reference:
+                done = {"learned_at": w.t_end, "drift": json.dumps(cyc.drift.snapshot(), sort_keys=True),
+                        "windows": k + 1}
+                break
+        else:
+            done["windows"] = len(spec.ends)
+    done["seconds"] = time.perf_counter() - started
+    return done
+
+
+def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
+    """Run one chunk and write its outputs atomically to ``spec.out``; returns its summary.
+
+    A pure function of the spec and the spool files: the same chunk run twice
+    (another process, another machine of a Dask cluster) writes the same bytes.
+    With ``spec.drift_reference`` the fresh cycle's drift charts start from that
+    learned reference (μ0, σ; charts restarted, as at the end of learning) instead
+    of learning their own from the chunk's first steady windows.
+
+    Besides the counts, the summary holds machine figures (never written to the
+    outputs): ``seconds`` (all), ``setup_seconds`` (fresh cycle, spool, window
+    statistics; the process's first chunk also builds the model), ``warmup_seconds``
+    and ``cycle_seconds`` (UnitCycle.run of warm-up and of kept windows),
+    ``reconcile_seconds`` (the reconciliation inside the kept windows), and
+    ``peak_rss_mb``.
+    """
+    started = time.perf_counter()
+    config, cyc, units = fresh_cycle(spec.config_path, spec.cycle, spec.window)
+    if spec.drift_reference:
+        cyc.drift.restore(json.loads(spec.drift_reference))
+        cyc.drift.reset()
+    windows = list(_window_inputs(spec, config))
     tmp = Path(spec.out + ".tmp")
     shutil.rmtree(tmp, ignore_errors=True)
     tmp.mkdir(parents=True)
     metrics = OpenMetricsWriter() if "openmetrics" in spec.formats else None
-    summary = {"index": spec.index, "windows": 0, "steady": 0, "converged": 0, "not_converged": 0,
-               "transitions": 0, "alarms_raised": 0, "suspects_raised": 0, "seconds": 0.0}
-    started = time.perf_counter()
+    summary: dict[str, Any] = {"index": spec.index, "windows": 0, "steady": 0, "converged": 0, "not_converged": 0,
+                               "transitions": 0, "alarms_raised": 0, "suspects_raised": 0}
+    clock = {"setup_seconds": time.perf_counter() - started, "warmup_seconds": 0.0, "cycle_seconds": 0.0,
+             "reconcile_seconds": 0.0}
     with open(tmp / "reconciled.csv", "w", encoding="utf-8", newline="") as rec_f, \
             open(tmp / "events.csv", "w", encoding="utf-8", newline="") as ev_f:
-        for k, (t_end, stats, gate) in enumerate(inputs):
-            warm = k < spec.warmup
-            msgs = spec.messages_before + int(np.searchsorted(sample_t, t_end, "left")) - base_index
-            out = cyc.run(WindowInput(t_end=t_end, window_seconds=spec.window, stats=stats, gate_stats=gate,
-                                      inputs=InputStats(messages=max(msgs, 0), rejected=rejected)))
-            if warm:
+        for k, w in enumerate(windows):
+            t0 = time.perf_counter()
+            out = cyc.run(w)
+            if k < spec.warmup:
+                clock["warmup_seconds"] += time.perf_counter() - t0
                 continue
+            clock["cycle_seconds"] += time.perf_counter() - t0
+            if math.isfinite(out.reconcile_seconds):
+                clock["reconcile_seconds"] += out.reconcile_seconds
             r = replace(out.result, compute_seconds=math.nan)
             summary["windows"] += 1
             summary["steady"] += int(r.steady)
@@ -133,12 +187,9 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
                 metrics.add(r)
     if metrics is not None and metrics.stamps:
         metrics.write(tmp / "metrics.om")
-    summary["seconds"] = time.perf_counter() - started
-    (tmp / "summary.json").write_text(json.dumps({k: v for k, v in summary.items() if k not in _MEASURED},
-                                                 sort_keys=True), encoding="utf-8")
-    summary["peak_rss_mb"] = _peak_rss_mb()
+    (tmp / "summary.json").write_text(json.dumps(summary, sort_keys=True), encoding="utf-8")
     final = Path(spec.out)
     shutil.rmtree(final, ignore_errors=True)
     os.replace(tmp, final)
+    summary.update(clock, seconds=time.perf_counter() - started, peak_rss_mb=_peak_rss_mb())
     return summary
-

@@ -10,15 +10,15 @@ import os
 import shutil
 import sys
 import time
-from collections.abc import Callable, Sequence
-from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from collections.abc import Callable, Iterable, Sequence
+from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from twin.backfill.chunk import _MEASURED, run_chunk
+from twin.backfill.chunk import _MEASURED, reference_pass, run_chunk
 from twin.backfill.plan import BackfillError, ChunkSpec, Plan, make_plan
 from twin.backfill.rows import EVENTS_HEADER, RECONCILED_COLUMNS, RECONCILED_HEADER, rfc3339
 from twin.history import HistoryReader
@@ -26,7 +26,15 @@ from twin.history import HistoryReader
 log = logging.getLogger("twin.backfill")
 
 FORMATS = ("csv", "parquet", "openmetrics")
-MANIFEST_VERSION = 1
+#: Default chunk: a day of 1-minute windows (4 h at 10 s); with the default warm-up the overlap is 4 %.
+#: Memory per worker is bounded by one chunk: its samples and its OpenMetrics values (~30 MB on demo-u1).
+DEFAULT_CHUNK_WINDOWS = 1440
+#: Default warm-up: measured on the demo scenario (60 s windows, starts across load ramps, the
+#: moisture warning, the bias and the efficiency loss), a fresh cycle's steady gate agrees with one
+#: sequential pass after at most 15 windows, alarm states and events after at most 16, KPIs
+#: from the first window (warm start at 1e-10); 60 windows leave a factor of 4.
+DEFAULT_WARMUP_WINDOWS = 60
+MANIFEST_VERSION = 2  # 2: the drift reference pass is recorded
 
 
 @dataclass
@@ -38,8 +46,8 @@ class BackfillOptions:
     formats: tuple[str, ...] = ("csv", "openmetrics")
     workers: int = 0  # 0: the core count
     scheduler: str | None = None  # tcp://... of a Dask distributed scheduler
-    chunk_seconds: float = 6 * 3600.0
-    warmup_seconds: float = 3600.0
+    chunk_seconds: float | None = None  # None: DEFAULT_CHUNK_WINDOWS windows
+    warmup_seconds: float | None = None  # None: DEFAULT_WARMUP_WINDOWS windows
     cycle: float | None = None  # default: the config's monitoring cycle
     window: float | None = None  # default: the config's monitoring window
     timestamps: str = "auto"
@@ -64,6 +72,14 @@ class BackfillSummary:
     seconds: float = 0.0
     chunk_seconds: float = 0.0  # compute time inside the chunks run now (no start-up, no reading)
     worker_peak_rss_mb: float = 0.0
+    reference_windows: int = 0  # windows of the drift reference pass run now
+    reference_seconds: float = 0.0
+    # where the chunks run now spent their time (sums over chunks, see run_chunk)
+    setup_seconds: float = 0.0
+    warmup_seconds: float = 0.0
+    cycle_seconds: float = 0.0
+    reconcile_seconds: float = 0.0
+    warmup_windows: int = 0
     t_first: float = math.nan
     t_last: float = math.nan
 
@@ -214,8 +230,8 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
     lookback = max(float(s.max_age) for s in config.sensors if math.isfinite(float(s.max_age))) if any(
         math.isfinite(float(s.max_age)) for s in config.sensors) else window
     lookback = min(max(lookback, cycle), 3600.0)
-    chunk_windows = max(1, round(opts.chunk_seconds / cycle))
-    warmup = round(opts.warmup_seconds / cycle)
+    chunk_windows = DEFAULT_CHUNK_WINDOWS if opts.chunk_seconds is None else max(1, round(opts.chunk_seconds / cycle))
+    warmup = DEFAULT_WARMUP_WINDOWS if opts.warmup_seconds is None else round(opts.warmup_seconds / cycle)
     plan = make_plan(t_from, t_to, cycle, window, chunk_windows, warmup)
     key = _input_key(config_path, paths, plan, opts)
     manifest_path = out / "manifest.json"
@@ -264,21 +280,49 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
     def finished(s: ChunkSpec, res: dict[str, Any]) -> None:
         results[s.name] = {k: v for k, v in res.items() if k not in _MEASURED}
         summary.chunk_seconds += float(res.get("seconds", 0.0))
+        for k in ("setup_seconds", "warmup_seconds", "cycle_seconds", "reconcile_seconds"):
+            setattr(summary, k, getattr(summary, k) + float(res.get(k, 0.0)))
+        summary.warmup_windows += s.warmup
         summary.worker_peak_rss_mb = max(summary.worker_peak_rss_mb, float(res.get("peak_rss_mb", 0.0)))
         manifest["chunks"] = results
         _write_json_atomic(manifest_path, manifest)
         progress.add(s.n)
 
+    ref = manifest.get("reference")
+    # the first chunk's windows must be able to hold the reference period, or the pass learns nothing
+    need_ref = (ref is None and any(s.index > 0 for s in todo)
+                and len(specs[0].ends) >= int(config.monitoring.drift.reference_windows))
+    now = [s if need_ref else _with_reference(s, ref) for s in todo if s.index == 0 or not need_ref]
+    later = [s for s in todo if s.index > 0 and need_ref]
     if todo:
         echo(f"{len(todo)} chunk(s) to run ({summary.chunks_skipped} done before), "
-             f"{'Dask scheduler ' + opts.scheduler if opts.scheduler else str(_workers(opts)) + ' worker process(es)'}")
+             f"{'Dask scheduler ' + opts.scheduler if opts.scheduler else str(_workers(opts)) + ' worker process(es)'}"
+             + ("; the drift reference pass first" if need_ref else ""))
     if opts.scheduler:
-        _run_dask(opts.scheduler, todo, finished)
-    elif _workers(opts) == 1 or len(todo) <= 1:
-        for s in todo:
-            finished(s, run_chunk(s))
+        runner: _Runner = _DaskRunner(opts.scheduler)
+    elif _workers(opts) == 1 or len(todo) + need_ref <= 1:
+        runner = _Runner()
     else:
-        _run_pool(_workers(opts), todo, finished)
+        runner = _PoolRunner(min(_workers(opts), len(todo) + need_ref))
+    with runner:
+        pending: dict[Any, ChunkSpec | None] = {}
+        if need_ref:
+            pending[runner.submit(reference_pass, specs[0], "reference")] = None
+        for s in now:
+            pending[runner.submit(run_chunk, s, s.name)] = s
+        while pending:
+            for fut in runner.first_done(list(pending)):
+                spec = pending.pop(fut)
+                if spec is None:
+                    res = _task_result("the drift reference pass (first chunk's windows)", fut)
+                    manifest["reference"] = ref = {k: res[k] for k in ("learned_at", "drift", "windows")}
+                    summary.reference_windows, summary.reference_seconds = int(res["windows"]), float(res["seconds"])
+                    _write_json_atomic(manifest_path, manifest)
+                    for s in later:
+                        s = _with_reference(s, ref)
+                        pending[runner.submit(run_chunk, s, s.name)] = s
+                    continue
+                finished(spec, _task_result(f"chunk {spec.name} ({rfc3339(spec.first_end)}, {spec.n} windows)", fut))
     summary.chunks = len(specs)
     for s in specs:
         res = results[s.name]
@@ -296,42 +340,81 @@ def _workers(opts: BackfillOptions) -> int:
     return opts.workers if opts.workers > 0 else (os.cpu_count() or 1)
 
 
-def _run_pool(workers: int, todo: list[ChunkSpec], finished: Callable[[ChunkSpec, dict[str, Any]], None]) -> None:
-    import multiprocessing as mp
-
-    with ProcessPoolExecutor(max_workers=min(workers, len(todo)), mp_context=mp.get_context("spawn")) as pool:
-        pending = {pool.submit(run_chunk, s): s for s in todo}
-        while pending:
-            done, _ = wait(pending, return_when=FIRST_COMPLETED)
-            for f in done:
-                s = pending.pop(f)
-                finished(s, _chunk_result(s, f))
+def _with_reference(s: ChunkSpec, ref: dict[str, Any] | None) -> ChunkSpec:
+    """The chunk started from the learned drift reference when its first window (warm-up included) is after it."""
+    if s.index == 0 or not ref or ref.get("learned_at") is None or float(s.ends[0]) <= float(ref["learned_at"]):
+        return s
+    return replace(s, drift_reference=str(ref["drift"]))
 
 
-def _chunk_result(s: ChunkSpec, fut: Any) -> dict[str, Any]:
+def _task_result(what: str, fut: Any) -> dict[str, Any]:
     try:
         return dict(fut.result())
     except Exception as exc:  # a worker's failure becomes one line naming the chunk
-        raise BackfillError(f"chunk {s.name} ({rfc3339(s.first_end)}, {s.n} windows) failed in its worker: "
-                            f"{type(exc).__name__}: {exc}; finished chunks are kept, run again to resume") from None
+        raise BackfillError(f"{what} failed in its worker: {type(exc).__name__}: {exc}; finished chunks are kept, "
+                            "run again to resume") from None
 
 
-def _run_dask(address: str, todo: list[ChunkSpec], finished: Callable[[ChunkSpec, dict[str, Any]], None]) -> None:
-    try:
-        from distributed import Client, as_completed
-    except ImportError:
-        raise BackfillError("--scheduler needs Dask distributed; expected it installed: pip install 'twin[cluster]'") from None
-    try:
-        client = Client(address, timeout=30)
-    except (OSError, TimeoutError) as exc:
-        raise BackfillError(f"--scheduler {address}: cannot connect ({exc}); expected a running Dask scheduler") from None
-    try:
-        futures = {client.submit(run_chunk, s, key=f"twin-backfill-{s.name}-{s.first_end:.0f}", pure=False): s
-                   for s in todo}
-        for fut in as_completed(list(futures)):
-            finished(futures[fut], _chunk_result(futures[fut], fut))
-    finally:
-        client.close()
+class _Runner:
+    """Runs tasks in this process, one at a time, as they are submitted."""
+
+    def __enter__(self) -> _Runner:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        pass
+
+    def submit(self, fn: Callable[[ChunkSpec], dict[str, Any]], spec: ChunkSpec, name: str) -> Any:
+        fut: Future[dict[str, Any]] = Future()
+        try:
+            fut.set_result(fn(spec))
+        except Exception as exc:
+            fut.set_exception(exc)
+        return fut
+
+    def first_done(self, futures: list[Any]) -> Iterable[Any]:
+        return wait(futures, return_when=FIRST_COMPLETED)[0]
+
+
+class _PoolRunner(_Runner):
+    """Worker processes (spawned: a fresh interpreter, no inherited state)."""
+
+    def __init__(self, workers: int) -> None:
+        import multiprocessing as mp
+
+        self.pool = ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"))
+
+    def __exit__(self, *exc: object) -> None:
+        self.pool.shutdown(cancel_futures=True)
+
+    def submit(self, fn: Callable[[ChunkSpec], dict[str, Any]], spec: ChunkSpec, name: str) -> Any:
+        return self.pool.submit(fn, spec)
+
+
+class _DaskRunner(_Runner):
+    """The same tasks on a Dask distributed scheduler (``twin[cluster]``)."""
+
+    def __init__(self, address: str) -> None:
+        try:
+            from distributed import Client
+            from distributed import wait as dask_wait
+        except ImportError:
+            raise BackfillError("--scheduler needs Dask distributed; expected it installed: "
+                                "pip install 'twin[cluster]'") from None
+        try:
+            self.client = Client(address, timeout=30)
+        except (OSError, TimeoutError) as exc:
+            raise BackfillError(f"--scheduler {address}: cannot connect ({exc}); expected a running Dask scheduler") from None
+        self._wait = dask_wait
+
+    def __exit__(self, *exc: object) -> None:
+        self.client.close()
+
+    def submit(self, fn: Callable[[ChunkSpec], dict[str, Any]], spec: ChunkSpec, name: str) -> Any:
+        return self.client.submit(fn, spec, key=f"twin-backfill-{name}-{spec.first_end:.0f}", pure=False)
+
+    def first_done(self, futures: list[Any]) -> Iterable[Any]:
+        return self._wait(futures, return_when="FIRST_COMPLETED").done
 
 
 def _assemble(out: Path, specs: Sequence[ChunkSpec], formats: Sequence[str]) -> None:

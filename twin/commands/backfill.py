@@ -31,9 +31,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "the output directory must be on a file system the workers share")
     parser.add_argument("--tsdb", default=None, metavar="DIR",
                         help="build Prometheus TSDB blocks from the OpenMetrics output into DIR with promtool")
-    parser.add_argument("--chunk", type=float, default=6.0, help="chunk length [h] (default 6)")
-    parser.add_argument("--warmup", type=float, default=60.0,
-                        help="warm-up overlap before each chunk [min] (default 60)")
+    parser.add_argument("--chunk", type=float, default=None,
+                        help="chunk length [h] (default 1440 windows: a day at 1-minute windows, 4 h at 10 s)")
+    parser.add_argument("--warmup", type=float, default=None,
+                        help="warm-up overlap before each chunk [min] (default 60 windows, 4 %% of a default chunk)")
     parser.add_argument("--cycle", type=float, default=None, help="window grid step [s] (default: the config's cycle)")
     parser.add_argument("--window", type=float, default=None, help="window length [s] (default: the config's window)")
     parser.add_argument("--timestamps", default="auto", choices=("auto", "rfc3339", "local", "epoch_s", "epoch_ms"),
@@ -79,7 +80,8 @@ def run(args: argparse.Namespace) -> int:
     if args.publish and (args.publish_in_flight < 1 or not args.publish_timeout > 0):
         _say("twin backfill: --publish-in-flight and --publish-timeout must be positive")
         return 2
-    if args.workers < 0 or not args.chunk > 0 or args.warmup < 0:
+    if args.workers < 0 or (args.chunk is not None and not args.chunk > 0) or (args.warmup is not None
+                                                                               and not args.warmup >= 0):
         _say("twin backfill: --workers, --chunk and --warmup must be positive (warm-up may be 0)")
         return 2
     try:
@@ -108,7 +110,8 @@ def run(args: argparse.Namespace) -> int:
             return 2
     opts = BackfillOptions(
         t_from=t_from, t_to=t_to, formats=formats, workers=args.workers, scheduler=args.scheduler,
-        chunk_seconds=args.chunk * 3600.0, warmup_seconds=args.warmup * 60.0, cycle=args.cycle, window=args.window,
+        chunk_seconds=None if args.chunk is None else args.chunk * 3600.0,
+        warmup_seconds=None if args.warmup is None else args.warmup * 60.0, cycle=args.cycle, window=args.window,
         timestamps=args.timestamps, timezone=args.timezone,
         good_quality=tuple(q.strip() for q in args.good_quality.split(",")) if args.good_quality is not None else (),
     )
