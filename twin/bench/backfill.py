@@ -12,8 +12,13 @@ Three parts, one JSON document:
   back-filled at ``--cycle`` second windows with 1 and ``--workers`` worker
   processes; windows per second (wall, including reading, process start-up
   and the one-off model build per worker) and the rate from the chunks' own
-  compute time (``windows_per_s_excluding_startup``), peak resident memory of
-  the main process and of the largest worker;
+  compute time (``windows_per_s_excluding_startup``), the cost per kept window
+  (``per_window_ms``: cycle, reconciliation inside it, the back-fill's own
+  overhead), where the busy time went (``time_shares``: reconciliation, rest of
+  the cycle, back-fill overhead, chunk set-up, warm-up, drift reference pass),
+  peak resident memory of the main process and of the largest worker, and the
+  projected time of a unit-year of 1-minute windows with twin backfill's
+  default chunks (``unit_year_minutes_projected``, a projection);
 * ``live``: the cost of one live window in the same run (the daemon's tag
   store window + :class:`twin.cycle.UnitCycle` on the same history), and
   where it goes (reconciliation share).
@@ -44,6 +49,7 @@ READING_HOW = ("median of `repeats` reads of the same file by one HistoryReader 
                "pyarrow's threads included); line_by_line: the same with fast=False (every block read line by "
                "line, the path a block with a bad row takes)")
 WEEK_WINDOWS_1MIN = 7 * 24 * 60
+YEAR_WINDOWS_1MIN = 365 * 24 * 60
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -55,6 +61,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--read-rows", type=int, default=2_000_000, help="rows of the reading benchmark (default 2e6)")
     parser.add_argument("--read-repeats", type=int, default=3, help="reads per file in the reading benchmark (default 3)")
     parser.add_argument("--live-windows", type=int, default=10, help="windows of the live-path measurement (default 10)")
+    parser.add_argument("--warmup-windows", type=int, default=10,
+                        help="warm-up windows per chunk in the measured runs (default 10; the unit-year projection "
+                             "uses the defaults of twin backfill)")
     parser.add_argument("--skip-backfill", action="store_true", help="reading rate only")
 
 
@@ -156,6 +165,41 @@ def _live(config_path: str, history: Path, cycle: float, n: int) -> dict[str, An
             "reconcile_share": round(float(np.sum(rec) / np.sum(per)), 3)}
 
 
+def _run_figures(s: Any, wall: float, workers: int) -> dict[str, Any]:
+    """Rates, where the chunk time went, memory, and the unit-year projection of one measured back-fill."""
+    from twin.backfill import DEFAULT_CHUNK_WINDOWS, DEFAULT_WARMUP_WINDOWS
+
+    n = max(s.windows, 1)
+    busy = s.chunk_seconds + s.reference_seconds
+    overhead = s.chunk_seconds - s.setup_seconds - s.warmup_seconds - s.cycle_seconds
+    shares = {"reconciliation": s.reconcile_seconds, "rest_of_cycle": s.cycle_seconds - s.reconcile_seconds,
+              "backfill_overhead": overhead, "chunk_setup": s.setup_seconds, "warmup": s.warmup_seconds,
+              "drift_reference_pass": s.reference_seconds}
+    per_cycle = s.cycle_seconds / n
+    per_kept = (s.cycle_seconds + overhead) / n
+    setup_per_chunk = s.setup_seconds / max(s.chunks, 1)
+    year = YEAR_WINDOWS_1MIN
+    chunks = math.ceil(year / DEFAULT_CHUNK_WINDOWS)
+    year_cpu = year * per_kept + chunks * (DEFAULT_WARMUP_WINDOWS * per_cycle + setup_per_chunk) + s.reference_seconds
+    return {"windows": s.windows, "chunks": s.chunks, "wall_s": round(wall, 1),
+            "windows_per_s": round(s.windows / wall, 3),
+            "chunk_compute_s": round(s.chunk_seconds, 1),
+            "windows_per_s_excluding_startup": round(s.windows / max(busy / min(workers, s.chunks), 1e-9), 3),
+            "per_window_ms": {"cycle": round(1e3 * per_cycle, 2), "reconciliation": round(1e3 * s.reconcile_seconds / n, 2),
+                              "backfill_overhead": round(1e3 * overhead / n, 2)},
+            "time_shares": {k: round(v / max(busy, 1e-9), 3) for k, v in shares.items()},
+            "warmup_windows_run": s.warmup_windows, "drift_reference_windows": s.reference_windows,
+            "worker_peak_rss_mb": round(s.worker_peak_rss_mb, 1),
+            "goal_ratio": round(s.windows / wall / GOAL_WINDOWS_PER_S, 5),
+            "week_minutes_extrapolated": round(WEEK_WINDOWS_1MIN / (s.windows / wall) / 60, 1),
+            "unit_year_minutes_projected": round(year_cpu / workers / 60, 1),
+            "unit_year_how": (f"{year} one-minute windows in chunks of {DEFAULT_CHUNK_WINDOWS} with "
+                              f"{DEFAULT_WARMUP_WINDOWS} warm-up windows (twin backfill's defaults): kept windows at this "
+                              "run's cycle + overhead cost, warm-up windows at its cycle cost, this run's set-up per "
+                              "chunk (includes the workers' model build) and its drift reference pass, divided by the "
+                              "workers; a projection, not a measurement (start-up of the workers not included)")}
+
+
 def run(args: argparse.Namespace) -> dict[str, Any]:
     from twin.backfill import BackfillOptions, backfill
     from twin.config import load_config
@@ -178,20 +222,13 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
         runs = {}
         for workers in sorted({1, args.workers}):
             out = d / f"out-{workers}"
-            chunk = args.hours * 3600.0 / max(2 * workers, 2)
+            chunk = args.hours * 3600.0 / 2  # two chunks, with either worker count
             opts = BackfillOptions(cycle=args.cycle, window=args.cycle, workers=workers, chunk_seconds=chunk,
-                                   warmup_seconds=10 * args.cycle, formats=("csv", "openmetrics"))
+                                   warmup_seconds=args.warmup_windows * args.cycle, formats=("csv", "openmetrics"))
             w0 = time.perf_counter()
             s = backfill(args.config, [hist], out, opts, echo=lambda _: None)
             wall = time.perf_counter() - w0
-            runs[str(workers)] = {"windows": s.windows, "chunks": s.chunks, "wall_s": round(wall, 1),
-                                  "windows_per_s": round(s.windows / wall, 3),
-                                  "chunk_compute_s": round(s.chunk_seconds, 1),
-                                  "windows_per_s_excluding_startup": round(
-                                      s.windows / max(s.chunk_seconds / min(workers, s.chunks), 1e-9), 3),
-                                  "worker_peak_rss_mb": round(s.worker_peak_rss_mb, 1),
-                                  "goal_ratio": round(s.windows / wall / GOAL_WINDOWS_PER_S, 5),
-                                  "week_minutes_extrapolated": round(WEEK_WINDOWS_1MIN / (s.windows / wall) / 60, 1)}
+            runs[str(workers)] = _run_figures(s, wall, workers)
         result["backfill"] = runs
         result["live"] = _live(args.config, hist, args.cycle, args.live_windows)
         live_rate = 1e3 / result["live"]["per_window_ms_median"]
