@@ -183,3 +183,18 @@ def test_line_table_decides_a_phase_only_where_the_exact_test_agrees(waters):
     assert outside > 300 and decided >= 0.9 * outside  # it decides states 0.1 % of h_fg off the lines
     for p in (P_TRIPLE * 0.5, P_CRIT, P_CRIT * (1 - 1e-6), 30e6, math.nan):
         assert line_side(p, 1e6, False) == -1
+
+
+def test_saturation_cache_gives_the_fresh_numbers(waters):
+    # the same pressure asked for again (wet stream, isentropic end state, condenser line):
+    # a Water whose saturation cache holds p gives what fresh Waters give, every field
+    w, _ = waters
+    rng = np.random.default_rng(5)
+    pressures = [float(np.exp(rng.uniform(math.log(3e3), math.log(20e6)))) for _ in range(30)]
+    for i in range(600):
+        p = pressures[i % 30]
+        x = float(rng.uniform(-1e-3, 1.0 + 1e-3))
+        hf, hg, sf, sg = w.h_f(p), w.h_g(p), w.s_f(p), w.s_g(p)
+        assert w.sat(p) == Water().sat(p)
+        assert w.ph(p, hf + x * (hg - hf)) == reference_ph(Water(), p, hf + x * (hg - hf))
+        assert w.ps(p, sf + x * (sg - sf)) == reference_ps(Water(), p, sf + x * (sg - sf))

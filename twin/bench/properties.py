@@ -205,6 +205,7 @@ def _evaluation(args: argparse.Namespace, props: Any, backend: Any, repeats: int
     ph, ps_, sat = w.ph, w.ps, w.sat
 
     def twin_cold() -> None:
+        w._sat_cache.clear()  # only one evaluation's repeated pressures hit the saturation cache
         for name, a in calls:
             if name == "ph":
                 ph(*a)
@@ -216,6 +217,7 @@ def _evaluation(args: argparse.Namespace, props: Any, backend: Any, repeats: int
                 getattr(w, name)(*a)
 
     def twin_warm() -> None:
+        w._sat_cache.clear()
         for (name, a), t in zip(calls, prev, strict=True):
             if name == "ph":
                 ph(a[0], a[1], T_guess=t)

@@ -56,6 +56,7 @@ def _sat_buckets() -> tuple[list[float], list[float]]:
 
 
 _P_SAT_LO, _P_SAT_HI = _sat_buckets()
+_SAT_CACHE_SIZE = 64  # saturation states kept per Water
 
 
 class WaterBase:
@@ -69,11 +70,15 @@ class WaterBase:
     IAPWS R7-97(2012), Revised Release on IAPWS-IF97.
     """
 
-    __slots__ = ("_cp", "_cv", "_h", "_p", "_q", "_rho", "_s", "_st", "_t", "_up", "_w")
+    __slots__ = ("_cp", "_cv", "_h", "_p", "_q", "_rho", "_s", "_sat_cache", "_st", "_t", "_up", "_w")
 
     def __init__(self) -> None:
         st = new_state()
         self._st = st
+        # saturation states (with their slopes) by exact pressure: one model evaluation asks
+        # for the line at the same pressure several times (a wet stream, the isentropic end
+        # state at its pressure, a condenser); bounded, emptied when full
+        self._sat_cache: dict[float, SatState] = {}
         self._up = st.update
         self._h = st.hmass
         self._s = st.smass
@@ -231,11 +236,27 @@ class WaterBase:
         Derivatives are central differences of PQ updates with a step of
         1e-4 p (one-sided next to the triple and critical points).
         """
+        st = self._sat_cache.get(p)
+        if st is not None:
+            return st
         self._pq("sat", p, 0.0)
         return self._sat_state(p)
 
     def _sat_state(self, p: float, mid: tuple[float, ...] | None = None) -> SatState:
-        """sat(p) for a checked p; ``mid`` = (T, h_f, h_g, s_f, s_g, v_f, v_g) at p if known."""
+        """sat(p) for a checked p; ``mid`` = (T, h_f, h_g, s_f, s_g, v_f, v_g) at p if known.
+
+        Kept in the saturation cache (the same numbers on every call with this p).
+        """
+        cache = self._sat_cache
+        st = cache.get(p)
+        if st is None:
+            st = self._sat_line(p, mid)
+            if len(cache) >= _SAT_CACHE_SIZE:
+                cache.clear()
+            cache[p] = st
+        return st
+
+    def _sat_line(self, p: float, mid: tuple[float, ...] | None) -> SatState:
         up, th, ts, tr = self._up, self._h, self._s, self._rho
 
         def line(pp: float) -> tuple[float, ...]:

@@ -106,7 +106,16 @@ class Water(WaterInverse):
         up, rho = self._up, self._rho
         if P_TRIPLE <= p < P_CRIT:
             phase = line_side(p, h, False)
-            if phase < 0:  # next to a line: the exact test on the saturation line
+            if phase < 0 and p in self._sat_cache:  # next to a line, known: the exact test
+                st = self._sat_cache[p]
+                tsat, hf, hg = st.T, st.h_f, st.h_g
+                hfg = hg - hf
+                x = (h - hf) / hfg
+                dx_dh = 1.0 / hfg
+                if -X_SATURATED <= x <= 1.0 + X_SATURATED:
+                    return self._ph_wet(p, h, x, dx_dh, st)
+                phase = _LIQ if x < 0.0 else _VAP
+            elif phase < 0:  # next to a line: the exact test on the saturation line
                 up(_PQ, p, 0.0)
                 tsat, hf = self._t(), self._h()
                 up(_PQ, p, 1.0)
