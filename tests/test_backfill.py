@@ -261,6 +261,12 @@ def test_later_chunks_start_from_the_drift_reference_of_one_sequential_pass(tmp_
                                               workers=2), echo=_quiet)
     ref = json.loads((chunked / "manifest.json").read_text())["reference"]
     assert ref["learned_at"] is not None and ref["drift"]
+    # in one process the first chunk reports the reference itself (no separate pass): the same bytes
+    inline = tmp_path / "inline"
+    s1 = backfill(cfg_path, [hist], inline, _opts(chunk_seconds=n_chunk * CYCLE, warmup_seconds=n_warm * CYCLE,
+                                                  workers=1), echo=_quiet)
+    assert s1.reference_windows == 0 and json.loads((inline / "manifest.json").read_text())["reference"] == ref
+    assert output_digest(inline) == output_digest(chunked)
     first_end = _t((single / "reconciled.csv").read_text().splitlines()[1].split(",")[0])
     # the first chunk whose warm-up starts after the reference is complete
     first = next(first_end + k * n_chunk * CYCLE for k in range(1, 10)

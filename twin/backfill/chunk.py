@@ -135,7 +135,9 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
 
     A pure function of the spec and the spool files: the same chunk run twice
     (another process, another machine of a Dask cluster) writes the same bytes.
-    With ``spec.drift_reference`` the fresh cycle's drift charts start from that
+    With ``spec.learn_reference`` the summary also holds ``reference``, what
+    :func:`reference_pass` returns for this chunk (the first one), so a run in one
+    process need not run the pass. With ``spec.drift_reference`` the fresh cycle's drift charts start from that
     learned reference (μ0, σ; charts restarted, as at the end of learning) instead
     of learning their own from the chunk's first steady windows.
 
@@ -160,11 +162,17 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
                                "transitions": 0, "alarms_raised": 0, "suspects_raised": 0}
     clock = {"setup_seconds": time.perf_counter() - started, "warmup_seconds": 0.0, "cycle_seconds": 0.0,
              "reconcile_seconds": 0.0}
+    learning = spec.learn_reference and bool(cyc.drift.reference)
+    reference: dict[str, Any] = {"learned_at": None, "drift": "", "windows": len(windows) if learning else 0}
     with open(tmp / "reconciled.csv", "w", encoding="utf-8", newline="") as rec_f, \
             open(tmp / "events.csv", "w", encoding="utf-8", newline="") as ev_f:
         for k, w in enumerate(windows):
             t0 = time.perf_counter()
             out = cyc.run(w)
+            if learning and not cyc.drift.reference:  # what reference_pass returns, without running it
+                reference = {"learned_at": w.t_end, "drift": json.dumps(cyc.drift.snapshot(), sort_keys=True),
+                             "windows": k + 1}
+                learning = False
             if k < spec.warmup:
                 clock["warmup_seconds"] += time.perf_counter() - t0
                 continue
@@ -192,4 +200,6 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
     shutil.rmtree(final, ignore_errors=True)
     os.replace(tmp, final)
     summary.update(clock, seconds=time.perf_counter() - started, peak_rss_mb=_peak_rss_mb())
+    if spec.learn_reference:
+        summary["reference"] = reference
     return summary

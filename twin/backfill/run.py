@@ -304,25 +304,37 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
         runner = _Runner()
     else:
         runner = _PoolRunner(min(_workers(opts), len(todo) + need_ref))
+    # in one process the first chunk runs first anyway: it reports the reference itself (same windows)
+    piggyback = need_ref and type(runner) is _Runner and any(s.index == 0 for s in now)
+
+    def got_reference(res: dict[str, Any]) -> None:
+        nonlocal ref
+        manifest["reference"] = ref = {k: res[k] for k in ("learned_at", "drift", "windows")}
+        summary.reference_windows = int(res["windows"]) if "seconds" in res else 0  # run for it alone
+        summary.reference_seconds = float(res.get("seconds", 0.0))
+        _write_json_atomic(manifest_path, manifest)
+        for s in later:
+            s = _with_reference(s, ref)
+            pending[runner.submit(run_chunk, s, s.name)] = s
+
     with runner:
         pending: dict[Any, ChunkSpec | None] = {}
-        if need_ref:
+        if need_ref and not piggyback:
             pending[runner.submit(reference_pass, specs[0], "reference")] = None
         for s in now:
+            s = replace(s, learn_reference=True) if piggyback and s.index == 0 else s
             pending[runner.submit(run_chunk, s, s.name)] = s
         while pending:
             for fut in runner.first_done(list(pending)):
                 spec = pending.pop(fut)
                 if spec is None:
-                    res = _task_result("the drift reference pass (first chunk's windows)", fut)
-                    manifest["reference"] = ref = {k: res[k] for k in ("learned_at", "drift", "windows")}
-                    summary.reference_windows, summary.reference_seconds = int(res["windows"]), float(res["seconds"])
-                    _write_json_atomic(manifest_path, manifest)
-                    for s in later:
-                        s = _with_reference(s, ref)
-                        pending[runner.submit(run_chunk, s, s.name)] = s
+                    got_reference(_task_result("the drift reference pass (first chunk's windows)", fut))
                     continue
-                finished(spec, _task_result(f"chunk {spec.name} ({rfc3339(spec.first_end)}, {spec.n} windows)", fut))
+                res = _task_result(f"chunk {spec.name} ({rfc3339(spec.first_end)}, {spec.n} windows)", fut)
+                learned = res.pop("reference", None)
+                finished(spec, res)
+                if learned is not None:
+                    got_reference(learned)
     summary.chunks = len(specs)
     for s in specs:
         res = results[s.name]
@@ -356,7 +368,13 @@ def _task_result(what: str, fut: Any) -> dict[str, Any]:
 
 
 class _Runner:
-    """Runs tasks in this process, one at a time, as they are submitted."""
+    """Runs tasks in this process, one at a time in submission order, each when its result is waited for.
+
+    So each finished chunk is recorded in the manifest before the next one starts.
+    """
+
+    def __init__(self) -> None:
+        self.queue: list[tuple[Future[dict[str, Any]], Callable[[ChunkSpec], dict[str, Any]], ChunkSpec]] = []
 
     def __enter__(self) -> _Runner:
         return self
@@ -366,14 +384,16 @@ class _Runner:
 
     def submit(self, fn: Callable[[ChunkSpec], dict[str, Any]], spec: ChunkSpec, name: str) -> Any:
         fut: Future[dict[str, Any]] = Future()
+        self.queue.append((fut, fn, spec))
+        return fut
+
+    def first_done(self, futures: list[Any]) -> Iterable[Any]:
+        fut, fn, spec = self.queue.pop(0)
         try:
             fut.set_result(fn(spec))
         except Exception as exc:
             fut.set_exception(exc)
-        return fut
-
-    def first_done(self, futures: list[Any]) -> Iterable[Any]:
-        return wait(futures, return_when=FIRST_COMPLETED)[0]
+        return [fut]
 
 
 class _PoolRunner(_Runner):
@@ -389,6 +409,9 @@ class _PoolRunner(_Runner):
 
     def submit(self, fn: Callable[[ChunkSpec], dict[str, Any]], spec: ChunkSpec, name: str) -> Any:
         return self.pool.submit(fn, spec)
+
+    def first_done(self, futures: list[Any]) -> Iterable[Any]:
+        return wait(futures, return_when=FIRST_COMPLETED)[0]
 
 
 class _DaskRunner(_Runner):
