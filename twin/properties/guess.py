@@ -25,6 +25,7 @@ from __future__ import annotations
 import math
 import threading
 from bisect import bisect_right
+from math import floor as _floor
 
 from twin.properties.backend import PQ, PT, new_state
 from twin.properties.states import _LIQ, _NOLINE, _VAP, P_CRIT, P_TRIPLE, X_SATURATED
@@ -176,7 +177,7 @@ def line_side(p: float, f: float, by_s: bool) -> int:
     t = (math.log(p) - _LL0) / _DLL if p >= P_TRIPLE else -1.0
     if not 0.0 <= t < N_LINE - 1:
         return -1
-    i = int(t)
+    i = _floor(t)
     w = t - i
     cf, dcf, mf, cg, dcg, mg = _get_line()[1 if by_s else 0]
     if f < cf[i] + w * dcf[i] - mf[i]:
