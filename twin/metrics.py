@@ -241,7 +241,26 @@ def _finite(x: float) -> bool:
     return x is not None and math.isfinite(x)
 
 
-class _Families:
+class SampleSink:
+    """What :func:`write_result` writes to: gauges, flags, counters, info and enum samples.
+
+    Subclasses give ``flag`` (and the rest); ``enum`` is written here once, as one
+    flag per state.
+    """
+
+    def flag(self, name: str, doc: str, value: bool, **labels: str) -> None:
+        raise NotImplementedError
+
+    def enum(self, name: str, doc: str, label: str, current: str, values: Iterable[str], **labels: str) -> None:
+        """One sample per value of ``values`` (plus ``current`` if foreign), 1 for ``current``."""
+        states = list(values)
+        if current not in states:
+            states.append(current)
+        for s in states:
+            self.flag(name, doc, s == current, **labels, **{label: s})
+
+
+class _Families(SampleSink):
     """Metric families collected in first-use order, with optional sample timestamp."""
 
     def __init__(self, common: dict[str, str], timestamp: float | None) -> None:
@@ -275,13 +294,6 @@ class _Families:
         fam.add_metric([], values, timestamp=self.timestamp)
         self.families[name] = fam
 
-    def enum(self, name: str, doc: str, label: str, current: str, values: Iterable[str], **labels: str) -> None:
-        """One sample per value of ``values`` (plus ``current`` if foreign), 1 for ``current``."""
-        states = list(values)
-        if current not in states:
-            states.append(current)
-        for s in states:
-            self.flag(name, doc, s == current, **labels, **{label: s})
 
 
 def _kelvin_to_celsius(value: float) -> float:

@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import math
 from array import array
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 
+from twin.metrics import SampleSink
 from twin.result import CycleResult
 
 _SKIPPED = "twin_cycle_result_available"  # a live-endpoint liveness signal, meaningless in history
@@ -32,7 +33,7 @@ def _esc(text: str) -> str:
     return text.replace("\\", "\\\\").replace("\n", "\\n").replace('"', '\\"')
 
 
-class OpenMetricsWriter:
+class OpenMetricsWriter(SampleSink):
     """Receives the samples of :func:`twin.metrics.write_result`, window by window, and writes them as text.
 
     Families in first-use order, series in first-use order within their family,
@@ -96,13 +97,6 @@ class OpenMetricsWriter:
         series = self.series.get(key) or self._new("counter", name, f"{name}_total", doc, labels, key)
         series.values.append(value)
         series.windows.append(self.k)
-
-    def enum(self, name: str, doc: str, label: str, current: str, values: Iterable[str], **labels: str) -> None:
-        states = list(values)
-        if current not in states:
-            states.append(current)
-        for s in states:
-            self.flag(name, doc, s == current, **labels, **{label: s})
 
     def info(self, name: str, doc: str, values: dict[str, str]) -> None:
         key = (name, "", *values.items())

@@ -158,6 +158,17 @@ def _dense(M) -> np.ndarray:
     return np.array(M, dtype=float, copy=True)
 
 
+def _check_y(y, n: int) -> np.ndarray:
+    """``y`` as a finite 1-D float array of length ``n``, else a ValueError naming what is wrong."""
+    y = np.asarray(y, dtype=float).reshape(-1)
+    if y.shape != (n,):
+        raise ValueError(f"y has shape {y.shape}, expected ({n},) to match A columns")
+    bad = np.flatnonzero(~np.isfinite(y))
+    if bad.size:
+        raise ValueError(f"y contains non-finite values at indices {bad.tolist()}")
+    return y
+
+
 def _check_inputs(A, y, V, B, c):
     A = _dense(A)
     if A.ndim != 2:
@@ -165,12 +176,7 @@ def _check_inputs(A, y, V, B, c):
     m, n = A.shape
     if n == 0:
         raise ValueError("no measurements: A has no columns (all measurements removed?)")
-    y = np.asarray(y, dtype=float).reshape(-1)
-    if y.shape != (n,):
-        raise ValueError(f"y has shape {y.shape}, expected ({n},) to match A columns")
-    bad = np.flatnonzero(~np.isfinite(y))
-    if bad.size:
-        raise ValueError(f"y contains non-finite values at indices {bad.tolist()}")
+    y = _check_y(y, n)
     V = _dense(V)
     if V.ndim == 1:
         V = np.diag(V)

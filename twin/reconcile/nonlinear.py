@@ -38,6 +38,7 @@ from twin.reconcile.linear import (
     Classification,
     InconsistentConstraintsError,
     _check_inputs,
+    _check_y,
     _cov_factor,
     _solve,
 )
@@ -576,12 +577,7 @@ def _check_measurements(y, V, n):
     if Va.ndim != 1:
         _, y, Va, _, _ = _check_inputs(np.zeros((1, n)), y, Va, None, None)
         return y, Va
-    y = np.asarray(y, dtype=float).reshape(-1)
-    if y.shape != (n,):
-        raise ValueError(f"y has shape {y.shape}, expected ({n},) to match A columns")
-    bad = np.flatnonzero(~np.isfinite(y))
-    if bad.size:
-        raise ValueError(f"y contains non-finite values at indices {bad.tolist()}")
+    y = _check_y(y, n)
     if Va.shape != (n,):
         raise ValueError(f"V has shape {Va.shape}, expected ({n}, {n})")
     if not np.all(np.isfinite(Va)):
