@@ -223,3 +223,21 @@ def test_blocked_many_column_solves_equal_one_wide_solve():
 
     sig = np.sqrt(np.diag(net.V))
     np.testing.assert_allclose(measured_variances(K, sig, True), sig**2 * np.diag(wide[: K.n]), rtol=1e-12)
+
+
+def test_elimination_given_the_first_solve_finds_what_it_finds_from_scratch():
+    """Truth: the gross error injected at one measurement (12 σ); a caller's own first
+    solve handed in as ``first`` must give the same eliminations as solving it again."""
+    net = synthetic_network(120, seed=1, kind="linear")
+    y = net.y.copy()
+    y[5] += 12.0 * np.sqrt(net.V[5, 5])
+    opts = SolveOptions(covariance="full")
+    first = reconcile(net.system, net.z0, net.measured, y, net.V, options=opts)
+    assert first.converged
+    scratch = eliminate_suspects(net.system, first.z_warm, net.measured, y, net.V, options=opts)
+    given = eliminate_suspects(net.system, first.z_warm, net.measured, y, net.V, options=opts, first=first)
+    assert [e.position for e in given.eliminated] == [e.position for e in scratch.eliminated]
+    assert given.eliminated and given.eliminated[0].position == 5  # the injected error goes first
+    for a, b in zip(scratch.eliminated, given.eliminated, strict=True):
+        assert b.bias == pytest.approx(a.bias, rel=1e-6)
+        assert b.re_estimate == pytest.approx(a.re_estimate, rel=1e-9)

@@ -284,7 +284,7 @@ class PlantReconciler:
 
             elim = eliminate_suspects(sysm, first.z_warm, measured, y, V, max_eliminations=self.max_eliminations,
                                       alpha=self.alpha, criterion="sidak", protected=keep_ok, options=self.options,
-                                      restart=fresh())
+                                      restart=fresh(), first=first)
             if elim.result.converged:
                 res = elim.result
                 eliminated = {e.position: e for e in elim.eliminated}

@@ -89,7 +89,7 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
                        max_eliminations: int = 3, alpha: float = 0.05,
                        criterion: str = "sidak", protected: Protected = None,
                        options: SolveOptions | None = None,
-                       restart: np.ndarray | None = None) -> Elimination:
+                       restart: np.ndarray | None = None, first: Result | None = None) -> Elimination:
     """Serially eliminate suspect measurements (bounded count, protected observability).
 
     Parameters
@@ -99,6 +99,10 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
     restart : ndarray, optional
         A fresh starting point for the re-solves (tried before the previous solution,
         which the gross error may have pulled far from the consistent state).
+    first : Result, optional
+        A converged solution of this very problem (same ``measured``, ``y``, ``V`` and
+        ``options``), e.g. the caller's own first solve: used instead of solving the full
+        set again from ``z0``.
     max_eliminations : int
         Upper bound on the number of measurements removed.
     alpha : float
@@ -136,9 +140,13 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
         V = np.diag(V)
     keep = np.arange(measured.size)
     diagonal_v = np.count_nonzero(V) == np.count_nonzero(np.diag(V))
+    given = options
     if options is not None and options.covariance == "diagonal" and not diagonal_v:
         options = replace(options, covariance="measured")  # GLR needs Cov(a) with correlated V
-    res = reconcile(system, z0, measured, y, V, options=options)
+    if first is not None and first.converged and options is given:
+        res = first
+    else:
+        res = reconcile(system, z0, measured, y, V, options=options)
     log: list[tuple[int, float, float]] = []
     reason = f"reached max_eliminations={max_eliminations}"
     while True:
