@@ -199,3 +199,33 @@ def test_time_must_not_go_backwards():
     m.update(1.0, steady=True, time=10.0)
     with pytest.raises(ValueError, match="backwards"):
         m.update(1.0, steady=True, time=5.0)
+
+
+def test_drift_step_raises_one_transition_per_change_with_the_live_name():
+    """A 2σ shift after the reference: one ``active`` transition, then one ``normal`` after the shift ends.
+
+    Truth: the charts' own statistics (the step's transitions are the alarm flag's
+    changes), and the CUSUM's ARL at a 2σ shift, k = 0.5, h = 5: ≈ 4 windows
+    (Montgomery, Introduction to SQC, tabular-CUSUM ARL table) [memory].
+    """
+    from twin.cycle import DRIFT_LEVEL, drift_alarm_name, drift_step
+
+    bank = DriftBank(learn=["section_efficiency.HP"], params=DriftSettings(0.0, 1.0, 0.1, 2.7, 0.5, 5.0),
+                     reference_windows=50)
+    rng = np.random.default_rng(11)
+    sigma, t, got, flags = 1e-3, 0.0, [], []
+    for phase, shift, n in (("reference", 0.0, 50), ("shift", 2.0, 60), ("back", 0.0, 400)):
+        for _ in range(n):
+            t += 60.0
+            x = sigma * (shift + rng.standard_normal())
+            got += [(phase, tr) for tr in drift_step(bank, {"section_efficiency.HP": x}, True, t, 60.0)]
+            flags.append(bank.statuses()["section_efficiency.HP"].alarm)
+    changes = sum(bool(a) != bool(b) for a, b in zip([False, *flags], flags, strict=False))
+    assert len(got) == changes >= 2
+    first = got[0][1]
+    assert got[0][0] == "shift" and (first.alarm, first.level, first.old, first.new) == (
+        drift_alarm_name("section_efficiency.HP"), DRIFT_LEVEL, "normal", "active")
+    assert first.time - 50 * 60.0 <= 15 * 60.0  # within a few windows of the shift (ARL ≈ 4)
+    assert got[-1][1].new == "normal" and got[-1][1].old == "active"
+    # an unused window (not steady) changes nothing
+    assert drift_step(bank, {"section_efficiency.HP": 1.0}, False, t + 60.0, 60.0) == []

@@ -58,9 +58,53 @@ SNAPSHOT_VERSION = 1
 SETTLE_WINDOWS = 5
 
 
+#: Level of a drift chart's transitions (events.csv, logs, MQTT events).
+DRIFT_LEVEL = "drift"
+
+
 def suspect_alarm_name(tag: str) -> str:
     """The one name of a tag's suspect alarm: in results, on screen, in logs, metrics and MQTT events."""
     return f"suspect_{tag}"
+
+
+def drift_alarm_name(kpi: str) -> str:
+    """The one name of a KPI's drift alarm in transitions (logs, MQTT events, the back-fill's events.csv)."""
+    return f"drift_{kpi}"
+
+
+def drift_bank(config: PlantConfig) -> DriftBank:
+    """Drift charts on actual − expected of :data:`DRIFT_KPIS`; μ0 and σ learned from the unit's own steady windows."""
+    mon = config.monitoring.drift
+    return DriftBank(learn=DRIFT_KPIS, params=DriftSettings(0.0, 1.0, mon.ewma_lambda, mon.ewma_L, mon.cusum_k,
+                                                            mon.cusum_h),
+                     reference_windows=mon.reference_windows)
+
+
+def drift_step(bank: DriftBank, devs: Mapping[str, float], used: bool, t: float,
+               window_seconds: float) -> list[Transition]:
+    """Feed one window's deviations (actual − expected) to the charts; the drift alarms that changed.
+
+    ``used``: the window may enter the charts (steady, above the minimum load). Only
+    non-overlapping windows are charted: the bank skips one that starts before the last
+    used one ended. The same step runs in the live cycle and in the back-fill's
+    sequential drift pass (:mod:`twin.backfill.drift`), so both raise the same alarms.
+    """
+    before = {name: bool(st.alarm) for name, st in bank.statuses().items()}
+    out = []
+    for name, st in bank.update(devs, used, t, window_start=t - window_seconds).items():
+        if bool(st.alarm) != before.get(name, False):
+            new, reason = (("active", f"drift chart signals a shift {st.direction} from the learned reference")
+                           if st.alarm else ("normal", "drift charts back within their limits"))
+            out.append(Transition(drift_alarm_name(name), DRIFT_LEVEL, "normal" if new == "active" else "active",
+                                  new, float(t), float(devs.get(name, math.nan)), reason))
+    return out
+
+
+def drift_views(bank: DriftBank) -> dict[str, DriftView]:
+    """The charts' statistics as the result carries them (learning KPIs with NaN statistics)."""
+    return {name: DriftView(name, st.ewma, st.ewma_lower, st.ewma_upper, st.cusum_high, st.cusum_low,
+                            bool(st.alarm), st.direction)
+            for name, st in bank.statuses().items()}
 
 
 @dataclass(frozen=True)
@@ -111,6 +155,8 @@ class CycleOutput:
     kpi_seconds: float = math.nan  # the KPIs ± U (part of reconcile_seconds)
     expected_seconds: float = math.nan  # the expected values (part of deviation_seconds)
     monitors_seconds: float = math.nan  # alarms, suspects, drift
+    # what this window fed the drift charts: actual − expected per DRIFT_KPIS, and whether it was used
+    drift_input: tuple[dict[str, float], bool] | None = None
 
 
 def window_values(config: PlantConfig, stats: Mapping[str, WindowStats]) -> tuple[dict[str, float], dict[str, str]]:
@@ -190,16 +236,8 @@ class UnitCycle:
             for s in self.reconciler.settings.sections
         }
         self.suspects = SuspectTracker(mon.suspect_persistence)
-        self.drift = self._drift_bank()
+        self.drift = drift_bank(config)
         self._steady_windows = 0
-
-    # ------------------------------------------------------------------ set-up
-    def _drift_bank(self) -> DriftBank:
-        """Drift charts on actual − expected; μ0 and σ learned from the unit's own steady windows."""
-        mon = self.config.monitoring.drift
-        return DriftBank(learn=DRIFT_KPIS, params=DriftSettings(0.0, 1.0, mon.ewma_lambda, mon.ewma_L, mon.cusum_k,
-                                                                mon.cusum_h),
-                         reference_windows=mon.reference_windows)
 
     # ------------------------------------------------------------------ one window
     def run(self, window: WindowInput) -> CycleOutput:
@@ -230,7 +268,7 @@ class UnitCycle:
         if steady:
             self._steady_windows += 1
         t_mon = time.perf_counter()
-        transitions = self._update_monitors(t_end, steady, load, rec, kpis, expected)
+        transitions, drift_input = self._update_monitors(t_end, steady, load, rec, kpis, expected)
         t_mon = time.perf_counter() - t_mon
         result = CycleResult(
             unit_id=self.config.unit.id, window_start=t_end - window.window_seconds, window_end=t_end,
@@ -245,7 +283,7 @@ class UnitCycle:
             heat_rate_deviation_fuel_power_by_cause=dict(dev.fuel_power_by_cause),
             heat_rate_deviation_cost_by_cause=dict(dev.cost_per_hour_by_cause),
             currency=self.config.performance.currency,
-            alarms=self._alarm_views(), drift=self._drift_views(),
+            alarms=self._alarm_views(), drift=drift_views(self.drift),
             inputs=replace(window.inputs or InputStats(),
                            stale_tags=tuple(sorted(t for t, r in excluded.items() if r == "stale"))),
             depends_on=tuple(rec.depends_on), compute_seconds=time.perf_counter() - started,
@@ -253,7 +291,7 @@ class UnitCycle:
         if not rec.converged:
             notes.append(("reconcile_failed", {"window_end": t_end, "status": rec.status, "message": rec.message}))
         return CycleOutput(result, transitions, notes, t_rec, t_dev, dev.model_runs, rec.kpi_seconds,
-                           dev.expected_seconds, t_mon)
+                           dev.expected_seconds, t_mon, drift_input)
 
     def _kpis(self, rec: PlantReconciliation) -> dict[str, Estimate]:
         """Every KPI of the plant, unavailable where the window gave no value."""
@@ -292,8 +330,12 @@ class UnitCycle:
         return _finite_or_none(float(rec.z[next(iter(cols.values()))[0]]))
 
     def _update_monitors(self, t: float, steady: bool, load: float, rec: PlantReconciliation,
-                         kpis: Mapping[str, Estimate], expected: Mapping[str, float]) -> list[Transition]:
-        """Alarms, suspect persistence and drift; they act only on steady windows above the minimum load."""
+                         kpis: Mapping[str, Estimate], expected: Mapping[str, float],
+                         ) -> tuple[list[Transition], tuple[dict[str, float], bool] | None]:
+        """Alarms, suspect persistence and drift; they act only on steady windows above the minimum load.
+
+        Returns the transitions (drift alarms last) and what the drift charts were fed.
+        """
         mon = self.config.monitoring
         suppress = suppression_reason(steady, load if math.isfinite(load) else None, mon.min_load)
         out: list[Transition] = []
@@ -305,11 +347,12 @@ class UnitCycle:
             tested = [tag for tag, tr in rec.tags.items() if tr.valid]
             out += [replace(tr, alarm=suspect_alarm_name(tr.alarm))
                     for tr in self.suspects.update(rec.suspects, t, steady=steady and suppress is None, tested=tested)]
+        drift_input = None
         if len(self.drift):
             devs = {k: _value(kpis, k) - expected.get(k, math.nan) for k in DRIFT_KPIS}
-            # non-overlapping windows only: the bank skips one that starts before the last used one ended
-            self.drift.update(devs, steady and suppress is None, t, window_start=t - self.window_seconds)
-        return out
+            drift_input = (devs, steady and suppress is None)
+            out += drift_step(self.drift, devs, drift_input[1], t, self.window_seconds)
+        return out, drift_input
 
     def _alarm_views(self) -> dict[str, AlarmView]:
         views = {}
@@ -324,11 +367,6 @@ class UnitCycle:
         for tag in sorted(self.suspects.raised):
             views[suspect_alarm_name(tag)] = AlarmView(suspect_alarm_name(tag), "active", "suspect", math.nan, True)
         return views
-
-    def _drift_views(self) -> dict[str, DriftView]:
-        return {name: DriftView(name, st.ewma, st.ewma_lower, st.ewma_upper, st.cusum_high, st.cusum_low,
-                                bool(st.alarm), st.direction)
-                for name, st in self.drift.statuses().items()}
 
     # ------------------------------------------------------------------ state
     def snapshot(self) -> dict[str, Any]:

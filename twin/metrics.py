@@ -56,7 +56,7 @@ from twin import __version__
 from twin.kinds import MEASURED_QUANTITIES
 from twin.monitor.alarms import STATES as ALARM_STATES
 from twin.monitor.steady import STEADY_STATUSES
-from twin.result import ESTIMATE_STATUSES, RECONCILE_STATUSES, CycleResult
+from twin.result import ESTIMATE_STATUSES, RECONCILE_STATUSES, CycleResult, DriftView
 
 Provider = Callable[[], CycleResult | None]
 
@@ -244,9 +244,12 @@ def _finite(x: float) -> bool:
 class SampleSink:
     """What :func:`write_result` writes to: gauges, flags, counters, info and enum samples.
 
-    Subclasses give ``flag`` (and the rest); ``enum`` is written here once, as one
+    Subclasses give ``gauge`` and ``flag`` (and the rest); ``enum`` is written here once, as one
     flag per state.
     """
+
+    def gauge(self, name: str, doc: str, value: float, **labels: str) -> None:
+        raise NotImplementedError
 
     def flag(self, name: str, doc: str, value: bool, **labels: str) -> None:
         raise NotImplementedError
@@ -437,8 +440,13 @@ def _alarms(f: _Families, r: CycleResult) -> None:
 
 
 def _drift(f: _Families, r: CycleResult) -> None:
+    write_drift(f, r.drift)
+
+
+def write_drift(f: SampleSink, drift: Mapping[str, DriftView]) -> None:
+    """The drift-chart families of one window's charts (the live collector's, and the back-fill's drift pass)."""
     unit = " In the unit of the KPI's own metric."
-    for key, d in r.drift.items():
+    for key, d in drift.items():
         f.gauge("twin_kpi_drift_ewma", "EWMA of a KPI over steady windows." + unit, d.ewma, kpi=key)
         f.gauge("twin_kpi_drift_ewma_lower", "Lower EWMA control limit of a KPI." + unit, d.ewma_lower, kpi=key)
         f.gauge("twin_kpi_drift_ewma_upper", "Upper EWMA control limit of a KPI." + unit, d.ewma_upper, kpi=key)

@@ -12,22 +12,25 @@ Stages:
    the live tag store produces (window ``[t_end - window, t_end)``, gate means
    over the last cycle, staleness from the newest good sample held) and feeds
    them to :class:`twin.cycle.UnitCycle` as the daemon does.
-3. **Assemble**: finished chunks are concatenated in time order into
-   ``reconciled.csv``/``.parquet`` and ``events.csv``; ``openmetrics/`` holds
-   one OpenMetrics file per chunk.
+3. **Drift pass** (main process): the drift charts over every chunk's drift
+   inputs, in time order (:mod:`.drift`).
+4. **Assemble**: finished chunks are concatenated in time order into
+   ``reconciled.csv``/``.parquet`` and ``events.csv`` (drift transitions merged
+   in by time); ``openmetrics/`` holds per chunk its OpenMetrics file and its
+   drift charts' file.
 
-Sequential state (steady-state gate, alarm delays, suspect persistence, drift
-charts, the reconciler's warm start): **each chunk starts with a warm-up
-overlap**. A fresh cycle object runs the ``warmup`` windows before the chunk
-and their output is discarded; the chunk's windows then see monitor states
-built from the same recent history as a single sequential pass. The filters
-and delays forget their start within the warm-up (steady-gate filters with
-λ = 0.1 decay as 0.9^n; alarm delays and suspect persistence are a few
-windows); what can still differ from one uninterrupted pass is stated in
-the README (a CUSUM that has not come back to zero across a chunk boundary,
-and the reconciler's warm start at solver tolerance). Chunks are a fixed
-grid of the range, so the output does not depend on the number of workers,
-on Dask versus local processes, or on interruptions.
+Sequential state (steady-state gate, alarm delays, suspect persistence, the
+reconciler's warm start): **each chunk starts with a warm-up overlap**. A fresh
+cycle object runs the ``warmup`` windows before the chunk and their output is
+discarded; the chunk's windows then see monitor states built from the same recent
+history as a single sequential pass. The filters and delays forget their start
+within the warm-up (steady-gate filters with λ = 0.1 decay as 0.9^n; alarm delays
+and suspect persistence are a few windows); the reconciler's warm start differs at
+solver tolerance. **Drift charts**, whose state is the whole history, are not run
+in the chunks: each chunk records its windows' drift inputs and one sequential
+pass over all chunks (:mod:`.drift`) charts them in time order. Chunks are a fixed
+grid of the range, so the output does not depend on the number of workers, on
+Dask versus local processes, or on interruptions.
 
 Each finished chunk is written to ``DIR/chunks/<id>/`` under a temporary name
 and renamed, then recorded in ``DIR/manifest.json`` (rewritten atomically);
@@ -39,7 +42,8 @@ Advisory monitoring only: back-filled alarms describe the past; nothing here
 trips, interlocks or operates equipment.
 Modules: :mod:`.plan` (window grid, chunks), :mod:`.windows` (window statistics),
 :mod:`.rows` (CSV rows), :mod:`.openmetrics` (OpenMetrics text), :mod:`.chunk` (the
-chunk function run by workers), :mod:`.run` (spool, pool or Dask, manifest, assembly).
+chunk function run by workers), :mod:`.drift` (the sequential drift pass), :mod:`.run`
+(spool, pool or Dask, manifest, assembly).
 """
 
 from __future__ import annotations
@@ -49,7 +53,6 @@ from twin.backfill.chunk import (
     _peak_rss_mb,
     fresh_cycle,
     load_spool,
-    reference_pass,
     run_chunk,
 )
 from twin.backfill.openmetrics import openmetrics_text
@@ -98,7 +101,6 @@ __all__ = [
     "make_plan",
     "openmetrics_text",
     "output_digest",
-    "reference_pass",
     "result_rows",
     "rfc3339",
     "run_chunk",

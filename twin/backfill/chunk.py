@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 
+from twin.backfill.drift import DRIFT_INPUTS, save_inputs
 from twin.backfill.openmetrics import OpenMetricsWriter
 from twin.backfill.plan import ChunkSpec
 from twin.backfill.rows import event_row, result_rows
@@ -104,42 +105,15 @@ def _window_inputs(spec: ChunkSpec, config: Any) -> Iterator[Any]:
                           inputs=InputStats(messages=max(msgs, 0), rejected=rejected))
 
 
-def reference_pass(spec: ChunkSpec) -> dict[str, Any]:
-    """The drift charts' reference as one sequential pass from the start of the range learns it.
-
-    Runs the first chunk's windows (``spec``, warm-up included) through a fresh
-    cycle, as that chunk does, and stops at the first window after which no
-    drift KPI is learning: every μ0 and σ is then the one an uninterrupted pass
-    uses for the rest of the range. Returns ``learned_at`` (that window's end
-    [s], None when the first chunk does not complete the reference), ``drift``
-    (the bank's snapshot, JSON text) and ``windows`` (windows run).
-    """
-    config, cyc, _ = fresh_cycle(spec.config_path, spec.cycle, spec.window)
-    started = time.perf_counter()
-    done: dict[str, Any] = {"learned_at": None, "drift": "", "windows": 0}
-    if cyc.drift.reference:  # nothing to learn: no reference to hand on
-        for k, w in enumerate(_window_inputs(spec, config)):
-            cyc.run(w)
-            if not cyc.drift.reference:
-                done = {"learned_at": w.t_end, "drift": json.dumps(cyc.drift.snapshot(), sort_keys=True),
-                        "windows": k + 1}
-                break
-        else:
-            done["windows"] = len(spec.ends)
-    done["seconds"] = time.perf_counter() - started
-    return done
-
-
 def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
     """Run one chunk and write its outputs atomically to ``spec.out``; returns its summary.
 
     A pure function of the spec and the spool files: the same chunk run twice
     (another process, another machine of a Dask cluster) writes the same bytes.
-    With ``spec.learn_reference`` the summary also holds ``reference``, what
-    :func:`reference_pass` returns for this chunk (the first one), so a run in one
-    process need not run the pass. With ``spec.drift_reference`` the fresh cycle's drift charts start from that
-    learned reference (μ0, σ; charts restarted, as at the end of learning) instead
-    of learning their own from the chunk's first steady windows.
+    Drift charts are not written here: the kept windows' drift inputs go to
+    :data:`twin.backfill.drift.DRIFT_INPUTS` for the sequential drift pass
+    (:func:`twin.backfill.drift.drift_pass`), and the cycle's own drift transitions
+    and chart values (from a fresh chart) are left out of the chunk's outputs.
 
     Besides the counts, the summary holds machine figures (never written to the
     outputs): ``seconds`` (all), ``setup_seconds`` (fresh cycle, spool, window
@@ -148,11 +122,10 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
     ``reconcile_seconds`` (the reconciliation inside the kept windows), and
     ``peak_rss_mb``.
     """
+    from twin.cycle import DRIFT_LEVEL
+
     started = time.perf_counter()
     config, cyc, units = fresh_cycle(spec.config_path, spec.cycle, spec.window)
-    if spec.drift_reference:
-        cyc.drift.restore(json.loads(spec.drift_reference))
-        cyc.drift.reset()
     windows = list(_window_inputs(spec, config))
     tmp = Path(spec.out + ".tmp")
     shutil.rmtree(tmp, ignore_errors=True)
@@ -162,24 +135,21 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
                                "transitions": 0, "alarms_raised": 0, "suspects_raised": 0}
     clock = {"setup_seconds": time.perf_counter() - started, "warmup_seconds": 0.0, "cycle_seconds": 0.0,
              "reconcile_seconds": 0.0}
-    learning = spec.learn_reference and bool(cyc.drift.reference)
-    reference: dict[str, Any] = {"learned_at": None, "drift": "", "windows": len(windows) if learning else 0}
+    drift_inputs: list[tuple[float, dict[str, float], bool]] = []
     with open(tmp / "reconciled.csv", "w", encoding="utf-8", newline="") as rec_f, \
             open(tmp / "events.csv", "w", encoding="utf-8", newline="") as ev_f:
         for k, w in enumerate(windows):
             t0 = time.perf_counter()
             out = cyc.run(w)
-            if learning and not cyc.drift.reference:  # what reference_pass returns, without running it
-                reference = {"learned_at": w.t_end, "drift": json.dumps(cyc.drift.snapshot(), sort_keys=True),
-                             "windows": k + 1}
-                learning = False
             if k < spec.warmup:
                 clock["warmup_seconds"] += time.perf_counter() - t0
                 continue
             clock["cycle_seconds"] += time.perf_counter() - t0
             if math.isfinite(out.reconcile_seconds):
                 clock["reconcile_seconds"] += out.reconcile_seconds
-            r = replace(out.result, compute_seconds=math.nan)
+            r = replace(out.result, compute_seconds=math.nan, drift={})  # the drift pass writes the charts
+            if out.drift_input is not None:
+                drift_inputs.append((w.t_end, *out.drift_input))
             summary["windows"] += 1
             summary["steady"] += int(r.steady)
             summary["converged"] += int(r.reconcile_status == "converged")
@@ -187,6 +157,8 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
             if "csv" in spec.formats or "parquet" in spec.formats:
                 rec_f.writelines(result_rows(r, units))
             for tr in out.transitions:
+                if tr.level == DRIFT_LEVEL:  # raised by the drift pass, from the whole history
+                    continue
                 ev_f.write(event_row(tr))
                 summary["transitions"] += 1
                 if tr.new == "active":
@@ -195,11 +167,10 @@ def run_chunk(spec: ChunkSpec) -> dict[str, Any]:
                 metrics.add(r)
     if metrics is not None and metrics.stamps:
         metrics.write(tmp / "metrics.om")
+    save_inputs(tmp / DRIFT_INPUTS, drift_inputs)
     (tmp / "summary.json").write_text(json.dumps(summary, sort_keys=True), encoding="utf-8")
     final = Path(spec.out)
     shutil.rmtree(final, ignore_errors=True)
     os.replace(tmp, final)
     summary.update(clock, seconds=time.perf_counter() - started, peak_rss_mb=_peak_rss_mb())
-    if spec.learn_reference:
-        summary["reference"] = reference
     return summary

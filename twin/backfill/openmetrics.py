@@ -57,12 +57,16 @@ class OpenMetricsWriter(SampleSink):
         """The samples of one result, stamped with its window end [s] (results in time order)."""
         from twin.metrics import write_result
 
-        if not math.isfinite(result.window_end):
-            raise ValueError(f"result of unit {result.unit_id!r} has no finite window_end")
-        self.unit_id = result.unit_id
-        self.stamps.append(f" {result.window_end}\n")
-        self.k = len(self.stamps) - 1
+        self.window(result.unit_id, result.window_end)
         write_result(self, result)
+
+    def window(self, unit_id: str, window_end: float) -> None:
+        """Start a window: the samples written next carry its end [s] as their timestamp (windows in time order)."""
+        if not math.isfinite(window_end):
+            raise ValueError(f"result of unit {unit_id!r} has no finite window_end")
+        self.unit_id = unit_id
+        self.stamps.append(f" {window_end}\n")
+        self.k = len(self.stamps) - 1
 
     def _new(self, kind: str, family: str, sample: str, doc: str, labels: dict[str, str], key: tuple,
              common: bool = True) -> _Series:

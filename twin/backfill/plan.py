@@ -29,8 +29,6 @@ class ChunkSpec:
     formats: tuple[str, ...]
     messages_before: int  # samples before the chunk's first window (cumulative counter base)
     rejected: tuple[tuple[str, int], ...]  # read-time rejections of the whole run, by reason
-    drift_reference: str = ""  # learned drift charts (DriftBank snapshot, JSON) to start from; "" = learn
-    learn_reference: bool = False  # also report the drift reference as reference_pass would (first chunk, inline)
 
     @property
     def ends(self) -> np.ndarray:

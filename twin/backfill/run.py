@@ -18,7 +18,8 @@ from typing import Any
 
 import numpy as np
 
-from twin.backfill.chunk import _MEASURED, reference_pass, run_chunk
+from twin.backfill.chunk import _MEASURED, run_chunk
+from twin.backfill.drift import drift_pass
 from twin.backfill.plan import BackfillError, ChunkSpec, Plan, make_plan
 from twin.backfill.rows import EVENTS_HEADER, RECONCILED_COLUMNS, RECONCILED_HEADER, rfc3339
 from twin.history import HistoryReader
@@ -34,7 +35,7 @@ DEFAULT_CHUNK_WINDOWS = 1440
 #: sequential pass after at most 15 windows, alarm states and events after at most 16, KPIs
 #: from the first window (warm start at 1e-10); 60 windows leave a factor of 4.
 DEFAULT_WARMUP_WINDOWS = 60
-MANIFEST_VERSION = 2  # 2: the drift reference pass is recorded
+MANIFEST_VERSION = 3  # 3: drift charts in one sequential pass after the chunks (chunks hold its inputs)
 
 
 @dataclass
@@ -72,8 +73,8 @@ class BackfillSummary:
     seconds: float = 0.0
     chunk_seconds: float = 0.0  # compute time inside the chunks run now (no start-up, no reading)
     worker_peak_rss_mb: float = 0.0
-    reference_windows: int = 0  # windows of the drift reference pass run now
-    reference_seconds: float = 0.0
+    drift_alarms_raised: int = 0  # of alarms_raised: by the sequential drift pass
+    drift_seconds: float = 0.0  # the drift pass (every run, all chunks)
     # where the chunks run now spent their time (sums over chunks, see run_chunk)
     setup_seconds: float = 0.0
     warmup_seconds: float = 0.0
@@ -87,7 +88,8 @@ class BackfillSummary:
         share = 100.0 * self.steady / self.windows if self.windows else 0.0
         rej = ", ".join(f"{k} {v}" for k, v in sorted(self.rejected.items())) or "none"
         return (f"back-fill done: {self.windows} windows in {self.chunks} chunks ({self.chunks_skipped} already done), "
-                f"steady {share:.1f} %, not converged {self.not_converged}, alarms raised {self.alarms_raised}, "
+                f"steady {share:.1f} %, not converged {self.not_converged}, alarms raised {self.alarms_raised} "
+                f"({self.drift_alarms_raised} drift), "
                 f"suspects raised {self.suspects_raised}, {self.transitions} transitions; {self.samples} samples read, "
                 f"{self.bad_rows} bad rows, rejected: {rej}; {self.seconds:.1f} s")
 
@@ -288,59 +290,32 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
         _write_json_atomic(manifest_path, manifest)
         progress.add(s.n)
 
-    ref = manifest.get("reference")
-    # the first chunk's windows must be able to hold the reference period, or the pass learns nothing
-    need_ref = (ref is None and any(s.index > 0 for s in todo)
-                and len(specs[0].ends) >= int(config.monitoring.drift.reference_windows))
-    now = [s if need_ref else _with_reference(s, ref) for s in todo if s.index == 0 or not need_ref]
-    later = [s for s in todo if s.index > 0 and need_ref]
     if todo:
         echo(f"{len(todo)} chunk(s) to run ({summary.chunks_skipped} done before), "
-             f"{'Dask scheduler ' + opts.scheduler if opts.scheduler else str(_workers(opts)) + ' worker process(es)'}"
-             + ("; the drift reference pass first" if need_ref else ""))
+             f"{'Dask scheduler ' + opts.scheduler if opts.scheduler else str(_workers(opts)) + ' worker process(es)'}")
     if opts.scheduler:
         runner: _Runner = _DaskRunner(opts.scheduler)
-    elif _workers(opts) == 1 or len(todo) + need_ref <= 1:
+    elif _workers(opts) == 1 or len(todo) <= 1:
         runner = _Runner()
     else:
-        runner = _PoolRunner(min(_workers(opts), len(todo) + need_ref))
-    # in one process the first chunk runs first anyway: it reports the reference itself (same windows)
-    piggyback = need_ref and type(runner) is _Runner and any(s.index == 0 for s in now)
-
-    def got_reference(res: dict[str, Any]) -> None:
-        nonlocal ref
-        manifest["reference"] = ref = {k: res[k] for k in ("learned_at", "drift", "windows")}
-        summary.reference_windows = int(res["windows"]) if "seconds" in res else 0  # run for it alone
-        summary.reference_seconds = float(res.get("seconds", 0.0))
-        _write_json_atomic(manifest_path, manifest)
-        for s in later:
-            s = _with_reference(s, ref)
-            pending[runner.submit(run_chunk, s, s.name)] = s
-
+        runner = _PoolRunner(min(_workers(opts), len(todo)))
     with runner:
-        pending: dict[Any, ChunkSpec | None] = {}
-        if need_ref and not piggyback:
-            pending[runner.submit(reference_pass, specs[0], "reference")] = None
-        for s in now:
-            s = replace(s, learn_reference=True) if piggyback and s.index == 0 else s
-            pending[runner.submit(run_chunk, s, s.name)] = s
+        pending = {runner.submit(run_chunk, s, s.name): s for s in todo}
         while pending:
             for fut in runner.first_done(list(pending)):
                 spec = pending.pop(fut)
-                if spec is None:
-                    got_reference(_task_result("the drift reference pass (first chunk's windows)", fut))
-                    continue
-                res = _task_result(f"chunk {spec.name} ({rfc3339(spec.first_end)}, {spec.n} windows)", fut)
-                learned = res.pop("reference", None)
-                finished(spec, res)
-                if learned is not None:
-                    got_reference(learned)
+                finished(spec, _task_result(f"chunk {spec.name} ({rfc3339(spec.first_end)}, {spec.n} windows)", fut))
     summary.chunks = len(specs)
     for s in specs:
         res = results[s.name]
         for k in ("windows", "steady", "not_converged", "transitions", "alarms_raised", "suspects_raised"):
             setattr(summary, k, getattr(summary, k) + int(res.get(k, 0)))
-    _assemble(out, specs, opts.formats)
+    drift = drift_pass(config, specs, out, opts.formats)  # sequential, over every chunk, on every run
+    summary.drift_seconds = drift.seconds
+    summary.transitions += drift.transitions
+    summary.alarms_raised += drift.raised
+    summary.drift_alarms_raised = drift.raised
+    _assemble(out, specs, opts.formats, drift.rows)
     summary.seconds = time.monotonic() - started
     summary.t_first, summary.t_last = plan.ends[0], plan.ends[1]
     if len(results) == len(specs):
@@ -350,13 +325,6 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
 
 def _workers(opts: BackfillOptions) -> int:
     return opts.workers if opts.workers > 0 else (os.cpu_count() or 1)
-
-
-def _with_reference(s: ChunkSpec, ref: dict[str, Any] | None) -> ChunkSpec:
-    """The chunk started from the learned drift reference when its first window (warm-up included) is after it."""
-    if s.index == 0 or not ref or ref.get("learned_at") is None or float(s.ends[0]) <= float(ref["learned_at"]):
-        return s
-    return replace(s, drift_reference=str(ref["drift"]))
 
 
 def _task_result(what: str, fut: Any) -> dict[str, Any]:
@@ -440,8 +408,13 @@ class _DaskRunner(_Runner):
         return self._wait(futures, return_when="FIRST_COMPLETED").done
 
 
-def _assemble(out: Path, specs: Sequence[ChunkSpec], formats: Sequence[str]) -> None:
-    """Concatenate finished chunks in time order into the final files (atomic renames)."""
+def _assemble(out: Path, specs: Sequence[ChunkSpec], formats: Sequence[str],
+              drift_rows: dict[str, list[tuple[float, str]]]) -> None:
+    """Concatenate finished chunks in time order into the final files (atomic renames).
+
+    ``drift_rows``: the drift pass's events per chunk, merged into the chunk's events
+    by time (after the chunk's own events of the same window, as the live cycle orders them).
+    """
     if "csv" in formats or "parquet" in formats:
         tmp = out / "reconciled.csv.tmp"
         with open(tmp, "w", encoding="utf-8", newline="") as f:
@@ -461,8 +434,10 @@ def _assemble(out: Path, specs: Sequence[ChunkSpec], formats: Sequence[str]) -> 
     with open(tmp, "w", encoding="utf-8", newline="") as f:
         f.write(EVENTS_HEADER)
         for s in specs:
-            with open(Path(s.out) / "events.csv", encoding="utf-8") as part:
-                shutil.copyfileobj(part, f)
+            lines = Path(s.out, "events.csv").read_text(encoding="utf-8").splitlines(keepends=True)
+            rows = [(_event_time(ln), 0, k, ln) for k, ln in enumerate(lines)]
+            rows += [(t, 1, k, ln) for k, (t, ln) in enumerate(drift_rows.get(s.name, []))]
+            f.writelines(ln for *_, ln in sorted(rows))
     os.replace(tmp, out / "events.csv")
     if "openmetrics" in formats:
         om = out / "openmetrics"
@@ -473,6 +448,13 @@ def _assemble(out: Path, specs: Sequence[ChunkSpec], formats: Sequence[str]) -> 
                 dst = om / f"{s.name}.om"
                 shutil.copyfile(src, dst.with_suffix(".tmp"))
                 os.replace(dst.with_suffix(".tmp"), dst)
+
+
+def _event_time(row: str) -> float:
+    """The time [s] of an events.csv row (its first field, RFC 3339)."""
+    from datetime import datetime
+
+    return datetime.fromisoformat(row.split(",", 1)[0]).timestamp()
 
 
 def output_digest(out_dir: str | Path) -> str:
