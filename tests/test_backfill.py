@@ -267,8 +267,9 @@ def test_chunked_drift_charts_and_alarms_equal_one_sequential_pass(tmp_path):
         if k[0] in ("twin_kpi_drift_alarm", "twin_kpi_drift_direction"):
             assert drift_b[k] == x, k
         else:  # the KPIs agree to 1e-6 relative (warm start at solver tolerance): a thousandth of the band
+            # (the band is 0 at a chart's first window: then to rounding)
             band = drift_a[("twin_kpi_drift_ewma_upper", *k[1:])] - drift_a[("twin_kpi_drift_ewma_lower", *k[1:])]
-            assert abs(drift_b[k] - x) <= 1e-3 * band, k
+            assert abs(drift_b[k] - x) <= 1e-3 * band + 1e-12, k
     ev_a = [e.split(",")[:5] for e in (single / "events.csv").read_text().splitlines()[1:] if _t(e.split(",")[0]) >= first]
     ev_b = [e.split(",")[:5] for e in (chunked / "events.csv").read_text().splitlines()[1:] if _t(e.split(",")[0]) >= first]
     assert ev_a == ev_b

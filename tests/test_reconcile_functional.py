@@ -241,3 +241,42 @@ def test_elimination_given_the_first_solve_finds_what_it_finds_from_scratch():
     for a, b in zip(scratch.eliminated, given.eliminated, strict=True):
         assert b.bias == pytest.approx(a.bias, rel=1e-6)
         assert b.re_estimate == pytest.approx(a.re_estimate, rel=1e-9)
+
+
+def test_elimination_from_the_previous_window_with_cached_classifications_finds_the_same():
+    """Truth: the gross error injected at one measurement (12 σ) in two successive windows.
+
+    The second window's elimination started from the first window's reduced-set
+    solution (``warm``), with a lazily computed restart and the classifications the
+    first window cached, must eliminate what a from-scratch elimination eliminates,
+    with the same estimates (solver tolerance) and without calling the restart.
+    """
+    net = synthetic_network(120, seed=1, kind="linear")
+    rng = np.random.default_rng(4)
+    sig = np.sqrt(np.diag(net.V))
+    opts = SolveOptions(covariance="full")
+    cache: dict = {}
+    windows = []
+    for _ in range(2):
+        y = net.y + 0.3 * sig * rng.standard_normal(sig.size)
+        y[5] += 12.0 * sig[5]
+        windows.append(y)
+    first = eliminate_suspects(net.system, net.z0, net.measured, windows[0], net.V, options=opts,
+                               classifications=cache)
+    assert first.eliminated and first.eliminated[0].position == 5
+    assert any(k[0] == "trial" for k in cache) and any(k and k[0] != "trial" for k in cache)
+    calls = []
+
+    def restart():
+        calls.append(1)
+        return net.z0
+
+    scratch = eliminate_suspects(net.system, net.z0, net.measured, windows[1], net.V, options=opts)
+    warm = eliminate_suspects(net.system, net.z0, net.measured, windows[1], net.V, options=opts,
+                              warm=first.result.z_warm, restart=restart, classifications=cache)
+    assert [e.position for e in warm.eliminated] == [e.position for e in scratch.eliminated]
+    assert warm.eliminated[0].position == 5 and not calls  # the warm start served: no restart solved
+    for a, b in zip(scratch.eliminated, warm.eliminated, strict=True):
+        assert b.re_estimate == pytest.approx(a.re_estimate, rel=1e-7)
+        assert b.re_estimate_sigma == pytest.approx(a.re_estimate_sigma, rel=1e-6)
+    np.testing.assert_allclose(warm.result.z_hat, scratch.result.z_hat, rtol=1e-7, atol=1e-9)

@@ -115,7 +115,9 @@ class PlantReconciler:
         self.max_eliminations = max_eliminations
         self.options = options or DEFAULT_OPTIONS
         self.sensor_configs = {s.tag: s for s in config.sensors}
-        self._classifications: dict[tuple[int, ...], Classification] = {}
+        # classifications by measured set (and elimination trial sets, keyed ("trial", ...)), kept across windows
+        self._classifications: dict[tuple, Classification] = {}
+        self._sigma_floors: dict[str, float] = {}
         self._z_warm: np.ndarray | None = None
         self._soft_cols = np.array([r.column for r in self.system.soft], dtype=int)
         protected = {c for d in self.kpi_defs if d.name in PROTECTED_KPIS for c in d.columns}
@@ -130,8 +132,10 @@ class PlantReconciler:
         """
         s = self.sensor_configs[tag]
         sig = float(s.sigma_si(value_si))
-        rng = s.range_si
-        floor = 0.001 * abs(rng[1] - rng[0]) / 1.96 if rng is not None else 1e-9
+        floor = self._sigma_floors.get(tag)
+        if floor is None:
+            rng = s.range_si
+            floor = self._sigma_floors[tag] = 0.001 * abs(rng[1] - rng[0]) / 1.96 if rng is not None else 1e-9
         return sig if math.isfinite(sig) and sig >= floor else max(floor, 1e-9)
 
     def start_point(self, load: float | None = None) -> np.ndarray:
@@ -254,6 +258,8 @@ class PlantReconciler:
         cls_key = tuple(int(i) for i in measured)
         cached = self._classifications.get(cls_key)
         res = reconcile(sysm, z0, measured, y, V, options=self.options, classification=cached)
+        # the previous window's solution, when it served this one: a start for the re-solves of elimination
+        warm = z0 if res.converged and self._z_warm is not None and z0 is self._z_warm else None
         if not res.converged and time.perf_counter() - started < self.time_budget:
             # a stale warm start (after a load change): restart from the forward model,
             # and from the design point as a last resort
@@ -282,9 +288,11 @@ class PlantReconciler:
                     return False
                 return bool(np.all(cls.determined[protected])) if protected.size else True
 
+            if len(self._classifications) > 64:
+                self._classifications.clear()
             elim = eliminate_suspects(sysm, first.z_warm, measured, y, V, max_eliminations=self.max_eliminations,
                                       alpha=self.alpha, criterion="sidak", protected=keep_ok, options=self.options,
-                                      restart=fresh(), first=first)
+                                      restart=fresh, first=first, warm=warm, classifications=self._classifications)
             if elim.result.converged:
                 res = elim.result
                 eliminated = {e.position: e for e in elim.eliminated}

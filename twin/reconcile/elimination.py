@@ -13,8 +13,9 @@ References
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, MutableMapping
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 
@@ -89,16 +90,29 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
                        max_eliminations: int = 3, alpha: float = 0.05,
                        criterion: str = "sidak", protected: Protected = None,
                        options: SolveOptions | None = None,
-                       restart: np.ndarray | None = None, first: Result | None = None) -> Elimination:
+                       restart: np.ndarray | Callable[[], np.ndarray] | None = None, first: Result | None = None,
+                       warm: np.ndarray | None = None,
+                       classifications: MutableMapping[tuple, Classification] | None = None) -> Elimination:
     """Serially eliminate suspect measurements (bounded count, protected observability).
 
     Parameters
     ----------
     system, z0, measured, y, V, options
         As for :func:`twin.reconcile.nonlinear.reconcile`.
-    restart : ndarray, optional
+    restart : ndarray or callable, optional
         A fresh starting point for the re-solves (tried before the previous solution,
-        which the gross error may have pulled far from the consistent state).
+        which the gross error may have pulled far from the consistent state); a
+        callable is called only when a re-solve needs it (a costly forward solve).
+    warm : ndarray, optional
+        A starting point tried before ``restart``, e.g. the previous window's
+        solution: when that window eliminated the same measurement it is already the
+        consistent state without it.
+    classifications : mutable mapping, optional
+        A cache the caller keeps across calls (windows): the trial sets'
+        classifications under ``("trial", *variables)`` and the re-solves' under
+        ``tuple(variables)``, reused instead of computed again (the plant reconciler's
+        own cache of the full set's classification works the same way: the rank
+        decisions of a measurement set are taken once).
     first : Result, optional
         A converged solution of this very problem (same ``measured``, ``y``, ``V`` and
         ``options``), e.g. the caller's own first solve: used instead of solving the full
@@ -171,7 +185,12 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
             trial = np.delete(measured[keep], j)
             if trial.size == 0:
                 continue
-            cls = classify(J, trial, sigma=np.sqrt(np.diag(np.delete(np.delete(Vk, j, 0), j, 1))))
+            key = ("trial", *(int(v) for v in trial))
+            cls = classifications.get(key) if classifications is not None else None
+            if cls is None:
+                cls = classify(J, trial, sigma=np.sqrt(np.diag(np.delete(np.delete(Vk, j, 0), j, 1))))
+                if classifications is not None:
+                    classifications[key] = cls
             if ok(cls):
                 chosen = j
                 break
@@ -181,12 +200,17 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
         log.append((int(keep[chosen]), float(res.z[chosen]), float(bias[chosen])))
         # the previous solution was pulled by the gross error: a given fresh start point
         # is tried first, the previous solution second
-        starts = [res.z_warm] if restart is None else [restart, res.z_warm]
+        previous = res.z_warm
+        starts: list[Any] = [s for s in (warm, restart) if s is not None] + [previous]
         keep = np.delete(keep, chosen)
+        set_key = tuple(int(v) for v in measured[keep])
+        known = classifications.get(set_key) if classifications is not None else None
         for z_start in starts:
-            res = reconcile(system, z_start, measured[keep], y[keep], V[np.ix_(keep, keep)],
-                            options=options)
+            res = reconcile(system, z_start() if callable(z_start) else z_start, measured[keep], y[keep],
+                            V[np.ix_(keep, keep)], options=options, classification=known)
             if res.converged:
+                if classifications is not None and known is None and res.classification is not None:
+                    classifications[set_key] = res.classification
                 break
     out = []
     n_vars = int(system.n_vars)
