@@ -122,3 +122,21 @@ def test_kpi_uncertainty_matches_straightforward_differences():
         assert got.uncertainty == pytest.approx(u, rel=1e-6, abs=1e-12), d.name
         checked += 1
     assert checked >= 30
+
+
+def test_kept_evaluations_answer_as_a_fresh_evaluation(system):
+    """The last few evaluations kept by z: a point asked again (after others) gives what the
+    straightforward evaluation gives there, and a point nudged by one ulp is evaluated anew."""
+    from twin.performance.plant import EVALUATIONS_KEPT
+
+    states = random_states(system, EVALUATIONS_KEPT + 2, seed=21)
+    for z in states:
+        system.residuals(z)
+    for z in [*states[-EVALUATIONS_KEPT:], states[0]]:  # kept ones, then one pushed out
+        f, J = system.residuals(z), system.jacobian(z).toarray()
+        f_ref, J_ref = reference_evaluation(system, z)
+        np.testing.assert_allclose(f, f_ref, rtol=REL, atol=REL * np.abs(f_ref).max())
+        np.testing.assert_allclose(J, J_ref, rtol=REL, atol=REL * np.abs(J_ref).max())
+    z = states[-1].copy()
+    z[0] = np.nextafter(z[0], np.inf)
+    assert system.residuals(z) is not system.residuals(states[-1])

@@ -37,6 +37,7 @@ their uncertainties by correction calculation for operation and acceptance tests
 from __future__ import annotations
 
 import math
+from collections import OrderedDict
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -167,6 +168,8 @@ def soft_relation_sigmas(fs: Flowsheet, design: HeatBalance,
 #: Width of the enthalpy band below the dew line over which a thermometer's reading
 #: is blended from T_sat into the superheated branch [J/kg].
 DEW_BAND = 10000.0
+#: Evaluations (residuals, Jacobian, property context) kept by z, most recently used last.
+EVALUATIONS_KEPT = 4
 
 
 def sensor_temperature(ctx: Any, stream: str) -> tuple[float, float, float]:
@@ -313,9 +316,10 @@ class PlantSystem:
         self.n_vars = n
         self.n_model = lay.n_vars
         self._skip = self._non_soft_relations()
-        self._cache_key: bytes | None = None
-        self._cache: tuple[np.ndarray, sp.csr_matrix] | None = None
-        self._cache_ctx: Context | None = None
+        # the last few evaluations by z (a window's solve starts where the last one ended, and
+        # an elimination re-solve where the window's first solve started): exact reuse
+        self._evals: OrderedDict[bytes, tuple[np.ndarray, sp.csr_matrix, Context]] = OrderedDict()
+        self._cache_ctx: Context | None = None  # the most recently used evaluation's context
         self._scales = self._make_scales()
 
     # ------------------------------------------------------------ structure
@@ -436,13 +440,17 @@ class PlantSystem:
 
     def _evaluate(self, z: np.ndarray) -> tuple[np.ndarray, sp.csr_matrix]:
         key = z.tobytes()
-        if key != self._cache_key or self._cache is None:
+        hit = self._evals.get(key)
+        if hit is None:
             ctx = self.fs.context(z.copy(), self.constants)  # kept: must not see later changes to z
             rows, _ = self._rows(z, ctx)
-            self._cache = (rows.residuals(), rows.jacobian(self.n_vars))
-            self._cache_key = key
-            self._cache_ctx = ctx
-        return self._cache
+            hit = self._evals[key] = (rows.residuals(), rows.jacobian(self.n_vars), ctx)
+            if len(self._evals) > EVALUATIONS_KEPT:
+                self._evals.popitem(last=False)
+        else:
+            self._evals.move_to_end(key)
+        self._cache_ctx = hit[2]
+        return hit[0], hit[1]
 
     def residuals(self, z: np.ndarray) -> np.ndarray:
         return self._evaluate(np.asarray(z, dtype=float))[0]
