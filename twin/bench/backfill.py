@@ -19,6 +19,12 @@ Three parts, one JSON document:
   peak resident memory of the main process and of the largest worker, and the
   projected time of a unit-year of 1-minute windows with twin backfill's
   default chunks (``unit_year_minutes_projected``, a projection);
+* ``memory``: peak resident memory of whole ``twin backfill`` runs (one process,
+  one-hour chunks, each run its own child process, its peak read with ``wait4``)
+  over histories of ``--memory-hours`` spans: memory bounded by a chunk shows
+  as the same peak for a span several times longer (``growth_mb_per_hour``
+  between the two longest spans; the caches of the first hours, e.g. the expected
+  model's solved grid nodes, fill up to their bounds);
 * ``live``: the cost of one live window in the same run (the daemon's tag
   store window + :class:`twin.cycle.UnitCycle` on the same history), and
   where it goes (reconciliation share).
@@ -64,6 +70,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--warmup-windows", type=int, default=10,
                         help="warm-up windows per chunk in the measured runs (default 10; the unit-year projection "
                              "uses the defaults of twin backfill)")
+    parser.add_argument("--memory-hours", default="4,16",
+                        help="history spans [h] of the memory part, comma-separated ('' skips it; default 4,16)")
     parser.add_argument("--skip-backfill", action="store_true", help="reading rate only")
 
 
@@ -201,6 +209,40 @@ def _run_figures(s: Any, wall: float, workers: int) -> dict[str, Any]:
                               "drift pass at this run's cost a window; a projection, not a measurement (start-up of the workers not included)")}
 
 
+def _memory(config_path: str, spans: list[float], cycle: float, sample_interval: float, d: Path) -> dict[str, Any]:
+    """Peak RSS of one-process back-fills (one-hour chunks) over histories of several spans, each run a child."""
+    import subprocess
+    import sys
+
+    from twin.config import load_config
+    from twin.demo.history import write_history
+
+    config = load_config(config_path)
+    runs = []
+    for hours in spans:
+        hist = d / f"memory-{hours:g}h.csv.gz"
+        write_history(config, hist, hours=hours, start=1767571200.0, sample_interval=sample_interval, seed=2,
+                      model_interval=max(15.0, cycle))
+        cmd = [sys.executable, "-m", "twin.cli", "backfill", config_path, str(hist), "--out", str(d / f"mem-{hours:g}"),
+               "--cycle", str(cycle), "--window", str(cycle), "--chunk", "1", "--warmup", str(10 * cycle / 60),
+               "--workers", "1", "--format", "csv,openmetrics"]
+        w0 = time.perf_counter()
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        _, status, usage = os.wait4(proc.pid, 0)
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
+        if proc.returncode != 0:
+            raise RuntimeError(f"twin backfill over {hours:g} h failed ({proc.returncode}): {err.strip()[-300:]}")
+        runs.append({"hours": hours, "windows": round(hours * 3600 / cycle), "wall_s": round(time.perf_counter() - w0, 1),
+                     "peak_rss_mb": round(usage.ru_maxrss / 1024.0, 1)})  # Linux: KiB
+    runs.sort(key=lambda r: r["hours"])
+    growth = ((runs[-1]["peak_rss_mb"] - runs[-2]["peak_rss_mb"]) / (runs[-1]["hours"] - runs[-2]["hours"])
+              if len(runs) > 1 and runs[-1]["hours"] != runs[-2]["hours"] else None)
+    return {"runs": runs, "growth_mb_per_hour": None if growth is None else round(growth, 2),
+            "how": "twin backfill --workers 1 --chunk 1 (one-hour chunks, 10 warm-up windows) in a child process each; "
+                   "peak resident memory of that process from wait4 (reading, chunks, drift pass, assembly)"}
+
+
 def run(args: argparse.Namespace) -> dict[str, Any]:
     from twin.backfill import BackfillOptions, backfill
     from twin.config import load_config
@@ -231,6 +273,9 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
             wall = time.perf_counter() - w0
             runs[str(workers)] = _run_figures(s, wall, workers)
         result["backfill"] = runs
+        spans = [float(h) for h in str(args.memory_hours).split(",") if h.strip()]
+        if spans:
+            result["memory"] = _memory(args.config, spans, args.cycle, args.sample_interval, d)
         result["live"] = _live(args.config, hist, args.cycle, args.live_windows)
         live_rate = 1e3 / result["live"]["per_window_ms_median"]
         result["live"]["windows_per_s_one_core"] = round(live_rate, 3)
