@@ -232,8 +232,25 @@ def test_chunked_warmup_equals_a_single_sequential_pass(history, tmp_path):
     assert [e.split(",")[:5] for e in ev_a] == [e.split(",")[:5] for e in ev_b]
 
 
+@pytest.fixture(scope="module")
+def drift_run(tmp_path_factory):
+    """4 simulated hours with a 20-window drift reference, back-filled in one chunk without warm-up."""
+    from twin.demo.history import write_history
+
+    d = tmp_path_factory.mktemp("drift")
+    text = CONFIG.read_text()
+    assert "reference_windows = 100" in text
+    cfg_path = d / "demo-u1-short-reference.toml"
+    cfg_path.write_text(text.replace("reference_windows = 100", "reference_windows = 20"))
+    hist = d / "h.csv.gz"
+    write_history(load_config(cfg_path), hist, hours=4.0, start=START, sample_interval=10.0, seed=5)
+    single = d / "single"
+    s1 = backfill(cfg_path, [hist], single, _opts(chunk_seconds=5 * 3600.0, warmup_seconds=0.0), echo=_quiet)
+    return cfg_path, hist, single, s1
+
+
 @pytest.mark.slow
-def test_chunked_drift_charts_and_alarms_equal_one_sequential_pass(tmp_path):
+def test_chunked_drift_charts_and_alarms_equal_one_sequential_pass(drift_run, tmp_path):
     """Drift charts and drift alarms of a chunked run == one uninterrupted pass (the sequential drift pass).
 
     A drift chart carries its whole history (learned reference, EWMA, CUSUM), so
@@ -242,16 +259,8 @@ def test_chunked_drift_charts_and_alarms_equal_one_sequential_pass(tmp_path):
     raise the HP drift alarm in both, at the same window, with chunks of 40 windows
     (the CUSUM accumulates across several chunk boundaries).
     """
-    from twin.demo.history import write_history
-
-    text = CONFIG.read_text()
-    assert "reference_windows = 100" in text
-    cfg_path = tmp_path / "demo-u1-short-reference.toml"
-    cfg_path.write_text(text.replace("reference_windows = 100", "reference_windows = 20"))
-    hist = tmp_path / "h.csv.gz"
-    write_history(load_config(cfg_path), hist, hours=4.0, start=START, sample_interval=10.0, seed=5)
-    single, chunked = tmp_path / "single", tmp_path / "chunked"
-    s1 = backfill(cfg_path, [hist], single, _opts(chunk_seconds=5 * 3600.0, warmup_seconds=0.0), echo=_quiet)
+    cfg_path, hist, single, s1 = drift_run
+    chunked = tmp_path / "chunked"
     n_chunk, n_warm = 40, 60
     s2 = backfill(cfg_path, [hist], chunked, _opts(chunk_seconds=n_chunk * CYCLE, warmup_seconds=n_warm * CYCLE,
                                                    workers=2), echo=_quiet)
@@ -283,6 +292,48 @@ def test_chunked_drift_charts_and_alarms_equal_one_sequential_pass(tmp_path):
         assert len(heads) == len(set(heads)) and f.read_text().endswith("# EOF\n"), f
         kinds.append(len(heads))
     assert kinds[0] == 2 and kinds[-1] == 7, kinds
+
+
+@pytest.mark.slow
+def test_live_daemon_path_gives_the_backfilled_drift_charts_and_alarms(drift_run):
+    """The daemon's tag store, window input and cycle object over the same 4 hours == the back-fill's
+    drift pass: every chart value of every window (exactly), and the drift transitions of events.csv."""
+    from twin.daemon import Daemon, DaemonOptions, ManualClock
+    from twin.performance.plant_reconcile import PlantReconciler
+
+    cfg_path, hist, single, _ = drift_run
+    cfg = load_config(cfg_path)
+    cfg.monitoring.cycle = cfg.monitoring.window = CYCLE
+    daemon = Daemon(cfg, clock=ManualClock(START), options=DaemonOptions(metrics=False, republish=False),
+                    reconciler=PlantReconciler(cfg, time_budget=math.inf))
+    samples = read_samples(HistoryReader(cfg), [hist])
+    tags = [s.tag for s in cfg.sensors]
+    order = np.argsort(samples.t, kind="stable")
+    first, _, count = make_plan(float(samples.t.min()), float(samples.t.max()) + 1e-6, CYCLE, CYCLE, 1, 0).ends
+    ends = first + CYCLE * np.arange(count)  # the back-fill's grid (its range: the span of the data)
+    assert count > 200
+    live_samples: dict[tuple[str, str, float], float] = {}
+    live_events = []
+    k = 0
+    for t_end in ends:
+        while k < len(order) and samples.t[order[k]] < t_end:  # messages arrive in time order
+            i = order[k]
+            daemon.store.add(tags[samples.tag[i]], float(samples.t[i]), float(samples.value[i]), bool(samples.ok[i]))
+            k += 1
+        out = daemon.cycle.run(daemon.window_input(float(t_end)))
+        for name, d in out.result.drift.items():
+            labels = f'kpi="{name}",unit_id="{cfg.unit.id}"}}'
+            for metric, v in (("ewma", d.ewma), ("ewma_lower", d.ewma_lower), ("ewma_upper", d.ewma_upper),
+                              ("cusum_high", d.cusum_high), ("cusum_low", d.cusum_low)):
+                if math.isfinite(v):
+                    live_samples[(f"twin_kpi_drift_{metric}", labels, t_end)] = v
+            live_samples[("twin_kpi_drift_alarm", labels, t_end)] = 1.0 if d.alarm else 0.0
+        live_events += [[tr.alarm, tr.old, tr.new] for tr in out.transitions if tr.level == "drift"]
+    got = {k: v for k, v in _om_samples(single, START).items()
+           if k[0].startswith("twin_kpi_drift") and k[0] != "twin_kpi_drift_direction"}
+    assert len(live_samples) > 1000 and got == live_samples
+    bf_events = [e.split(",")[1:5] for e in (single / "events.csv").read_text().splitlines()[1:]]
+    assert [[a, o, n] for a, lv, o, n in bf_events if lv == "drift"] == live_events and live_events
 
 
 def _om_samples(out: Path, t_min: float) -> dict[tuple[str, str, float], float]:
