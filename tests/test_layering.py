@@ -28,7 +28,7 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
     ("L9 commands", ("twin.cli", "twin.commands.*", "twin.bench.*")),
     ("L8 orchestrators", ("twin.daemon", "twin.backfill.*", "twin.demo.*")),
     ("L7b cycle", ("twin.cycle",)),
-    ("L7 adapters", ("twin.mqtt", "twin.sparkplug", "twin.metrics.*", "twin.history.*", "twin.ingest.*",
+    ("L7 adapters", ("twin.mqtt.*", "twin.sparkplug", "twin.metrics.*", "twin.history.*", "twin.ingest.*",
                      "twin.diagram", "twin.state")),
     ("L6 monitor", ("twin.monitor.*",)),
     ("L5 performance", ("twin.performance.*",)),
@@ -54,7 +54,7 @@ ISOLATED: tuple[str, ...] = ("twin.reconcile", "twin.monitor")
 # Third-party library (top-level import name) -> the one module that may import it.
 GATEWAYS: dict[str, str] = {
     "CoolProp": "twin.properties.backend",
-    "paho": "twin.mqtt",
+    "paho": "twin.mqtt.*",
     "google": "twin.sparkplug",  # protobuf (google.protobuf)
     "prometheus_client": "twin.metrics.*",
     "pydantic": "twin.config.*",
