@@ -201,8 +201,9 @@ def test_stream_survives_subscriber_restart_without_loss(mosquitto_factory, wait
     for _, p in got.items:
         counts[p] = counts.get(p, 0) + 1
     assert set(counts) == {p for _, p in sent} | {b"probe"}
-    # duplicates are only the messages in flight when the first client stopped
-    assert sum(c - 1 for c in counts.values()) <= 500
+    # duplicates of the stream are only the messages in flight when the first client stopped (the broker's
+    # max_inflight_messages); the probe is left out: on a slow start it is published, and received, more than once
+    assert sum(c - 1 for p, c in counts.items() if p != b"probe") <= 500
 
 
 def test_tls_bulk_stream(mosquitto_factory, tls_files, wait_for):
