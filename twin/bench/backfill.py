@@ -20,7 +20,8 @@ Three parts, one JSON document:
   projected time of a unit-year of 1-minute windows with twin backfill's
   default chunks (``unit_year_minutes_projected``, a projection);
 * ``memory``: peak resident memory of whole ``twin backfill`` runs (one process,
-  one-hour chunks, each run its own child process, its peak read with ``wait4``)
+  one-hour chunks, each run its own child process reporting its own peak, VmHWM,
+  at exit: ``ru_maxrss`` would carry the bench process's own peak across the exec)
   over histories of ``--memory-hours`` spans: memory bounded by a chunk shows
   as the same peak for a span several times longer (``growth_mb_per_hour``
   between the two longest spans; the caches of the first hours, e.g. the expected
@@ -209,6 +210,14 @@ def _run_figures(s: Any, wall: float, workers: int) -> dict[str, Any]:
                               "drift pass at this run's cost a window; a projection, not a measurement (start-up of the workers not included)")}
 
 
+#: ``python -c`` program: twin's CLI, then this process's own peak RSS (VmHWM) on stderr at exit.
+_PEAK_AT_EXIT = ("import atexit, sys\n"
+                 "from twin.backfill import _peak_rss_mb\n"
+                 "atexit.register(lambda: print('twin-peak-rss-mb', _peak_rss_mb(), file=sys.stderr))\n"
+                 "from twin.cli import main\n"
+                 "sys.exit(main(sys.argv[1:]))\n")
+
+
 def _memory(config_path: str, spans: list[float], cycle: float, sample_interval: float, d: Path) -> dict[str, Any]:
     """Peak RSS of one-process back-fills (one-hour chunks) over histories of several spans, each run a child."""
     import subprocess
@@ -223,24 +232,22 @@ def _memory(config_path: str, spans: list[float], cycle: float, sample_interval:
         hist = d / f"memory-{hours:g}h.csv.gz"
         write_history(config, hist, hours=hours, start=1767571200.0, sample_interval=sample_interval, seed=2,
                       model_interval=max(15.0, cycle))
-        cmd = [sys.executable, "-m", "twin.cli", "backfill", config_path, str(hist), "--out", str(d / f"mem-{hours:g}"),
+        cmd = [sys.executable, "-c", _PEAK_AT_EXIT, "backfill", config_path, str(hist), "--out", str(d / f"mem-{hours:g}"),
                "--cycle", str(cycle), "--window", str(cycle), "--chunk", "1", "--warmup", str(10 * cycle / 60),
                "--workers", "1", "--format", "csv,openmetrics"]
         w0 = time.perf_counter()
-        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-        _, status, usage = os.wait4(proc.pid, 0)
-        proc.returncode = os.waitstatus_to_exitcode(status)
-        err = proc.stderr.read().decode(errors="replace") if proc.stderr else ""
-        if proc.returncode != 0:
-            raise RuntimeError(f"twin backfill over {hours:g} h failed ({proc.returncode}): {err.strip()[-300:]}")
+        proc = subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, check=False)
+        peak = [ln.split()[1] for ln in proc.stderr.splitlines() if ln.startswith("twin-peak-rss-mb ")]
+        if proc.returncode != 0 or not peak:
+            raise RuntimeError(f"twin backfill over {hours:g} h failed ({proc.returncode}): {proc.stderr.strip()[-300:]}")
         runs.append({"hours": hours, "windows": round(hours * 3600 / cycle), "wall_s": round(time.perf_counter() - w0, 1),
-                     "peak_rss_mb": round(usage.ru_maxrss / 1024.0, 1)})  # Linux: KiB
+                     "peak_rss_mb": round(float(peak[-1]), 1)})
     runs.sort(key=lambda r: r["hours"])
     growth = ((runs[-1]["peak_rss_mb"] - runs[-2]["peak_rss_mb"]) / (runs[-1]["hours"] - runs[-2]["hours"])
               if len(runs) > 1 and runs[-1]["hours"] != runs[-2]["hours"] else None)
     return {"runs": runs, "growth_mb_per_hour": None if growth is None else round(growth, 2),
             "how": "twin backfill --workers 1 --chunk 1 (one-hour chunks, 10 warm-up windows) in a child process each; "
-                   "peak resident memory of that process from wait4 (reading, chunks, drift pass, assembly)"}
+                   "peak resident memory of that process (VmHWM at its exit: reading, chunks, drift pass, assembly)"}
 
 
 def run(args: argparse.Namespace) -> dict[str, Any]:
