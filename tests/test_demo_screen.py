@@ -148,3 +148,19 @@ def test_every_heat_rate_cause_has_a_screen_label():
     from twin.performance.expected import CAUSES
 
     assert set(CAUSES) | {"unaccounted"} <= set(CAUSE_LABELS)
+
+
+def test_a_signalling_drift_chart_is_listed_with_the_alarms(config):
+    """The drift alarm carries the name it has in the log and the MQTT events (twin.cycle.drift_alarm_name)."""
+    from dataclasses import replace
+
+    from twin.result import DriftView
+
+    out = io.StringIO()
+    screen = DemoScreen(config, T0, 80 * 60, out=out, tty=False)
+    drift = {"section_efficiency.HP": DriftView("section_efficiency.HP", -0.012, -0.004, 0.004, 0.0, 0.03, True, "down"),
+             "turbine_heat_rate": DriftView("turbine_heat_rate", 0.001, -0.004, 0.004, 0.0, 0.0, False, "none")}
+    screen.show(replace(_result(70.0), drift=drift))
+    line = out.getvalue().splitlines()[0]
+    assert "alarms exhaust_moisture warning,suspect_FW-F1,drift_section_efficiency.HP down" in line
+    assert "drift_turbine_heat_rate" not in line

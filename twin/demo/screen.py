@@ -22,6 +22,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, TextIO
 
+from twin.cycle import drift_alarm_name
 from twin.result import CycleResult
 
 CAUSE_LABELS = {
@@ -209,6 +210,8 @@ class DemoScreen:
                 out.append(f"{a.name} {a.severity}" if a.severity and a.severity != "suspect" else a.name)
             elif a.state == "pending":
                 out.append(f"{a.name} pending")
+        # drift charts signalling (their alarm name as in the log and the MQTT events)
+        out += [f"{drift_alarm_name(k)} {d.direction}" for k, d in r.drift.items() if d.alarm]
         return out
 
     def _suspects(self, r: CycleResult) -> list[str]:
