@@ -188,6 +188,26 @@ def test_pool_equals_one_process_and_resume_skips(reference, history, tmp_path):
 
 
 @pytest.mark.slow
+def test_a_chunk_without_its_drift_inputs_runs_again_and_a_broken_one_is_one_line(reference, history, tmp_path):
+    """The drift pass reads every chunk's drift inputs: a finished chunk missing them is recomputed
+    (output identical to the uninterrupted run), an unreadable one stops with one line naming the file."""
+    import shutil
+
+    from twin.backfill import BackfillError
+
+    out = tmp_path / "copy"
+    shutil.copytree(reference, out)
+    (out / "chunks" / "chunk-000001" / "drift.npy").unlink()
+    again = backfill(CONFIG, [history], out, _opts(), echo=_quiet)
+    assert again.chunks_skipped == 2 and output_digest(out) == output_digest(reference)
+    broken = out / "chunks" / "chunk-000000" / "drift.npy"
+    broken.write_bytes(b"not an array")
+    with pytest.raises(BackfillError, match=r"chunk-000000/drift\.npy: unreadable drift inputs") as err:
+        backfill(CONFIG, [history], out, _opts(), echo=_quiet)
+    assert "\n" not in str(err.value)
+
+
+@pytest.mark.slow
 def test_outputs_columns_and_openmetrics(reference):
     lines = (reference / "reconciled.csv").read_text().splitlines()
     assert lines[0] == "window_end,name,value,uncertainty_95,unit,status,steady"

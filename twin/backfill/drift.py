@@ -27,7 +27,7 @@ from typing import Any
 import numpy as np
 
 from twin.backfill.openmetrics import OpenMetricsWriter
-from twin.backfill.plan import ChunkSpec
+from twin.backfill.plan import BackfillError, ChunkSpec
 from twin.backfill.rows import event_row
 
 #: Per chunk: one row per kept window, columns window end [s], used (0/1), then actual − expected per drift KPI.
@@ -68,7 +68,13 @@ def drift_pass(config: Any, specs: Sequence[ChunkSpec], out: Path, formats: Sequ
     unit_id = config.unit.id
     for spec in specs:
         path = Path(spec.out) / DRIFT_INPUTS
-        arr = np.load(path) if path.exists() else np.zeros((0, 2 + len(DRIFT_KPIS)))
+        try:
+            arr = np.load(path)
+            if arr.ndim != 2 or arr.shape[1] != 2 + len(DRIFT_KPIS):
+                raise ValueError(f"shape {arr.shape}")
+        except (OSError, ValueError) as exc:
+            raise BackfillError(f"{path}: unreadable drift inputs ({exc}); expected the chunk's {DRIFT_INPUTS} "
+                                f"(remove {spec.out} and run again to recompute the chunk)") from None
         writer = OpenMetricsWriter() if "openmetrics" in formats else None
         rows: list[tuple[float, str]] = []
         for line in arr:

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 
 from twin.backfill.chunk import _MEASURED, run_chunk
-from twin.backfill.drift import drift_pass
+from twin.backfill.drift import DRIFT_INPUTS, drift_pass
 from twin.backfill.plan import BackfillError, ChunkSpec, Plan, make_plan
 from twin.backfill.rows import EVENTS_HEADER, RECONCILED_COLUMNS, RECONCILED_HEADER, rfc3339
 from twin.history import HistoryReader
@@ -255,7 +255,10 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
                        tuple(opts.formats), 0, ()) for i, first, n in raw]
     proto = [replace(s, spool=str(spool_dir / s.name), out=str(chunk_dir / s.name)) for s in proto]
     reader = HistoryReader(config, **reader_kw)
-    if manifest.get("spooled"):
+    # a recorded chunk is done when its outputs are there, its drift inputs too (the drift pass reads them)
+    done_before = {s.name for s in proto if s.name in manifest["chunks"] and (Path(s.out) / DRIFT_INPUTS).exists()}
+    # the spool is removed once every chunk is done: a chunk to run again then needs it read again
+    if manifest.get("spooled") and (spool_dir.exists() or len(done_before) == len(proto)):
         before, summary = manifest["before"], BackfillSummary(**manifest["read"])
     else:
         echo(f"reading {len(paths)} file(s) for {plan.ends[2]} windows "
@@ -267,11 +270,13 @@ def backfill(config_path: str | Path, histories: Sequence[str | Path], out_dir: 
                 echo(line)
             for note in rep.time.dst_notes:
                 echo(note)
-        manifest.update(spooled=True, before=before, read=asdict(summary), chunks={})
+        # chunk records stay: the same key means the same inputs, so the spool is read to the same samples
+        manifest.update(spooled=True, before=before, read=asdict(summary),
+                        chunks={k: v for k, v in manifest["chunks"].items() if k in done_before})
         _write_json_atomic(manifest_path, manifest)
     rejected = tuple(sorted(summary.rejected.items()))
     specs = [replace(s, messages_before=before[s.index], rejected=rejected) for s in proto]
-    todo = [s for s in specs if s.name not in manifest["chunks"] or not Path(s.out).exists()]
+    todo = [s for s in specs if s.name not in done_before]
     progress = Progress(plan.ends[2])
     for s in specs:
         if s not in todo:
