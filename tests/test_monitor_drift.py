@@ -229,3 +229,41 @@ def test_drift_step_raises_one_transition_per_change_with_the_live_name():
     assert got[-1][1].new == "normal" and got[-1][1].old == "active"
     # an unused window (not steady) changes nothing
     assert drift_step(bank, {"section_efficiency.HP": 1.0}, False, t + 60.0, 60.0) == []
+
+
+def test_a_raised_drift_alarm_clears_only_after_quiet_charted_windows():
+    """An EWMA hovering at its limit: the chart's flag chatters, the raised alarm does not.
+
+    Truth: the chart's own flag per window (the bank's statistics) and the rule
+    itself: raised at the first signal, cleared after ``clear_windows`` consecutive
+    charted windows without one; windows not charted (not steady) count for nothing.
+    """
+    settings = DriftSettings(0.0, 1.0, 0.1, 2.7, 0.5, 50.0)  # CUSUM out of the way: the EWMA decides
+    held = DriftBank({"k": settings}, clear_windows=10)
+    plain = DriftBank({"k": DriftSettings(0.0, 1.0, 0.1, 2.7, 0.5, 50.0)})
+    rng = np.random.default_rng(3)
+    flags, plain_flags, raised, t = [], [], [], 0.0
+    for k in range(600):
+        t += 60.0
+        x = 0.62 + 0.3 * rng.standard_normal()  # the EWMA hovers about its limit (2.7·sqrt(0.1/1.9) = 0.62)
+        st = held.update({"k": x}, steady=k % 7 != 3, time=t)["k"]
+        plain_flags.append(bool(plain.update({"k": x}, steady=k % 7 != 3, time=t)["k"].alarm))
+        flags.append(bool(st.alarm))
+        raised.append("k" in held.raised())
+    assert flags == plain_flags  # the hold changes the alarm, not the charts
+    chatter = sum(a != b for a, b in zip([False, *flags], flags, strict=False))
+    changes = sum(a != b for a, b in zip([False, *raised], raised, strict=False))
+    assert chatter > 10 and changes < chatter / 3
+    # the rule, window by window
+    quiet, state = 0, False
+    for k, f in enumerate(flags):
+        if f:
+            state, quiet = True, 0
+        elif state and k % 7 != 3:
+            quiet += 1
+            state = quiet < 10
+        assert raised[k] == state, k
+    # the hold is state: a restored bank goes on where the first one stood
+    again = DriftBank({"k": settings}, clear_windows=10)
+    again.restore(held.snapshot())
+    assert again.raised() == held.raised()

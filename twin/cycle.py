@@ -42,6 +42,7 @@ from twin.monitor import (
     steady_detector,
     suppression_reason,
 )
+from twin.monitor.drift import CLEAR_WINDOWS
 from twin.performance.expected import ExpectedModel, WindowDeviation, window_deviation
 from twin.performance.plant_reconcile import PlantReconciler, PlantReconciliation
 from twin.result import AlarmView, CycleResult, DriftView, Estimate, InputStats, TagResult
@@ -73,11 +74,17 @@ def drift_alarm_name(kpi: str) -> str:
 
 
 def drift_bank(config: PlantConfig) -> DriftBank:
-    """Drift charts on actual − expected of :data:`DRIFT_KPIS`; μ0 and σ learned from the unit's own steady windows."""
+    """Drift charts on actual − expected of :data:`DRIFT_KPIS`; μ0 and σ learned from the unit's own steady windows.
+
+    A raised drift alarm clears after :data:`twin.monitor.drift.CLEAR_WINDOWS` charted windows
+    without a signal: a drift is slow, and an EWMA hovering at its limit would otherwise raise
+    and clear it window after window (a simulated demo day at 1-minute windows: 20 raises
+    without the hold, some a minute apart; 13 with it, each cleared after at least 10 quiet minutes).
+    """
     mon = config.monitoring.drift
     return DriftBank(learn=DRIFT_KPIS, params=DriftSettings(0.0, 1.0, mon.ewma_lambda, mon.ewma_L, mon.cusum_k,
                                                             mon.cusum_h),
-                     reference_windows=mon.reference_windows)
+                     reference_windows=mon.reference_windows, clear_windows=CLEAR_WINDOWS)
 
 
 def drift_step(bank: DriftBank, devs: Mapping[str, float], used: bool, t: float,
@@ -89,21 +96,29 @@ def drift_step(bank: DriftBank, devs: Mapping[str, float], used: bool, t: float,
     used one ended. The same step runs in the live cycle and in the back-fill's
     sequential drift pass (:mod:`twin.backfill.drift`), so both raise the same alarms.
     """
-    before = {name: bool(st.alarm) for name, st in bank.statuses().items()}
+    before = bank.raised()
+    bank.update(devs, used, t, window_start=t - window_seconds)
+    after = bank.raised()
     out = []
-    for name, st in bank.update(devs, used, t, window_start=t - window_seconds).items():
-        if bool(st.alarm) != before.get(name, False):
-            new, reason = (("active", f"drift chart signals a shift {st.direction} from the learned reference")
-                           if st.alarm else ("normal", "drift charts back within their limits"))
+    for name in bank.names():
+        if (name in after) != (name in before):
+            new, reason = (("active", f"drift chart signals a shift {after[name]} from the learned reference")
+                           if name in after else
+                           ("normal", f"drift charts within their limits for {bank.clear_windows} charted windows"))
             out.append(Transition(drift_alarm_name(name), DRIFT_LEVEL, "normal" if new == "active" else "active",
                                   new, float(t), float(devs.get(name, math.nan)), reason))
     return out
 
 
 def drift_views(bank: DriftBank) -> dict[str, DriftView]:
-    """The charts' statistics as the result carries them (learning KPIs with NaN statistics)."""
+    """The charts' statistics as the result carries them (learning KPIs with NaN statistics).
+
+    ``alarm`` and ``direction`` are the raised drift alarm's (held until the charts have
+    been quiet for ``bank.clear_windows`` charted windows), as its transitions report it.
+    """
+    raised = bank.raised()
     return {name: DriftView(name, st.ewma, st.ewma_lower, st.ewma_upper, st.cusum_high, st.cusum_low,
-                            bool(st.alarm), st.direction)
+                            name in raised, raised.get(name, "none"))
             for name, st in bank.statuses().items()}
 
 

@@ -24,6 +24,7 @@ from prometheus_client.openmetrics.exposition import generate_latest as generate
 from twin import __version__
 from twin.kinds import MEASURED_QUANTITIES
 from twin.monitor.alarms import STATES as ALARM_STATES
+from twin.monitor.drift import CLEAR_WINDOWS as DRIFT_CLEAR_WINDOWS
 from twin.monitor.steady import STEADY_STATUSES
 from twin.result import ESTIMATE_STATUSES, RECONCILE_STATUSES, CycleResult, DriftView
 
@@ -308,7 +309,8 @@ def write_drift(f: SampleSink, drift: Mapping[str, DriftView]) -> None:
         f.gauge("twin_kpi_drift_ewma_upper", "Upper EWMA control limit of a KPI." + unit, d.ewma_upper, kpi=key)
         f.gauge("twin_kpi_drift_cusum_high", "Upper tabular CUSUM statistic of a KPI." + unit, d.cusum_high, kpi=key)
         f.gauge("twin_kpi_drift_cusum_low", "Lower tabular CUSUM statistic of a KPI." + unit, d.cusum_low, kpi=key)
-        f.flag("twin_kpi_drift_alarm", "1 when the EWMA or CUSUM chart of a KPI signals drift." + ADVISORY, d.alarm, kpi=key)
+        f.flag("twin_kpi_drift_alarm", "1 from the window an EWMA or CUSUM chart of a KPI signals drift until the charts have been quiet "
+               f"for {DRIFT_CLEAR_WINDOWS} charted windows." + ADVISORY, d.alarm, kpi=key)
         f.gauge("twin_kpi_drift_direction", "Direction of a KPI's drift: 1 up, -1 down, 0 none",
                 {"up": 1.0, "down": -1.0}.get(d.direction, 0.0), kpi=key)
 

@@ -147,6 +147,11 @@ def chart_signals(ewma, count, c_high, c_low, target, sigma, lam: float, L: floa
             np.asarray(c_high) > h * sigma, np.asarray(c_low) > h * sigma)
 
 
+#: Charted windows without a signal before a raised drift alarm clears, as the unit's
+#: pipeline uses it (``DriftBank(clear_windows=...)``; see there).
+CLEAR_WINDOWS = 10
+
+
 @dataclass(frozen=True)
 class DriftStatus:
     """State of one KPI's drift charts after a window.
@@ -388,11 +393,17 @@ class DriftBank:
     sigma_floor : float
         Smallest σ a reference period may give (unit of the KPI); a flatter
         reference (a frozen signal) keeps the KPI learning.
+    clear_windows : int
+        A KPI's drift alarm (:meth:`raised`) is raised in the window a chart
+        signals and cleared only after this many consecutive charted windows
+        without a signal (0: as soon as the charts stop signalling). An EWMA
+        hovering at its limit would otherwise raise and clear it window after
+        window; windows not charted (not steady) are no evidence either way.
     """
 
     def __init__(self, settings: Mapping[str, DriftSettings | DriftMonitor] | None = None, *,
                  learn: Iterable[str] = (), params: DriftSettings | None = None, reference_windows: int = 100,
-                 sigma_floor: float = 1e-9) -> None:
+                 sigma_floor: float = 1e-9, clear_windows: int = 0) -> None:
         self.monitors: dict[str, DriftMonitor] = {}
         for name, s in (settings or {}).items():
             if isinstance(s, DriftMonitor):
@@ -414,6 +425,11 @@ class DriftBank:
         self.reference: dict[str, list[float]] = {n: [] for n in self.learned if n not in self.monitors}
         self.last_end: float | None = None  # end of the last window used [s]
         self.skipped_overlapping = 0  # steady windows left out because they overlap the last one used
+        if int(clear_windows) < 0:
+            raise ValueError(f"clear_windows must be >= 0, got {clear_windows!r}")
+        self.clear_windows = int(clear_windows)
+        #: raised drift alarms: KPI -> [charted windows without a signal since the last one, its direction]
+        self._raised: dict[str, list] = {}
 
     def __getitem__(self, name: str) -> DriftMonitor:
         try:
@@ -479,7 +495,24 @@ class DriftBank:
                     continue
                 del ref[: len(ref) - self.reference_windows + 1]  # too flat: keep a sliding reference
             out[name] = self._learning_status(name, use and math.isfinite(x))
+        self._latch(out)
         return out
+
+    def _latch(self, statuses: Mapping[str, DriftStatus]) -> None:
+        for name, st in statuses.items():
+            if st.alarm:
+                self._raised[name] = [0, st.direction]
+            elif name in self._raised:
+                if self.clear_windows == 0:
+                    del self._raised[name]
+                elif st.used:
+                    self._raised[name][0] += 1
+                    if self._raised[name][0] >= self.clear_windows:
+                        del self._raised[name]
+
+    def raised(self) -> dict[str, str]:
+        """The KPIs whose drift alarm is raised, with the direction of their last signal (see ``clear_windows``)."""
+        return {name: str(v[1]) for name, v in self._raised.items()}
 
     def statuses(self) -> dict[str, DriftStatus]:
         """Current statistics of every KPI, for metrics (learning ones with ``phase = "learning"``)."""
@@ -494,6 +527,7 @@ class DriftBank:
         (for example after an overhaul changed the as-built offset).
         """
         for name in list(self.names()) if names is None else list(names):
+            self._raised.pop(name, None)
             if relearn:
                 if name not in self.monitors and name not in self.reference:
                     raise KeyError(f"no drift chart named {name!r}; known: {sorted(self.names())}")
@@ -519,6 +553,7 @@ class DriftBank:
             "reference": {n: list(v) for n, v in self.reference.items()},
             "last_end": self.last_end,
             "skipped_overlapping": self.skipped_overlapping,
+            "raised": {n: list(v) for n, v in self._raised.items()},
         }
 
     def restore(self, d: Mapping) -> None:
@@ -532,3 +567,4 @@ class DriftBank:
                 self.reference[n] = []
         self.last_end = None if d.get("last_end") is None else float(d["last_end"])
         self.skipped_overlapping = int(d.get("skipped_overlapping", 0))
+        self._raised = {str(n): [int(v[0]), str(v[1])] for n, v in dict(d.get("raised", {})).items()}
