@@ -50,7 +50,6 @@ class DriftEvents:
     rows: dict[str, list[tuple[float, str]]] = field(default_factory=dict)
     transitions: int = 0
     raised: int = 0
-    windows: int = 0
     seconds: float = 0.0
 
 
@@ -87,7 +86,6 @@ def drift_pass(config: Any, specs: Sequence[ChunkSpec], out: Path, formats: Sequ
             if writer is not None:
                 writer.window(unit_id, t)
                 write_drift(writer, drift_views(bank))
-        done.windows += len(arr)
         done.rows[spec.name] = rows
         if writer is not None and writer.stamps:
             dst = om / f"{spec.name}.drift.om"

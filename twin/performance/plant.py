@@ -319,7 +319,6 @@ class PlantSystem:
         # the last few evaluations by z (a window's solve starts where the last one ended, and
         # an elimination re-solve where the window's first solve started): exact reuse
         self._evals: OrderedDict[bytes, tuple[np.ndarray, sp.csr_matrix, Context]] = OrderedDict()
-        self._cache_ctx: Context | None = None  # the most recently used evaluation's context
         self._scales = self._make_scales()
 
     # ------------------------------------------------------------ structure
@@ -398,8 +397,8 @@ class PlantSystem:
         solution cost no property calls for what the solve already computed.
         """
         z = np.asarray(z, dtype=float)
-        if self._cache_ctx is not None:
-            return self._cache_ctx.derive(z)
+        if self._evals:  # the most recently used evaluation
+            return next(reversed(self._evals.values()))[2].derive(z)
         return self.fs.context(z, self.constants)
 
     def _rows(self, z: np.ndarray, ctx: Context | None = None) -> tuple[Rows, list[float]]:
@@ -449,7 +448,6 @@ class PlantSystem:
                 self._evals.popitem(last=False)
         else:
             self._evals.move_to_end(key)
-        self._cache_ctx = hit[2]
         return hit[0], hit[1]
 
     def residuals(self, z: np.ndarray) -> np.ndarray:

@@ -53,6 +53,17 @@ MODEL_BASED_SHARE = 0.9
 DEFAULT_OPTIONS = SolveOptions(max_iter=40, step_tol=1e-6, residual_tol=1e-6, objective_tol=1e-9)
 
 
+class _BoundedCache(dict):
+    """A dict that starts over when it would hold more than :attr:`LIMIT` entries (a cache of classifications)."""
+
+    LIMIT = 64
+
+    def __setitem__(self, key: Any, value: Any) -> None:
+        if key not in self and len(self) >= self.LIMIT:
+            self.clear()
+        super().__setitem__(key, value)
+
+
 @dataclass(frozen=True)
 class PlantReconciliation:
     """The outcome of one plant reconciliation (SI units; uncertainties expanded, ≈95 %)."""
@@ -116,7 +127,7 @@ class PlantReconciler:
         self.options = options or DEFAULT_OPTIONS
         self.sensor_configs = {s.tag: s for s in config.sensors}
         # classifications by measured set (and elimination trial sets, keyed ("trial", ...)), kept across windows
-        self._classifications: dict[tuple, Classification] = {}
+        self._classifications: dict[tuple, Classification] = _BoundedCache()
         self._sigma_floors: dict[str, float] = {}
         self._z_warm: np.ndarray | None = None
         self._soft_cols = np.array([r.column for r in self.system.soft], dtype=int)
@@ -163,8 +174,6 @@ class PlantReconciler:
         if cls is None:
             vs, rs = self.system.scales()
             cls = classify(self.system.jacobian(z), measured, sigma=sigma, var_scale=vs, residual_scale=rs)
-            if len(self._classifications) > 64:
-                self._classifications.clear()
             self._classifications[key] = cls
         return cls
 
@@ -269,8 +278,6 @@ class PlantReconciler:
                 if res.converged or time.perf_counter() - started > self.time_budget:
                     break
         if res.converged and cached is None and res.classification is not None:
-            if len(self._classifications) > 64:
-                self._classifications.clear()
             self._classifications[cls_key] = res.classification
         if not res.converged:
             status = "model_error" if res.status == "model_error" else "not_converged"
@@ -288,8 +295,6 @@ class PlantReconciler:
                     return False
                 return bool(np.all(cls.determined[protected])) if protected.size else True
 
-            if len(self._classifications) > 64:
-                self._classifications.clear()
             elim = eliminate_suspects(sysm, first.z_warm, measured, y, V, max_eliminations=self.max_eliminations,
                                       alpha=self.alpha, criterion="sidak", protected=keep_ok, options=self.options,
                                       restart=fresh, first=first, warm=warm, classifications=self._classifications)
