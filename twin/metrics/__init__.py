@@ -1,6 +1,6 @@
 """Prometheus exposition of the latest :class:`~twin.result.CycleResult`.
 
-The only module that imports ``prometheus_client``. One custom collector,
+The only package that imports ``prometheus_client``. One custom collector,
 :class:`CycleCollector`, asks a provider for the latest result at scrape time
 and turns it into metric families; nothing is copied into long-lived metric
 objects, so a scrape always sees one whole cycle. The only stateful metric is
