@@ -89,23 +89,53 @@ def test_a_biased_flow_transmitter_is_eliminated_from_the_first_window() -> None
         assert e.available and abs(e.value - truth.kpis[name]) <= e.uncertainty, (name, e, truth.kpis[name])
 
 
-def test_snapshot_round_trips_through_json_and_a_restored_pipeline_replays_identically() -> None:
+@pytest.mark.parametrize("biased", [False, True], ids=["clean", "biased"])
+def test_snapshot_round_trips_through_json_and_a_restored_pipeline_replays_identically(biased: bool) -> None:
+    # biased: FW-F1 +3 % is eliminated in every window, so the snapshot also carries the
+    # solution with every tag (the next first solve's start)
+    bias = {"FW-F1": 0.03 * plant_truth().sensors["FW-F1"]} if biased else None
     a = new_cycle()
     for k in range(1, 5):
-        a.run(window(noisy(10 + k), T0 + k * CYCLE))
+        a.run(window(noisy(10 + k, bias), T0 + k * CYCLE))
     snap = json.loads(json.dumps(a.snapshot()))  # JSON-able
+    assert (snap["warm_start_first"] is not None) == biased
     # a restarted process: its own reconciliation problem, state from the snapshot
     b = UnitCycle(demo_config(), reconciler=PlantReconciler(load_config(DEMO_CONFIG)))
     b.restore(snap)
     assert json.loads(json.dumps(b.snapshot())) == snap  # nothing lost on the way
     for k in range(5, 9):
-        w = window(noisy(10 + k), T0 + k * CYCLE)
+        w = window(noisy(10 + k, bias), T0 + k * CYCLE)
         ra, rb = a.run(w).result, b.run(w).result
         assert ra.reconcile_status == rb.reconcile_status == "converged"
+        assert ra.tags["FW-F1"].suspect == rb.tags["FW-F1"].suspect == biased
         assert {n: (e.value, e.uncertainty) for n, e in ra.kpis.items()} == {
             n: (e.value, e.uncertainty) for n, e in rb.kpis.items()}
         assert ra.alarms == rb.alarms and ra.drift == rb.drift and ra.steady_status == rb.steady_status
     assert a.snapshot() == b.snapshot()
+
+
+def test_a_window_after_eliminations_gives_the_answer_of_a_cold_start() -> None:
+    # after windows that eliminated FW-F1 (+3 %), the next window's first solve starts from
+    # the previous solution with every tag: the start changes the work, not the answer. A
+    # cold pipeline (forward-model start) solves the same window; the reconciled KPIs agree
+    # far inside their uncertainty, and both agree with the simulator's truth
+    truth = plant_truth()
+    bias = {"FW-F1": 0.03 * truth.sensors["FW-F1"]}
+    warm = new_cycle()
+    for k in range(1, 4):
+        warm.run(window(noisy(40 + k, bias), T0 + k * CYCLE))
+    assert warm.reconciler.first_warm_start is not None
+    w = window(noisy(44, bias), T0 + 4 * CYCLE)
+    rw = warm.run(w).result
+    rc = new_cycle().run(w).result
+    assert rw.reconcile_status == rc.reconcile_status == "converged"
+    assert rw.tags["FW-F1"].suspect and rc.tags["FW-F1"].suspect
+    for name, e in rc.kpis.items():
+        if e.available:
+            assert abs(rw.kpis[name].value - e.value) <= 1e-6 * e.uncertainty, name
+    for name in ("heat_input", "gross_efficiency", "turbine_heat_rate"):
+        # the simulator's truth: the forward model with the true boundary conditions
+        assert abs(rw.kpis[name].value - truth.kpis[name]) <= rw.kpis[name].uncertainty, name
 
 
 def test_restore_refuses_another_version_or_unit() -> None:

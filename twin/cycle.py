@@ -387,11 +387,15 @@ class UnitCycle:
     def snapshot(self) -> dict[str, Any]:
         """The pipeline's state as one JSON-able value (see :meth:`restore`)."""
         z = self.reconciler.warm_start
+        first = self.reconciler.first_warm_start
         return {
             "version": SNAPSHOT_VERSION,
             "unit_id": self.config.unit.id,
             "steady_windows": self._steady_windows,
             "warm_start": None if z is None else [_finite_or_none(v) for v in z],
+            # the solution with every valid tag when suspects were eliminated after it (the next first solve's start)
+            "warm_start_first": None if first is None else {"measured": list(first[0]),
+                                                            "z": [_finite_or_none(v) for v in first[1]]},
             "steady": self.steady.snapshot() if self.steady is not None else None,
             "moisture_alarm": self.moisture_alarm.snapshot(),
             "efficiency_alarms": {k: a.snapshot() for k, a in self.efficiency_alarms.items()},
@@ -413,6 +417,10 @@ class UnitCycle:
         self._steady_windows = int(snap.get("steady_windows", 0))
         z = snap.get("warm_start")
         self.reconciler.warm_start = None if z is None else [math.nan if v is None else float(v) for v in z]
+        first = snap.get("warm_start_first")  # absent from snapshots written before it was kept
+        if isinstance(first, Mapping) and first.get("measured") is not None and first.get("z") is not None:
+            self.reconciler.first_warm_start = (
+                [int(c) for c in first["measured"]], [math.nan if v is None else float(v) for v in first["z"]])
         if snap.get("steady") is not None and self.steady is not None:
             self.steady.restore(snap["steady"])
         self.moisture_alarm.restore(snap["moisture_alarm"])

@@ -130,6 +130,8 @@ class PlantReconciler:
         self._classifications: dict[tuple, Classification] = _BoundedCache()
         self._sigma_floors: dict[str, float] = {}
         self._z_warm: np.ndarray | None = None
+        # the last window's solution with every valid tag, when eliminations followed it (its measured set, z)
+        self._z_first: tuple[tuple[int, ...], np.ndarray] | None = None
         self._soft_cols = np.array([r.column for r in self.system.soft], dtype=int)
         protected = {c for d in self.kpi_defs if d.name in PROTECTED_KPIS for c in d.columns}
         self._protected_cols = np.array(sorted(protected), dtype=int)
@@ -178,8 +180,9 @@ class PlantReconciler:
         return cls
 
     def reset(self) -> None:
-        """Forget the warm start (e.g. after a unit trip)."""
+        """Forget the warm starts (e.g. after a unit trip)."""
         self._z_warm = None
+        self._z_first = None
 
     @property
     def warm_start(self) -> np.ndarray | None:
@@ -188,11 +191,30 @@ class PlantReconciler:
 
     @warm_start.setter
     def warm_start(self, z: Sequence[float] | np.ndarray | None) -> None:
+        self._z_warm = self._finite_point(z)
+        self._z_first = None
+
+    @property
+    def first_warm_start(self) -> tuple[tuple[int, ...], np.ndarray] | None:
+        """``(measured columns, z)``: the last window's solution with every valid tag, kept when
+        suspects were eliminated after it (None otherwise).
+
+        The next window's first solve, over the same measured set, starts from it: it is a
+        window's noise away from that solve's answer, where the final solution (without the
+        eliminated tags) is a whole gross error away. Set it after :attr:`warm_start`.
+        """
+        return None if self._z_first is None else (self._z_first[0], self._z_first[1].copy())
+
+    @first_warm_start.setter
+    def first_warm_start(self, value: tuple[Sequence[int], Sequence[float] | np.ndarray] | None) -> None:
+        z = None if value is None else self._finite_point(value[1])
+        self._z_first = None if value is None or z is None else (tuple(int(c) for c in value[0]), z)
+
+    def _finite_point(self, z: Sequence[float] | np.ndarray | None) -> np.ndarray | None:
         if z is None:
-            self._z_warm = None
-            return
+            return None
         arr = np.asarray(z, dtype=float)
-        self._z_warm = arr.copy() if arr.shape == (self.system.n_vars,) and np.all(np.isfinite(arr)) else None
+        return arr.copy() if arr.shape == (self.system.n_vars,) and np.all(np.isfinite(arr)) else None
 
     # ------------------------------------------------------------------ main
     def reconcile(self, values: Mapping[str, float], *, excluded: Mapping[str, str] | None = None,
@@ -202,7 +224,7 @@ class PlantReconciler:
         try:
             return self._reconcile(values, excluded=excluded, z0=z0, kpis=kpis, pseudo=pseudo)
         except (ValueError, ArithmeticError, SolveError) as exc:  # property range, singular system...
-            self._z_warm = None
+            self._z_warm = self._z_first = None
             tags = {t: TagResult(t, b.quantity, measured=float(values.get(t, math.nan)),
                                  valid=t in values, reason=(excluded or {}).get(t, ""))
                     for t, b in self.system.sensor_by_tag.items()}
@@ -260,19 +282,24 @@ class PlantReconciler:
                 fresh_cache.append(self.start_point(self._estimate_load(values)))
             return fresh_cache[0]
 
+        cls_key = tuple(int(i) for i in measured)
+        warm_starts = [z for z in (self._z_first[1] if self._z_first is not None and self._z_first[0] == cls_key
+                                   else None, self._z_warm) if z is not None]
         if z0 is None:
-            z0 = self._z_warm if self._z_warm is not None else fresh()
+            z0 = warm_starts[0] if warm_starts else fresh()
         started = time.perf_counter()
         # the classification of this set of valid tags, decided at the first converged solution
-        cls_key = tuple(int(i) for i in measured)
         cached = self._classifications.get(cls_key)
         res = reconcile(sysm, z0, measured, y, V, options=self.options, classification=cached)
+        from_warm = any(z0 is z for z in warm_starts)
         # the previous window's solution, when it served this one: a start for the re-solves of elimination
-        warm = z0 if res.converged and self._z_warm is not None and z0 is self._z_warm else None
+        warm = self._z_warm if res.converged and from_warm else None
         if not res.converged and time.perf_counter() - started < self.time_budget:
-            # a stale warm start (after a load change): restart from the forward model,
-            # and from the design point as a last resort
-            starts = ([] if fresh_cache and z0 is fresh_cache[0] else [fresh()])
+            # a stale warm start (after a load change): restart from the previous final solution
+            # (when the first try was the solution with every tag), the forward model,
+            # and the design point as a last resort
+            starts = [z for z in warm_starts[1:] if from_warm and z0 is warm_starts[0]]
+            starts += ([] if fresh_cache and z0 is fresh_cache[0] else [fresh()])
             for start in [*starts, self.system.initial_point(self.design.z)]:
                 res = reconcile(sysm, start, measured, y, V, options=self.options, classification=cached)
                 if res.converged or time.perf_counter() - started > self.time_budget:
@@ -302,6 +329,7 @@ class PlantReconciler:
                 res = elim.result
                 eliminated = {e.position: e for e in elim.eliminated}
         self._z_warm = res.z_warm.copy()
+        self._z_first = (cls_key, first.z_warm.copy()) if res is not first else None
         # ---- tags
         final_pos = {int(v): i for i, v in enumerate(res.measured)}
         mt_final = measurement_test(res.z, self.alpha)
