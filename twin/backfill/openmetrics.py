@@ -3,9 +3,13 @@
 from __future__ import annotations
 
 import math
+import operator
 from array import array
 from collections.abc import Iterator, Sequence
+from itertools import repeat
 from pathlib import Path
+
+import numpy as np
 
 from twin.metrics import SampleSink
 from twin.result import CycleResult
@@ -109,13 +113,23 @@ class OpenMetricsWriter(SampleSink):
         series.windows.append(self.k)
 
     def chunks(self) -> Iterator[str]:
-        """The text in pieces (one per series), ending ``# EOF``."""
-        stamps = self.stamps
+        """The text in pieces (one per series), ending ``# EOF``.
+
+        A series' lines are joined by C-level maps (``prefix + value + stamp``); its values
+        go through :func:`repr` where that is Go's formatting too (finite and below 1e6),
+        through :func:`_go_float` otherwise.
+        """
+        stamp = self.stamps.__getitem__
         for header, series in self.families.values():
             yield header
             for s in series:
-                prefix = s.prefix
-                yield "".join([prefix + _text(v) + stamps[k] for v, k in zip(s.values, s.windows, strict=True)])
+                a = np.frombuffer(s.values, dtype=float)
+                texts = list(map(repr, s.values))
+                for i in np.flatnonzero(~(np.isfinite(a) & (a < 1e6))).tolist():
+                    texts[i] = _go_float(float(a[i]))
+                lines = map(operator.add, map(operator.add, repeat(s.prefix, len(texts)), texts),
+                            map(stamp, s.windows))
+                yield "".join(lines)
         yield "# EOF\n"
 
     def write(self, path: str | Path) -> None:
@@ -133,14 +147,6 @@ class _Series:
         self.prefix = prefix
         self.values = array("d")
         self.windows = array("i")
-
-
-def _text(v: float) -> str:
-    """_go_float, with the common case (finite, no exponent) first."""
-    text = repr(v)
-    if (v > 0 and text.find(".") > 6) or not math.isfinite(v):
-        return _go_float(v)
-    return text
 
 
 def openmetrics_text(results: Sequence[CycleResult]) -> str:
