@@ -110,6 +110,24 @@ def test_glr_equals_squared_z_for_diagonal_v():
     assert r.gamma - r2.gamma == pytest.approx(drop[0], rel=1e-9)
 
 
+def test_glr_with_variances_equals_the_covariance_form_and_squared_z():
+    # unequal variances: the 1-D form (variances of measurements and adjustments) gives the
+    # numbers of the full-matrix form, and both the squared measurement-test statistic
+    # (Narasimhan & Jordache (2000) §7.4, uncorrelated errors)
+    y = np.array([101.91, 64.45, 34.65, 64.20, 36.44, 98.88])
+    v = np.array([1.0, 2.0, 0.5, 1.5, 1.0, 3.0])
+    net6 = np.array([[1, -1, -1, 0, 0, 0], [0, 1, 0, -1, 0, 0], [0, 0, 1, 0, -1, 0],
+                     [0, 0, 0, 1, 1, -1]], dtype=float)
+    r = reconcile_linear(net6, y, np.diag(v))
+    b_full, drop_full = glr_bias(r.adjustments, r.cov_a, np.diag(v), r.redundant)
+    b_diag, drop_diag = glr_bias(r.adjustments, np.diag(r.cov_a), v, r.redundant)
+    np.testing.assert_allclose(b_diag, b_full, rtol=1e-12)
+    np.testing.assert_allclose(drop_diag, drop_full, rtol=1e-12)
+    np.testing.assert_allclose(drop_diag, r.z**2, rtol=1e-10)
+    with pytest.raises(ValueError, match="1-D"):
+        glr_bias(r.adjustments, np.diag(r.cov_a), np.diag(v))
+
+
 def test_derived_uncertainty_of_sum_equals_reconciled_total():
     net6 = np.array([[1, -1, -1, 0, 0, 0], [0, 1, 0, -1, 0, 0], [0, 0, 1, 0, -1, 0],
                      [0, 0, 0, 1, 1, -1]], dtype=float)

@@ -175,9 +175,11 @@ def eliminate_suspects(system: ConstraintSystem, z0, measured, y, V, *,
         if len(log) >= max_eliminations:
             break
         Vk = V[np.ix_(keep, keep)]
-        # with a diagonal V the GLR test reads only the adjustments' variances
-        cov_a = np.diag(res.var_a) if diagonal_v and res.var_a is not None else res.cov_a
-        bias, drop = glr_bias(res.adjustments, cov_a, Vk, np.isfinite(res.z))
+        # with a diagonal V the GLR test reads only the variances of measurements and adjustments
+        if diagonal_v and res.var_a is not None:
+            bias, drop = glr_bias(res.adjustments, res.var_a, np.diag(Vk), np.isfinite(res.z))
+        else:
+            bias, drop = glr_bias(res.adjustments, res.cov_a, Vk, np.isfinite(res.z))
         order = [j for j in np.argsort(-np.nan_to_num(drop, nan=-1.0)) if flags[j]]
         J = _dense(system.jacobian(res.z_warm))
         chosen = None

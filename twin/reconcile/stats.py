@@ -124,10 +124,10 @@ def glr_bias(adjustments, cov_a, V, redundant=None) -> tuple[np.ndarray, np.ndar
     ----------
     adjustments : array_like, shape (n,)
         ``a = y − x̂`` [measurement units].
-    cov_a : array_like, shape (n, n)
-        Covariance of the adjustments.
+    cov_a : array_like, shape (n, n) or (n,)
+        Covariance of the adjustments (1-D: its diagonal, enough with a 1-D ``V``).
     V : array_like, shape (n, n) or (n,)
-        Measurement covariance.
+        Measurement covariance (1-D: the variances of uncorrelated measurements).
     redundant : array_like of bool, optional
         Non-redundant measurements get NaN (a bias there cannot be seen).
 
@@ -146,12 +146,15 @@ def glr_bias(adjustments, cov_a, V, redundant=None) -> tuple[np.ndarray, np.ndar
     a = np.asarray(adjustments, dtype=float)
     Ca = np.asarray(cov_a, dtype=float)
     V = np.asarray(V, dtype=float)
-    if V.ndim == 1:
-        V = np.diag(V)
-    cho = sla.cho_factor(V, lower=True)
-    wa = sla.cho_solve(cho, a)
-    M = sla.cho_solve(cho, sla.cho_solve(cho, Ca).T)
-    d = np.diag(M).copy()
+    if V.ndim == 1:  # uncorrelated: (V⁻¹a)_j = a_j / v_j, (V⁻¹ Cov(a) V⁻¹)_jj = Cov(a)_jj / v_j²
+        wa = a / V
+        d = (Ca if Ca.ndim == 1 else np.diag(Ca)) / V**2
+    else:
+        if Ca.ndim == 1:
+            raise ValueError("cov_a as a diagonal needs V as variances (1-D)")
+        cho = sla.cho_factor(V, lower=True)
+        wa = sla.cho_solve(cho, a)
+        d = np.diag(sla.cho_solve(cho, sla.cho_solve(cho, Ca).T)).copy()
     ok = d > 1e-12 * np.max(np.abs(d)) if d.size and np.max(np.abs(d)) > 0 else np.zeros(d.shape, bool)
     if redundant is not None:
         ok &= np.asarray(redundant, dtype=bool)
