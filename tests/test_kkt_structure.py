@@ -2,8 +2,9 @@
 
 Reference: the coordinate-format assembly of the same matrix (the general path of
 :class:`twin.reconcile.kkt.ScaledKKT`, taken for a Jacobian that is not canonical CSR),
-entry for entry, on the demo-u1 plant Jacobian and on a synthetic network; and the
-factorisations solve the same steps.
+entry for entry after the kept structure's symmetric ordering, on the demo-u1 plant
+Jacobian and on a synthetic network; the factorisations solve the same steps, and the
+steps solve the augmented system as numpy's dense LU (LAPACK) does.
 """
 
 from __future__ import annotations
@@ -50,8 +51,36 @@ def test_kept_structure_gives_the_coordinate_matrix(make):
         Jk.data = Jk.data * (1.0 + 0.1 * k)
         fast = kkt.ScaledKKT(Jk, measured, unmeasured, sigma, True, vs[unmeasured], rs)
         ref = kkt.ScaledKKT(Jk.tocsc(), measured, unmeasured, sigma, True, vs[unmeasured], rs)
-        assert np.array_equal(fast.K.toarray(), ref.K.toarray())
+        order = fast._order
+        assert order is not None and ref._order is None  # the kept structure is ordered once
+        assert np.array_equal(fast.K.toarray(), ref.K.toarray()[np.ix_(order, order)])
         g = rng.standard_normal(measured.size)
         f = rng.standard_normal(J.shape[0])
         for a, b in zip(fast.step(g, f), ref.step(g, f), strict=True):
             np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-12 * max(1.0, float(np.max(np.abs(b)))))
+        # LAPACK's dense LU of the system without the -δ block (what the refinement solves)
+        K0 = ref.K.toarray() + np.diag(ref._delta)
+        rhs = np.concatenate([g, np.zeros(unmeasured.size), -f])
+        dense = np.linalg.solve(K0, rhs)
+        n = measured.size
+        dw, _ = fast.step(g, f)
+        np.testing.assert_allclose(dw, dense[:n], rtol=1e-8, atol=1e-8 * float(np.max(np.abs(dense[:n]))))
+
+
+@pytest.mark.parametrize("make", [_problem_demo, _problem_synthetic])
+def test_the_kept_ordering_is_a_function_of_the_sparsity_alone(make):
+    # the order taken from a structure's first matrix serves every later one: SuperLU orders
+    # a matrix of the same sparsity with quite different values the same way
+    import scipy.sparse.linalg as spla
+
+    J, measured, n_vars, vs, rs = make()
+    unmeasured = np.setdiff1d(np.arange(n_vars), measured)
+    rng = np.random.default_rng(5)
+    perms = []
+    for _ in range(3):
+        Jk = J.copy()
+        Jk.data = Jk.data * rng.uniform(0.2, 5.0, Jk.data.size)
+        sigma = vs[measured] * rng.uniform(0.1, 10.0, measured.size)
+        K = kkt.ScaledKKT(Jk.tocsc(), measured, unmeasured, sigma, True, vs[unmeasured], rs).K
+        perms.append(spla.splu(K, permc_spec=kkt.ORDERING, **kkt._LU_OPTIONS).perm_c)
+    assert all(np.array_equal(perms[0], q) for q in perms[1:])

@@ -57,14 +57,26 @@ class KKTFactorisationError(ArithmeticError):
     """The augmented system could not be factored (numerically singular)."""
 
 
+#: Fill-reducing ordering of the augmented matrix (SuperLU's ``permc_spec``).
+ORDERING = "MMD_AT_PLUS_A"
+_LU_OPTIONS: dict = {"diag_pivot_thresh": 0.01, "options": {"SymmetricMode": True}}
+
+
 class _Structure:
-    """CSC structure of the augmented matrix for one Jacobian sparsity and measured set (diagonal V).
+    """CSC structure of the augmented matrix for one Jacobian sparsity and measured set (diagonal V),
+    symmetrically permuted by the matrix's fill-reducing ordering.
 
     ``perm`` takes the entries in the order ``[diagonal, C (lower block), Cᵀ (upper block)]``
-    to their CSC positions; ``rows`` is the row of every Jacobian entry (CSR order).
+    to their CSC positions; ``rows`` is the row of every Jacobian entry (CSR order);
+    ``order[i]`` is the unknown (``[w, v, λ]`` numbering) at row and column ``i`` of the
+    permuted matrix. The ordering is SuperLU's :data:`ORDERING` with its elimination-tree
+    postorder, a function of the sparsity alone: taken once from the structure's first
+    matrix (:meth:`take_order`), every later matrix of this structure is factored in that
+    order without ordering it again (``permc_spec="NATURAL"``: 0.29 instead of 0.50 ms
+    for demo-u1's 515 unknowns, the same fill).
     """
 
-    __slots__ = ("hd", "indices", "indptr", "perm", "pos", "rows", "shape")
+    __slots__ = ("hd", "indices", "indptr", "order", "perm", "pos", "rc", "rows", "shape")
 
     def __init__(self, J: sp.csr_matrix, measured: np.ndarray, unmeasured: np.ndarray) -> None:
         m, n_vars = J.shape
@@ -75,38 +87,61 @@ class _Structure:
         pos[measured] = np.arange(n)
         pos[unmeasured] = np.arange(n, N)
         self.pos = pos
+        self.hd = np.r_[np.ones(n), np.full(p, EPS_UNMEASURED), np.full(m, -DELTA_CONSTRAINTS)]
         ci, cj = self.rows, pos[J.indices]
         diag = np.arange(N + m)
-        r = np.r_[diag, N + ci, cj]
-        c = np.r_[diag, cj, N + ci]
+        self.rc = (np.r_[diag, N + ci, cj], np.r_[diag, cj, N + ci])
+        self.shape = (N + m, N + m)
+        self.order: np.ndarray | None = None
+        self._build(*self.rc)
+
+    def _build(self, r: np.ndarray, c: np.ndarray) -> None:
         # the entries' own positions, carried through the conversion (no entry repeats)
-        order = sp.csc_matrix((np.arange(1, r.size + 1, dtype=float), (r, c)), shape=(N + m, N + m))
-        self.perm = order.data.astype(np.int64) - 1
-        self.indices, self.indptr, self.shape = order.indices, order.indptr, order.shape
-        self.hd = np.r_[np.ones(n), np.full(p, EPS_UNMEASURED), np.full(m, -DELTA_CONSTRAINTS)]
+        csc = sp.csc_matrix((np.arange(1, r.size + 1, dtype=float), (r, c)), shape=self.shape)
+        self.perm = csc.data.astype(np.int64) - 1
+        self.indices, self.indptr = csc.indices, csc.indptr
+
+    def take_order(self, K: sp.csc_matrix) -> None:
+        """Order this structure as SuperLU orders ``K`` (its first matrix, unpermuted)."""
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("error", spla.MatrixRankWarning)
+                lu = spla.splu(K, permc_spec=ORDERING, **_LU_OPTIONS)
+        except (RuntimeError, spla.MatrixRankWarning):
+            return  # singular: stays unordered (ScaledKKT orders each matrix itself and reports it)
+        # splu's perm_c takes unknown j to position perm_c[j]
+        r, c = self.rc
+        self._build(lu.perm_c[r], lu.perm_c[c])
+        self.order = np.argsort(lu.perm_c)
+
+    def matrix(self, J: sp.csr_matrix, measured: np.ndarray, unmeasured: np.ndarray, sigma: np.ndarray,
+               var_scale_u: np.ndarray, residual_scale: np.ndarray) -> sp.csc_matrix:
+        colscale = np.empty(J.shape[1])
+        colscale[unmeasured] = var_scale_u
+        colscale[measured] = sigma
+        cv = J.data / residual_scale[self.rows] * colscale[J.indices]
+        data = np.concatenate([self.hd, cv, cv])[self.perm]
+        return sp.csc_matrix((data, self.indices.copy(), self.indptr.copy()), shape=self.shape)
 
 
 _STRUCTURES: dict[tuple, _Structure] = {}
 
 
 def _assemble_diagonal(J: sp.csr_matrix, measured: np.ndarray, unmeasured: np.ndarray, sigma: np.ndarray,
-                       var_scale_u: np.ndarray, residual_scale: np.ndarray) -> sp.csc_matrix:
-    """The augmented matrix (diagonal ``V``) in a CSC structure built once per sparsity and measured set.
-
-    Gives the same matrix, entry for entry, as assembling it from coordinates.
+                       var_scale_u: np.ndarray, residual_scale: np.ndarray) -> tuple[sp.csc_matrix, np.ndarray | None]:
+    """The augmented matrix (diagonal ``V``) in a CSC structure built once per sparsity and measured set,
+    and its order (see :class:`_Structure`; None: unordered). Entry for entry the matrix assembled
+    from coordinates, rows and columns taken in that order.
     """
     key = (J.shape, measured.tobytes(), J.indptr.tobytes(), J.indices.tobytes())
     st = _STRUCTURES.get(key)
+    args = (J, measured, unmeasured, sigma, var_scale_u, residual_scale)
     if st is None:
         if len(_STRUCTURES) >= 16:
             _STRUCTURES.clear()
         st = _STRUCTURES[key] = _Structure(J, measured, unmeasured)
-    colscale = np.empty(J.shape[1])
-    colscale[unmeasured] = var_scale_u
-    colscale[measured] = sigma
-    cv = J.data / residual_scale[st.rows] * colscale[J.indices]
-    data = np.concatenate([st.hd, cv, cv])[st.perm]
-    return sp.csc_matrix((data, st.indices.copy(), st.indptr.copy()), shape=st.shape)
+        st.take_order(st.matrix(*args))
+    return st.matrix(*args), st.order
 
 
 class ScaledKKT:
@@ -134,8 +169,10 @@ class ScaledKKT:
         n, p = measured.size, unmeasured.size
         self.n, self.p, self.m = n, p, m
         N = n + p
+        #: the unknown at each row/column of K (None: K in the [w, v, λ] numbering, SuperLU orders it)
+        self._order: np.ndarray | None = None
         if diagonal and J.format == "csr" and J.has_canonical_format:
-            K = _assemble_diagonal(J, measured, unmeasured, Lfac, var_scale_u, residual_scale)
+            K, self._order = _assemble_diagonal(J, measured, unmeasured, Lfac, var_scale_u, residual_scale)
         else:
             Jc = sp.coo_matrix(J)
             rows, cols, vals = Jc.row, Jc.col, Jc.data / residual_scale[Jc.row]
@@ -161,16 +198,17 @@ class ScaledKKT:
             K = sp.csc_matrix((np.r_[hd, cv, cv], (np.r_[diag, N + ci, cj], np.r_[diag, cj, N + ci])),
                               shape=(N + m, N + m))
         self.K = K
-        self._delta = np.r_[np.zeros(N), np.full(m, DELTA_CONSTRAINTS)]
+        delta = np.r_[np.zeros(N), np.full(m, DELTA_CONSTRAINTS)]
+        self._delta = delta if self._order is None else delta[self._order]
         self._factor()
 
     def _factor(self) -> None:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("error", spla.MatrixRankWarning)
-                # symmetric ordering with a small pivot threshold keeps the fill low
-                self.lu = spla.splu(self.K, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.01,
-                                    options={"SymmetricMode": True})
+                # symmetric ordering with a small pivot threshold keeps the fill low; a K already
+                # in its structure's order is factored in that order
+                self.lu = spla.splu(self.K, permc_spec=ORDERING if self._order is None else "NATURAL", **_LU_OPTIONS)
         except (RuntimeError, spla.MatrixRankWarning) as exc:
             raise KKTFactorisationError(f"KKT system is singular: {exc}") from None
 
@@ -188,12 +226,19 @@ class ScaledKKT:
 
         ``K0`` is the factored matrix without the ``−δI`` block.
         """
+        order = self._order
+        if order is not None:
+            rhs = rhs[order]
         s = self.lu.solve(rhs)
         delta = self._delta if rhs.ndim == 1 else self._delta[:, None]
         for _ in range(sweeps):
             s = s + self.lu.solve(rhs - (self.K @ s + delta * s))
         if not np.all(np.isfinite(s)):
             raise KKTFactorisationError("KKT solve produced non-finite values")
+        if order is not None:
+            out = np.empty_like(s)
+            out[order] = s
+            return out
         return s
 
     def step(self, g: np.ndarray, f_scaled: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
