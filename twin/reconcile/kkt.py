@@ -139,8 +139,12 @@ def _assemble_diagonal(J: sp.csr_matrix, measured: np.ndarray, unmeasured: np.nd
     if st is None:
         if len(_STRUCTURES) >= 16:
             _STRUCTURES.clear()
-        st = _STRUCTURES[key] = _Structure(J, measured, unmeasured)
-        st.take_order(st.matrix(*args))
+        st = _Structure(J, measured, unmeasured)
+        K = st.matrix(*args)
+        st.take_order(K)
+        if st.order is None:  # singular: not kept, so the structure's order never depends on which matrix came first
+            return K, None
+        _STRUCTURES[key] = st
     return st.matrix(*args), st.order
 
 
