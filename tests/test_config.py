@@ -6,6 +6,7 @@ import copy
 import re
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from twin import kinds
@@ -108,7 +109,15 @@ def test_sensor_conversion_and_sigma():
     assert s["MS-P"].range_si == (100e3, 160e5 + 100e3)
     # 1 % of reading: 360 t/h = 100 kg/s -> U = 1 kg/s
     assert s["FW-F"].sigma_si(100.0) == pytest.approx(1.0 / 1.96)
+    # ... of readings given as an array: 180 and 720 t/h = 50 and 200 kg/s -> U = 0.5, 2 kg/s
+    np.testing.assert_allclose(s["FW-F"].sigma_si(np.array([50.0, 200.0])), np.array([0.5, 2.0]) / 1.96)
     assert s["GEN"].payload.value == "/mw"
+    # a percent of a gauge reading is a percent of the gauge value: 1 % of 10 bar(g) (1.1 MPa
+    # absolute with the 100 kPa barometric offset) = 0.1 bar = 10 kPa
+    data = base()
+    data["sensors"][0]["uncertainty"] = {"value": 1.0, "kind": "percent_of_reading"}
+    gauge = validate_config(data).sensors_by_tag["MS-P"]
+    assert gauge.sigma_si(11e5) == pytest.approx(10e3 / 1.96)
     assert s["GEN"].max_age == 30.0
 
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
@@ -203,16 +203,29 @@ class SensorConfig(_Model):
         VDI 2048 Part 1 (2017), *Control and quality improvement of process data
         and their uncertainties by means of correction calculation*.
         """
+        return self.sigma_rule()(value_si)
+
+    def sigma_rule(self) -> Callable[[Any], Any]:
+        """:meth:`sigma_si` as a plain function of the reading, the configuration read once
+        (for callers that ask for many readings' σ: the same numbers, no model attribute lookups)."""
         u = self.uncertainty
-        scale = self.conversion.scale
+        conv = self.conversion
+        scale, offset, value = conv.scale, conv.offset, u.value
+        if u.kind == "percent_of_reading":
+            def percent(value_si: Any) -> Any:
+                return abs((value_si - offset) / scale) * (value / 100.0) * scale / 1.96
+            return percent
         if u.kind == "absolute":
-            half = u.value * scale
-        elif u.kind == "percent_of_reading":
-            half = abs(self.conversion.from_si(value_si)) * (u.value / 100.0) * scale
+            half = value * scale
         else:
             assert self.span is not None  # checked at load
-            half = (self.span[1] - self.span[0]) * (u.value / 100.0) * scale
-        return half / 1.96
+            half = (self.span[1] - self.span[0]) * (value / 100.0) * scale
+
+        sigma = half / 1.96
+
+        def constant(value_si: Any) -> Any:
+            return sigma
+        return constant
 
 
 class SensorDefaults(_Model):

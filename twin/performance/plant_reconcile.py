@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -128,7 +128,7 @@ class PlantReconciler:
         self.sensor_configs = {s.tag: s for s in config.sensors}
         # classifications by measured set (and elimination trial sets, keyed ("trial", ...)), kept across windows
         self._classifications: dict[tuple, Classification] = _BoundedCache()
-        self._sigma_floors: dict[str, float] = {}
+        self._sigma_rules: dict[str, tuple[Callable[[float], float], float]] = {}  # tag -> (σ of a reading, floor)
         self._z_warm: np.ndarray | None = None
         # the last window's solution with every valid tag, when eliminations followed it (its measured set, z)
         self._z_first: tuple[tuple[int, ...], np.ndarray] | None = None
@@ -143,12 +143,14 @@ class PlantReconciler:
         A percent-of-reading uncertainty vanishes at a zero reading; the floor is
         0.1 % of the sensor's valid range (95 %), so a zero flow still has a variance.
         """
-        s = self.sensor_configs[tag]
-        sig = float(s.sigma_si(value_si))
-        floor = self._sigma_floors.get(tag)
-        if floor is None:
+        rule = self._sigma_rules.get(tag)
+        if rule is None:
+            s = self.sensor_configs[tag]
             rng = s.range_si
-            floor = self._sigma_floors[tag] = 0.001 * abs(rng[1] - rng[0]) / 1.96 if rng is not None else 1e-9
+            floor = 0.001 * abs(rng[1] - rng[0]) / 1.96 if rng is not None else 1e-9
+            rule = self._sigma_rules[tag] = (s.sigma_rule(), floor)
+        sig = float(rule[0](value_si))
+        floor = rule[1]
         return sig if math.isfinite(sig) and sig >= floor else max(floor, 1e-9)
 
     def start_point(self, load: float | None = None) -> np.ndarray:
