@@ -17,6 +17,7 @@ References
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -84,6 +85,7 @@ def global_test(gamma: float, dof: int, alpha: float = 0.05) -> GlobalTest:
                       bool(gamma <= crit))
 
 
+@functools.lru_cache(maxsize=256)  # a few (alpha, n) pairs per plant; scipy's isf costs ~0.1 ms a call
 def sidak_critical(alpha: float, n: int) -> float:
     """Two-sided critical ``|z|`` for family-wise level ``alpha`` over ``n`` tests [-].
 
