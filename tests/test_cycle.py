@@ -164,3 +164,23 @@ def test_kpis_without_generator_power_are_marked_model_based_on_the_metrics() ->
     assert status[("section_efficiency.LP", "reconciled")] == 0
     share = {s.labels["kpi"]: s.value for s in fams["twin_kpi_soft_share_ratio"].samples}
     assert share["section_efficiency.LP"] == lp.soft_share
+
+
+def test_evolve_equals_dataclasses_replace() -> None:
+    # the cheap copy the cycle gives each tag its window statistics with: the record
+    # dataclasses.replace (the standard library's) makes, and the same refusals
+    from dataclasses import FrozenInstanceError, replace
+
+    from twin.result import Estimate, TagResult, evolve
+
+    base = TagResult("FW-F1", "mass_flow", measured=300.0, valid=True, sigma=0.7, suspect=True)
+    changes = {"spread": 0.3, "count": 6, "age_seconds": 1.0, "measured": 301.0}
+    new = evolve(base, **changes)
+    assert new == replace(base, **changes) and type(new) is TagResult
+    assert base.measured == 300.0 and math.isnan(base.spread)  # the original is untouched
+    with pytest.raises(FrozenInstanceError):
+        new.count = 1  # type: ignore[misc]
+    with pytest.raises(TypeError, match="no field"):
+        evolve(base, colour="red")
+    est = evolve(Estimate(1.0, 0.1, True), status="model_based")  # __post_init__: through replace
+    assert est.status == "model_based"

@@ -45,7 +45,7 @@ from twin.monitor import (
 from twin.monitor.drift import CLEAR_WINDOWS
 from twin.performance.expected import ExpectedModel, WindowDeviation, window_deviation
 from twin.performance.plant_reconcile import PlantReconciler, PlantReconciliation
-from twin.result import AlarmView, CycleResult, DriftView, Estimate, InputStats, TagResult
+from twin.result import AlarmView, CycleResult, DriftView, Estimate, InputStats, TagResult, evolve
 
 #: KPIs whose deviation from expected feeds the drift charts.
 DRIFT_KPIS = ("section_efficiency.HP", "section_efficiency.IP", "section_efficiency.LP", "turbine_heat_rate")
@@ -322,8 +322,8 @@ class UnitCycle:
                                                    reason=excluded.get(s.tag, ""),
                                                    measured=values.get(s.tag, math.nan))
             if w is not None:
-                base = replace(base, spread=w.std, count=w.count, age_seconds=w.age,
-                               measured=values.get(s.tag, base.measured))
+                base = evolve(base, spread=w.std, count=w.count, age_seconds=w.age,
+                              measured=values.get(s.tag, base.measured))
             tags[s.tag] = base
         return tags
 
