@@ -43,7 +43,7 @@ def evolve(record: _R, **changes: Any) -> _R:
     """
     if hasattr(record, "__post_init__"):
         return replace(record, **changes)
-    unknown = set(changes) - set(record.__dataclass_fields__)
+    unknown = changes.keys() - record.__dataclass_fields__.keys()
     if unknown:
         raise TypeError(f"{type(record).__name__} has no field(s) {sorted(unknown)}")
     new = object.__new__(type(record))

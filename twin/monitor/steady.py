@@ -604,8 +604,8 @@ def steady_detector(config: Any) -> SteadyStateDetector | None:
     frac = float(mon.steady_frozen_fraction)
 
     def floor_of(tag: str) -> Callable[[float], float]:
-        sensor = sensors[tag]
-        return lambda v: frac * float(sensor.sigma_si(v))
+        sigma = sensors[tag].sigma_rule()  # the sensor's σ rule, read once (called every window)
+        return lambda v: frac * float(sigma(v))
 
     return SteadyStateDetector(
         mon.steady_signals, mon.steady_lambdas, mon.steady_critical_r,

@@ -285,22 +285,22 @@ class PlantReconciler:
             return fresh_cache[0]
 
         cls_key = tuple(int(i) for i in measured)
-        warm_starts = [z for z in (self._z_first[1] if self._z_first is not None and self._z_first[0] == cls_key
-                                   else None, self._z_warm) if z is not None]
+        # the previous window's solution with every tag, when it eliminated suspects from this same set
+        z_all = self._z_first[1] if self._z_first is not None and self._z_first[0] == cls_key else None
         if z0 is None:
-            z0 = warm_starts[0] if warm_starts else fresh()
+            z0 = z_all if z_all is not None else self._z_warm if self._z_warm is not None else fresh()
+        from_warm = z0 is z_all or z0 is self._z_warm
         started = time.perf_counter()
         # the classification of this set of valid tags, decided at the first converged solution
         cached = self._classifications.get(cls_key)
         res = reconcile(sysm, z0, measured, y, V, options=self.options, classification=cached)
-        from_warm = any(z0 is z for z in warm_starts)
         # the previous window's solution, when it served this one: a start for the re-solves of elimination
         warm = self._z_warm if res.converged and from_warm else None
         if not res.converged and time.perf_counter() - started < self.time_budget:
             # a stale warm start (after a load change): restart from the previous final solution
             # (when the first try was the solution with every tag), the forward model,
             # and the design point as a last resort
-            starts = [z for z in warm_starts[1:] if from_warm and z0 is warm_starts[0]]
+            starts = [self._z_warm] if z_all is not None and z0 is z_all and self._z_warm is not None else []
             starts += ([] if fresh_cache and z0 is fresh_cache[0] else [fresh()])
             for start in [*starts, self.system.initial_point(self.design.z)]:
                 res = reconcile(sysm, start, measured, y, V, options=self.options, classification=cached)
