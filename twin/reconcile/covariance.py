@@ -202,12 +202,10 @@ def measured_variances(kkt: ScaledKKT, Lfac: np.ndarray, diagonal: bool) -> np.n
     if not diagonal:
         X, _ = kkt.sensitivities()
         return np.einsum("ij,ij->i", Lfac @ X, Lfac)
-    n, size = kkt.n, kkt.n + kkt.p + kkt.m
+    n = kkt.n
     dX = np.empty(n)
     for j0, j1 in column_blocks(n):
-        rhs = np.zeros((size, j1 - j0))
-        rhs[np.arange(j0, j1), np.arange(j1 - j0)] = 1.0
-        s = kkt.solve(rhs, sweeps=1)
+        s = kkt.unit_solves(j0, j1)
         dX[j0:j1] = s[np.arange(j0, j1), np.arange(j1 - j0)]
     return Lfac**2 * dX
 
@@ -232,9 +230,8 @@ def covariance_fields(mode, V, cov_x, cov_xu, cov_u, gain_parts, adj, cls, measu
         cov_z = np.broadcast_to(np.float64(nan), (n_vars, n_vars))
         cov_a = np.broadcast_to(np.float64(nan), (n, n))
     else:
-        cov_z = np.full((n_vars, n_vars), nan)
+        cov_z = None  # set below: in full mode from all four blocks at once
         cov_a = (np.diag(V) if V.ndim == 1 else V) - cov_x
-        cov_z[np.ix_(measured, measured)] = cov_x
     if mode != "none":
         var_x = np.diag(cov_x).copy() if cov_x.ndim == 2 else np.asarray(cov_x, dtype=float)
         var_a = Vd - var_x
@@ -242,14 +239,19 @@ def covariance_fields(mode, V, cov_x, cov_xu, cov_u, gain_parts, adj, cls, measu
         ok = cls.redundant & (var_a > 0) & (redundancy > REDUNDANCY_FLOOR)
         z_norm[ok] = adj[ok] / np.sqrt(var_a[ok])
     if mode == "full":
-        cov_u = cov_u.copy()
-        cov_xu = cov_xu.copy()
-        cov_u[~observable, :] = nan
-        cov_u[:, ~observable] = nan
-        cov_xu[:, ~observable] = nan
-        cov_z[np.ix_(unmeasured, unmeasured)] = cov_u
-        cov_z[np.ix_(measured, unmeasured)] = cov_xu
-        cov_z[np.ix_(unmeasured, measured)] = cov_xu.T
+        # the blocks in [measured, unmeasured] order, NaN rows and columns for the unobservable
+        # unmeasured variables, then every variable's row and column taken to its place
+        blocks = np.block([[cov_x, cov_xu], [cov_xu.T, cov_u]])
+        hidden = n + np.flatnonzero(~observable)
+        blocks[hidden, :] = nan
+        blocks[:, hidden] = nan
+        where = np.empty(n_vars, dtype=np.intp)
+        where[measured] = np.arange(n)
+        where[unmeasured] = np.arange(n, n_vars)
+        cov_z = blocks[np.ix_(where, where)]
+    elif cov_z is None:
+        cov_z = np.full((n_vars, n_vars), nan)
+        cov_z[np.ix_(measured, measured)] = cov_x
     gain = None
     if gain_parts is not None and mode == "full":
         gx, gu = gain_parts

@@ -204,6 +204,8 @@ class ScaledKKT:
         self.K = K
         delta = np.r_[np.zeros(N), np.full(m, DELTA_CONSTRAINTS)]
         self._delta = delta if self._order is None else delta[self._order]
+        #: the row of K holding each unknown (``[w, v, λ]`` numbering)
+        self._where = np.arange(N + m) if self._order is None else np.argsort(self._order)
         self._factor()
 
     def _factor(self) -> None:
@@ -262,9 +264,24 @@ class ScaledKKT:
         X = np.empty((n, n))
         U = np.empty((p, n))
         for j0, j1 in column_blocks(n):
-            rhs = np.zeros((n + p + self.m, j1 - j0))
-            rhs[np.arange(j0, j1), np.arange(j1 - j0)] = 1.0
-            s = self.solve(rhs, sweeps=1)
+            s = self.unit_solves(j0, j1)
             X[:, j0:j1] = s[:n]
-            U[:, j0:j1] = s[n: n + p]
+            U[:, j0:j1] = s[n:]
         return X, U
+
+    def unit_solves(self, j0: int, j1: int) -> np.ndarray:
+        """Rows ``[w, v]`` of the solutions of ``K0 s = e_j`` for the measured unknowns ``j0 ≤ j < j1``.
+
+        The numbers of :meth:`solve` with one refinement sweep on those unit columns,
+        the right-hand side set up in the factored matrix's order and in the column
+        layout SuperLU solves in, and only the rows asked for taken back.
+        """
+        k = j1 - j0
+        where = self._where
+        rhs = np.zeros((self.n + self.p + self.m, k), order="F")
+        rhs[where[j0:j1], np.arange(k)] = 1.0
+        s = self.lu.solve(rhs)
+        s = s + self.lu.solve(rhs - (self.K @ s + self._delta[:, None] * s))
+        if not np.all(np.isfinite(s)):
+            raise KKTFactorisationError("KKT solve produced non-finite values")
+        return s[where[: self.n + self.p]]
