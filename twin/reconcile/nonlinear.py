@@ -317,7 +317,8 @@ def _evaluate(system, z, m_expected=None, dense=True):
         J = np.asarray(J.toarray() if sp.issparse(J) else J, dtype=float)
         finite = bool(np.all(np.isfinite(J)))
     else:
-        J = sp.csr_matrix(J, dtype=float)
+        if not (sp.issparse(J) and J.format == "csr" and J.dtype == np.float64):
+            J = sp.csr_matrix(J, dtype=float)
         finite = bool(np.all(np.isfinite(J.data)))
     if J.shape != (f.shape[0], len(z)):
         raise ValueError(f"jacobian has shape {J.shape}, expected {(f.shape[0], len(z))}")
@@ -411,11 +412,13 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
     measured = np.asarray(measured, dtype=int).reshape(-1)
     if measured.size == 0:
         raise ValueError("no measurements: 'measured' is empty (all measurements removed?)")
-    if np.unique(measured).size != measured.size:
-        raise ValueError("'measured' contains duplicate indices")
     if measured.min() < 0 or measured.max() >= n_vars:
         raise ValueError(f"'measured' indices must lie in [0, {n_vars})")
-    unmeasured = np.setdiff1d(np.arange(n_vars), measured)
+    is_unmeasured = np.ones(n_vars, dtype=bool)
+    is_unmeasured[measured] = False
+    if n_vars - np.count_nonzero(is_unmeasured) != measured.size:
+        raise ValueError("'measured' contains duplicate indices")
+    unmeasured = np.flatnonzero(is_unmeasured)
     if classification is not None and not np.array_equal(classification.measured, measured):
         raise ValueError("classification was computed for a different measured set")
     tol = DEFAULT_RANK_TOL if opts.rank_tol is None else float(opts.rank_tol)
