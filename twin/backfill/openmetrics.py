@@ -6,7 +6,6 @@ import math
 import operator
 from array import array
 from collections.abc import Iterator, Sequence
-from itertools import repeat
 from pathlib import Path
 
 import numpy as np
@@ -115,9 +114,10 @@ class OpenMetricsWriter(SampleSink):
     def chunks(self) -> Iterator[str]:
         """The text in pieces (one per series), ending ``# EOF``.
 
-        A series' lines are joined by C-level maps (``prefix + value + stamp``); its values
-        go through :func:`repr` where that is Go's formatting too (finite and below 1e6),
-        through :func:`_go_float` otherwise.
+        A series' lines are ``prefix + value + stamp``: the ``value + stamp`` parts made by a
+        C-level map and joined with the prefix between them (every series has a sample); its
+        values go through :func:`repr` where that is Go's formatting too (finite and below
+        1e6), through :func:`_go_float` otherwise.
         """
         stamp = self.stamps.__getitem__
         for header, series in self.families.values():
@@ -125,11 +125,12 @@ class OpenMetricsWriter(SampleSink):
             for s in series:
                 a = np.frombuffer(s.values, dtype=float)
                 texts = list(map(repr, s.values))
-                for i in np.flatnonzero(~(np.isfinite(a) & (a < 1e6))).tolist():
-                    texts[i] = _go_float(float(a[i]))
-                lines = map(operator.add, map(operator.add, repeat(s.prefix, len(texts)), texts),
-                            map(stamp, s.windows))
-                yield "".join(lines)
+                odd = ~(np.isfinite(a) & (a < 1e6))
+                if odd.any():
+                    for i in np.flatnonzero(odd).tolist():
+                        texts[i] = _go_float(float(a[i]))
+                p = s.prefix
+                yield p + p.join(map(operator.add, texts, map(stamp, s.windows)))
         yield "# EOF\n"
 
     def write(self, path: str | Path) -> None:

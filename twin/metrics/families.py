@@ -233,19 +233,36 @@ def _streams(f: _Families, r: CycleResult) -> None:
         f.gauge("twin_stream_quality_ratio", "Steam quality (dryness fraction) of a two-phase stream; absent in single phase", st.quality, stream=name)
 
 
+def _sensor_families(quantity: str) -> tuple[str, str, str, str, str, str, Any] | None:
+    """Names and help texts of a sensor quantity's measured, reconciled and uncertainty gauges,
+    and the conversion of its values; None for a dimension without them."""
+    dim = MEASURED_QUANTITIES.get(quantity, (quantity, ""))[0]
+    spec = _DIMENSIONS.get(dim)
+    if spec is None:
+        return None
+    word, unit, absolute = spec
+    what = f"{word.replace('_', ' ')}" + (" in degrees Celsius" if unit == "celsius" else "")
+    return (f"twin_sensor_measured_{word}_{unit}", f"Window mean of a {what} sensor",
+            f"twin_sensor_reconciled_{word}_{unit}", f"Reconciled value at a {what} sensor",
+            f"twin_sensor_reconciled_uncertainty_{word}_{unit}",
+            f"Uncertainty of the reconciled value at a {word.replace('_', ' ')} sensor"
+            + (_DIFF if unit == "celsius" else "") + "." + _EXPANDED,
+            _kelvin_to_celsius if absolute else float)
+
+
+#: :func:`_sensor_families` by quantity, built on first use (every window writes every tag's)
+_SENSOR_FAMILIES: dict[str, tuple[str, str, str, str, str, str, Any] | None] = {}
+
+
 def _sensors(f: _Families, r: CycleResult) -> None:
     for tag, t in r.tags.items():
-        dim = MEASURED_QUANTITIES.get(t.quantity, (t.quantity, ""))[0]
-        spec = _DIMENSIONS.get(dim)
+        q = t.quantity
+        spec = _SENSOR_FAMILIES[q] if q in _SENSOR_FAMILIES else _SENSOR_FAMILIES.setdefault(q, _sensor_families(q))
         if spec is not None:
-            word, unit, absolute = spec
-            conv = _kelvin_to_celsius if absolute else float
-            what = f"{word.replace('_', ' ')}" + (" in degrees Celsius" if unit == "celsius" else "")
-            f.gauge(f"twin_sensor_measured_{word}_{unit}", f"Window mean of a {what} sensor", conv(t.measured), tag=tag)
-            f.gauge(f"twin_sensor_reconciled_{word}_{unit}", f"Reconciled value at a {what} sensor", conv(t.reconciled), tag=tag)
-            f.gauge(f"twin_sensor_reconciled_uncertainty_{word}_{unit}",
-                    f"Uncertainty of the reconciled value at a {word.replace('_', ' ')} sensor"
-                    + (_DIFF if unit == "celsius" else "") + "." + _EXPANDED, 1.96 * t.reconciled_sigma, tag=tag)
+            measured, measured_doc, reconciled, reconciled_doc, uncertainty, uncertainty_doc, conv = spec
+            f.gauge(measured, measured_doc, conv(t.measured), tag=tag)
+            f.gauge(reconciled, reconciled_doc, conv(t.reconciled), tag=tag)
+            f.gauge(uncertainty, uncertainty_doc, 1.96 * t.reconciled_sigma, tag=tag)
         f.gauge("twin_sensor_normalised_adjustment", "Measurement-test statistic z = (measured - reconciled) / sd of the adjustment; absent when not redundant", t.normalised_adjustment, tag=tag)
         f.gauge("twin_sensor_redundancy_ratio", "Redundancy of a measurement, 1 - Var(reconciled) / Var(measured)", t.redundancy, tag=tag)
         f.flag("twin_sensor_suspect", "1 when the sensor fails the family-wise (Sidak-corrected) measurement test this window", t.suspect, tag=tag)
