@@ -9,6 +9,8 @@ import numpy as np
 import pytest
 
 from twin.reconcile import (
+    chi2_quantile,
+    chi2_sf,
     derived_uncertainty,
     detection_power,
     eliminate_suspects_linear,
@@ -170,3 +172,18 @@ def test_synthetic_network_is_consistent():
     f = net.system.residuals(net.z_true)
     assert np.max(np.abs(f)) < 1e-6 * np.max(np.abs(net.z_true))
     assert 40 <= len(net.measured) <= 80
+
+
+@pytest.mark.parametrize(("dof", "q95"), [(1, 3.841), (2, 5.991), (10, 18.307), (30, 43.773)])
+def test_chi2_helpers_against_the_table_and_scipy(dof, q95):
+    # upper 5 % points of chi-square, the table in every statistics handbook
+    # (e.g. NIST/SEMATECH e-Handbook of Statistical Methods, section 1.3.6.7.4) [memory]
+    from scipy import stats
+
+    assert chi2_quantile(0.95, dof) == pytest.approx(q95, abs=6e-4)
+    assert chi2_quantile(0.95, dof) == float(stats.chi2.ppf(0.95, dof))
+    assert chi2_sf(q95, dof) == pytest.approx(0.05, abs=2e-5)
+    # the same special function as scipy's distribution object: the same bits
+    rng = np.random.default_rng(dof)
+    for g in rng.uniform(0.0, 4.0 * q95, 50):
+        assert chi2_sf(float(g), dof) == float(stats.chi2.sf(g, dof))

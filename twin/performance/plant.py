@@ -316,6 +316,13 @@ class PlantSystem:
         self.n_vars = n
         self.n_model = lay.n_vars
         self._skip = self._non_soft_relations()
+        # the fixed parts of the sensor rows (see _rows): name, own column, and a thermometer's
+        # stream and its p, h columns, or another sensor's target column and row scale
+        self._sensor_rows = [
+            (f"sensor.{b.tag}", b.column, b.target, lay.p(b.target), lay.h(b.target), 10.0) if b.kind == "T"
+            else (f"sensor.{b.tag}", b.column, None, b.target_column, -1,
+                  max(abs(float(design.z[b.target_column])) if b.target_column < self.n_model else 300.0, 1.0))
+            for b in self.sensors]
         # the last few evaluations by z (a window's solve starts where the last one ended, and
         # an elimination re-solve where the window's first solve started): exact reuse
         self._evals: OrderedDict[bytes, tuple[np.ndarray, sp.csr_matrix, Context]] = OrderedDict()
@@ -425,16 +432,14 @@ class PlantSystem:
             rows.add(r.name, "performance", zl[col] - float(self.design.z[col]) - zl[r.column],
                      {col: 1.0, r.column: -1.0}, 1e5)
             scales.append(1e5)
-        for b in self.sensors:
-            if b.kind == "T":
-                T, dT_dp, dT_dh = sensor_temperature(ctx, b.target)
-                rows.add(f"sensor.{b.tag}", "sensor", zl[b.column] - T,
-                         {b.column: 1.0, lay.p(b.target): -dT_dp, lay.h(b.target): -dT_dh}, 10.0)
-            else:
-                scale = max(abs(float(self.design.z[b.target_column])) if b.target_column < self.n_model else 300.0, 1.0)
-                rows.add(f"sensor.{b.tag}", "sensor", zl[b.column] - zl[b.target_column],
-                         {b.column: 1.0, b.target_column: -1.0}, scale)
-            scales.append(rows.scales[-1])
+        add = rows.add
+        for name, col, stream, c1, c2, scale in self._sensor_rows:
+            if stream is not None:  # a thermometer: c1, c2 are its stream's p and h columns
+                T, dT_dp, dT_dh = sensor_temperature(ctx, stream)
+                add(name, "sensor", zl[col] - T, {col: 1.0, c1: -dT_dp, c2: -dT_dh}, scale)
+            else:  # c1 is the target column
+                add(name, "sensor", zl[col] - zl[c1], {col: 1.0, c1: -1.0}, scale)
+            scales.append(scale)
         return rows, scales
 
     def _evaluate(self, z: np.ndarray) -> tuple[np.ndarray, sp.csr_matrix]:

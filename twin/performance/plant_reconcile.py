@@ -34,6 +34,7 @@ from twin.performance.plant import K95, PlantSystem
 from twin.reconcile import (
     Classification,
     SolveOptions,
+    chi2_quantile,
     classify,
     eliminate_suspects,
     measurement_test,
@@ -378,12 +379,10 @@ class PlantReconciler:
         kpi_values = self._kpis(z_hat, cov, kpis, share)
         unmeasured = self._unmeasured(z_hat, cov, share)
         t_kpi = time.perf_counter() - t_kpi
-        from scipy.stats import chi2
-
         return PlantReconciliation(
             "converged", res.message, res.iterations, z_hat, cov, tags_out, streams, kpi_values,
             float(res.gamma), int(res.dof), float(res.p_value),
-            float(chi2.ppf(0.95, res.dof)) if res.dof > 0 else math.nan,
+            chi2_quantile(0.95, res.dof) if res.dof > 0 else math.nan,
             tuple(suspects), model_suspects, tuple(r.name for r in sysm.soft), unmeasured, t_kpi,
         )
 

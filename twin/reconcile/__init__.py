@@ -36,6 +36,8 @@ from twin.reconcile.nonlinear import (
 )
 from twin.reconcile.stats import (
     VDI_CRITICAL,
+    chi2_quantile,
+    chi2_sf,
     derived_uncertainty,
     detection_power,
     global_test,
@@ -61,6 +63,8 @@ __all__ = [
     "Result",
     "SolveOptions",
     "SyntheticNetwork",
+    "chi2_quantile",
+    "chi2_sf",
     "classify",
     "derived_uncertainty",
     "detection_power",

@@ -23,7 +23,6 @@ from typing import Protocol, runtime_checkable
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
-from scipy import stats as sps
 
 from twin.reconcile.covariance import (
     LinearisedCovariance,
@@ -42,6 +41,7 @@ from twin.reconcile.linear import (
     _cov_factor,
     _solve,
 )
+from twin.reconcile.stats import chi2_sf
 
 #: Exceptions from the model callbacks that are treated as "no value here".
 MODEL_ERRORS = (ValueError, ArithmeticError)
@@ -564,7 +564,7 @@ def reconcile(system: ConstraintSystem, z0, measured, y, V, *,
                                         observable.copy())
     z_hat = z.copy()
     z_hat[unmeasured[~observable]] = np.nan
-    p_value = float(sps.chi2.sf(gamma, cls.dof)) if cls.dof > 0 else float("nan")
+    p_value = chi2_sf(gamma, cls.dof) if cls.dof > 0 else float("nan")
     return Result(
         status=status, iterations=it, z_hat=z_hat, x_hat=z[measured].copy(),
         adjustments=adj, gamma=gamma, dof=cls.dof, p_value=p_value,

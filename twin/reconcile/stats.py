@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg as sla
-from scipy import optimize
+from scipy import optimize, special
 from scipy import stats as sps
 
 #: VDI 2048 acceptance limit for a single normalised adjustment (95 %, two-sided).
@@ -83,6 +83,21 @@ def global_test(gamma: float, dof: int, alpha: float = 0.05) -> GlobalTest:
     crit = float(sps.chi2.isf(alpha, dof))
     return GlobalTest(float(gamma), int(dof), float(sps.chi2.sf(gamma, dof)), crit, alpha,
                       bool(gamma <= crit))
+
+
+def chi2_sf(gamma: float, dof: int) -> float:
+    """``P(χ²_dof > gamma)`` [-]: scipy's ``chi2.sf`` without its argument handling.
+
+    The same special function (``scipy.special.chdtrc``), so the same bits, at a
+    fiftieth of the cost (about 1 instead of 58 µs; twice a window with an elimination).
+    """
+    return float(special.chdtrc(dof, gamma))
+
+
+@functools.lru_cache(maxsize=256)  # one dof per measured set; scipy's ppf costs ~0.08 ms a call
+def chi2_quantile(q: float, dof: int) -> float:
+    """The ``q`` quantile of the χ² distribution with ``dof`` degrees of freedom (scipy's ``chi2.ppf``)."""
+    return float(sps.chi2.ppf(q, dof))
 
 
 @functools.lru_cache(maxsize=256)  # a few (alpha, n) pairs per plant; scipy's isf costs ~0.1 ms a call
