@@ -388,6 +388,7 @@ class UnitCycle:
         """The pipeline's state as one JSON-able value (see :meth:`restore`)."""
         z = self.reconciler.warm_start
         first = self.reconciler.first_warm_start
+        retest = self.reconciler.retest
         return {
             "version": SNAPSHOT_VERSION,
             "unit_id": self.config.unit.id,
@@ -396,6 +397,8 @@ class UnitCycle:
             # the solution with every valid tag when suspects were eliminated after it (the next first solve's start)
             "warm_start_first": None if first is None else {"measured": list(first[0]),
                                                             "z": [_finite_or_none(v) for v in first[1]]},
+            # the measured set of the last window and the position of its one eliminated measurement (re-tested first)
+            "retest": None if retest is None else {"measured": list(retest[0]), "position": retest[1]},
             "steady": self.steady.snapshot() if self.steady is not None else None,
             "moisture_alarm": self.moisture_alarm.snapshot(),
             "efficiency_alarms": {k: a.snapshot() for k, a in self.efficiency_alarms.items()},
@@ -421,6 +424,9 @@ class UnitCycle:
         if isinstance(first, Mapping) and first.get("measured") is not None and first.get("z") is not None:
             self.reconciler.first_warm_start = (
                 [int(c) for c in first["measured"]], [math.nan if v is None else float(v) for v in first["z"]])
+        retest = snap.get("retest")  # absent from snapshots written before it was kept
+        if isinstance(retest, Mapping) and retest.get("measured") is not None and retest.get("position") is not None:
+            self.reconciler.retest = ([int(c) for c in retest["measured"]], int(retest["position"]))
         if snap.get("steady") is not None and self.steady is not None:
             self.steady.restore(snap["steady"])
         self.moisture_alarm.restore(snap["moisture_alarm"])

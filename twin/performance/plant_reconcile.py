@@ -33,9 +33,11 @@ from twin.performance.kpi import CyclePerformanceSettings, KpiDef, kpi_definitio
 from twin.performance.plant import K95, PlantSystem
 from twin.reconcile import (
     Classification,
+    Result,
     SolveOptions,
     chi2_quantile,
     classify,
+    eliminate_again,
     eliminate_suspects,
     measurement_test,
     reconcile,
@@ -133,6 +135,9 @@ class PlantReconciler:
         self._z_warm: np.ndarray | None = None
         # the last window's solution with every valid tag, when eliminations followed it (its measured set, z)
         self._z_first: tuple[tuple[int, ...], np.ndarray] | None = None
+        # the last window's measured set and the position in it of its one eliminated measurement
+        # (re-tested first in the next window of that set, see _reconcile)
+        self._retest: tuple[tuple[int, ...], int] | None = None
         self._soft_cols = np.array([r.column for r in self.system.soft], dtype=int)
         protected = {c for d in self.kpi_defs if d.name in PROTECTED_KPIS for c in d.columns}
         self._protected_cols = np.array(sorted(protected), dtype=int)
@@ -186,6 +191,7 @@ class PlantReconciler:
         """Forget the warm starts (e.g. after a unit trip)."""
         self._z_warm = None
         self._z_first = None
+        self._retest = None
 
     @property
     def warm_start(self) -> np.ndarray | None:
@@ -196,6 +202,23 @@ class PlantReconciler:
     def warm_start(self, z: Sequence[float] | np.ndarray | None) -> None:
         self._z_warm = self._finite_point(z)
         self._z_first = None
+        self._retest = None
+
+    @property
+    def retest(self) -> tuple[tuple[int, ...], int] | None:
+        """``(measured columns, position)``: the last window's measured set and the position in it of
+        the one measurement it eliminated (None: none, or more than one).
+
+        The next window over the same set solves it without that measurement first and
+        re-tests the measurement there (:func:`twin.reconcile.eliminate_again`); the set with
+        it is solved only when the re-test does not confirm the elimination. Set it after
+        :attr:`warm_start`.
+        """
+        return self._retest
+
+    @retest.setter
+    def retest(self, value: tuple[Sequence[int], int] | None) -> None:
+        self._retest = None if value is None else (tuple(int(c) for c in value[0]), int(value[1]))
 
     @property
     def first_warm_start(self) -> tuple[tuple[int, ...], np.ndarray] | None:
@@ -227,7 +250,7 @@ class PlantReconciler:
         try:
             return self._reconcile(values, excluded=excluded, z0=z0, kpis=kpis, pseudo=pseudo)
         except (ValueError, ArithmeticError, SolveError) as exc:  # property range, singular system...
-            self._z_warm = self._z_first = None
+            self._z_warm = self._z_first = self._retest = None
             tags = {t: TagResult(t, b.quantity, measured=float(values.get(t, math.nan)),
                                  valid=t in values, reason=(excluded or {}).get(t, ""))
                     for t, b in self.system.sensor_by_tag.items()}
@@ -286,53 +309,35 @@ class PlantReconciler:
             return fresh_cache[0]
 
         cls_key = tuple(int(i) for i in measured)
-        # the previous window's solution with every tag, when it eliminated suspects from this same set
-        z_all = self._z_first[1] if self._z_first is not None and self._z_first[0] == cls_key else None
-        if z0 is None:
-            z0 = z_all if z_all is not None else self._z_warm if self._z_warm is not None else fresh()
-        from_warm = z0 is z_all or z0 is self._z_warm
         started = time.perf_counter()
         # the classification of this set of valid tags, decided at the first converged solution
         cached = self._classifications.get(cls_key)
-        res = reconcile(sysm, z0, measured, y, V, options=self.options, classification=cached)
-        # the previous window's solution, when it served this one: a start for the re-solves of elimination
-        warm = self._z_warm if res.converged and from_warm else None
-        if not res.converged and time.perf_counter() - started < self.time_budget:
-            # a stale warm start (after a load change): restart from the previous final solution
-            # (when the first try was the solution with every tag), the forward model,
-            # and the design point as a last resort
-            starts = [self._z_warm] if z_all is not None and z0 is z_all and self._z_warm is not None else []
-            starts += ([] if fresh_cache and z0 is fresh_cache[0] else [fresh()])
-            for start in [*starts, self.system.initial_point(self.design.z)]:
-                res = reconcile(sysm, start, measured, y, V, options=self.options, classification=cached)
-                if res.converged or time.perf_counter() - started > self.time_budget:
-                    break
-        if res.converged and cached is None and res.classification is not None:
-            self._classifications[cls_key] = res.classification
-        if not res.converged:
-            status = "model_error" if res.status == "model_error" else "not_converged"
-            return PlantReconciliation(status, res.message, res.iterations, tags=tags_out)
-        first = res
-        n_s = len(valid)
-        flagged = measurement_test(first.z, self.alpha).flagged_sidak
         eliminated: dict[int, Any] = {}
-        if self.max_eliminations > 0 and np.any(flagged[:n_s]) and time.perf_counter() - started < self.time_budget:
-            soft = set(self._soft_cols.tolist())
-            protected = self._protected_cols
-
-            def keep_ok(cls: Classification) -> bool:
-                if not soft.issubset(set(cls.measured.tolist())):
-                    return False
-                return bool(np.all(cls.determined[protected])) if protected.size else True
-
-            elim = eliminate_suspects(sysm, first.z_warm, measured, y, V, max_eliminations=self.max_eliminations,
-                                      alpha=self.alpha, criterion="sidak", protected=keep_ok, options=self.options,
-                                      restart=fresh, first=first, warm=warm, classifications=self._classifications)
-            if elim.result.converged:
-                res = elim.result
-                eliminated = {e.position: e for e in elim.eliminated}
+        res: Result | None = None
+        first: Result | None = None
+        retest = self._retest
+        if (retest is not None and retest[0] == cls_key and z0 is None and cached is not None
+                and self._z_warm is not None):
+            # the last window of this set eliminated one measurement: solve without it first and
+            # re-test it there; the set with it is solved only when the re-test does not confirm it
+            again = eliminate_again(sysm, measured, y, V, retest[1], full=cached,
+                                    max_eliminations=self.max_eliminations, alpha=self.alpha, criterion="sidak",
+                                    protected=self._keep_ok, options=self.options, restart=fresh,
+                                    warm=self._z_warm, classifications=self._classifications)
+            if again is not None and again.result.converged and again.first_redundancy is not None:
+                res = again.result
+                eliminated = {e.position: e for e in again.eliminated}
+                first_redundancy = again.first_redundancy
+        if res is None:
+            first, res, eliminated = self._solve_all(sysm, measured, y, V, cls_key, cached, z0, fresh, fresh_cache,
+                                                     started, len(valid))
+            if res is None:
+                status = "model_error" if first.status == "model_error" else "not_converged"
+                return PlantReconciliation(status, first.message, first.iterations, tags=tags_out)
+            first_redundancy = first.redundancy
         self._z_warm = res.z_warm.copy()
-        self._z_first = (cls_key, first.z_warm.copy()) if res is not first else None
+        self._z_first = (cls_key, first.z_warm.copy()) if first is not None and res is not first else None
+        self._retest = (cls_key, next(iter(eliminated))) if len(eliminated) == 1 else None
         # ---- tags
         final_pos = {int(v): i for i, v in enumerate(res.measured)}
         mt_final = measurement_test(res.z, self.alpha)
@@ -347,7 +352,7 @@ class PlantReconciler:
                 rec, rec_sig = e.re_estimate, e.re_estimate_sigma
                 adjustment = float(y_s[i] - rec)
                 suspect = True
-                red = float(first.redundancy[i])
+                red = float(first_redundancy[i])
                 zj = adjustment / math.sqrt(sig_s[i] ** 2 + rec_sig**2) if math.isfinite(rec_sig) else math.nan
             else:
                 j = final_pos[col]
@@ -385,6 +390,54 @@ class PlantReconciler:
             chi2_quantile(0.95, res.dof) if res.dof > 0 else math.nan,
             tuple(suspects), model_suspects, tuple(r.name for r in sysm.soft), unmeasured, t_kpi,
         )
+
+    def _keep_ok(self, cls: Classification) -> bool:
+        """An elimination trial set is allowed: it keeps every soft relation and the protected KPIs determined."""
+        if not set(self._soft_cols.tolist()).issubset(set(cls.measured.tolist())):
+            return False
+        protected = self._protected_cols
+        return bool(np.all(cls.determined[protected])) if protected.size else True
+
+    def _solve_all(self, sysm: PlantSystem, measured: np.ndarray, y: np.ndarray, V: np.ndarray,
+                   cls_key: tuple[int, ...], cached: Classification | None, z0: np.ndarray | None,
+                   fresh: Callable[[], np.ndarray], fresh_cache: list[np.ndarray], started: float,
+                   n_s: int) -> tuple[Result, Result | None, dict[int, Any]]:
+        """The set with every valid tag solved, then serial elimination: ``(first, final, eliminated)``;
+        final None when the first solve did not converge (``first`` says why)."""
+        # the previous window's solution with every tag, when it eliminated suspects from this same set
+        z_all = self._z_first[1] if self._z_first is not None and self._z_first[0] == cls_key else None
+        if z0 is None:
+            z0 = z_all if z_all is not None else self._z_warm if self._z_warm is not None else fresh()
+        from_warm = z0 is z_all or z0 is self._z_warm
+        res = reconcile(sysm, z0, measured, y, V, options=self.options, classification=cached)
+        # the previous window's solution, when it served this one: a start for the re-solves of elimination
+        warm = self._z_warm if res.converged and from_warm else None
+        if not res.converged and time.perf_counter() - started < self.time_budget:
+            # a stale warm start (after a load change): restart from the previous final solution
+            # (when the first try was the solution with every tag), the forward model,
+            # and the design point as a last resort
+            starts = [self._z_warm] if z_all is not None and z0 is z_all and self._z_warm is not None else []
+            starts += ([] if fresh_cache and z0 is fresh_cache[0] else [fresh()])
+            for start in [*starts, self.system.initial_point(self.design.z)]:
+                res = reconcile(sysm, start, measured, y, V, options=self.options, classification=cached)
+                if res.converged or time.perf_counter() - started > self.time_budget:
+                    break
+        if res.converged and cached is None and res.classification is not None:
+            self._classifications[cls_key] = res.classification
+        if not res.converged:
+            return res, None, {}
+        first = res
+        flagged = measurement_test(first.z, self.alpha).flagged_sidak
+        eliminated: dict[int, Any] = {}
+        if self.max_eliminations > 0 and np.any(flagged[:n_s]) and time.perf_counter() - started < self.time_budget:
+            elim = eliminate_suspects(sysm, first.z_warm, measured, y, V, max_eliminations=self.max_eliminations,
+                                      alpha=self.alpha, criterion="sidak", protected=self._keep_ok,
+                                      options=self.options, restart=fresh, first=first, warm=warm,
+                                      classifications=self._classifications)
+            if elim.result.converged:
+                res = elim.result
+                eliminated = {e.position: e for e in elim.eliminated}
+        return first, res, eliminated
 
     # ------------------------------------------------------------------ outputs
     def _streams(self, z: np.ndarray) -> dict[str, StreamState]:

@@ -15,8 +15,11 @@
 from twin.reconcile.elimination import (
     EliminatedMeasurement,
     Elimination,
+    Readmitted,
+    eliminate_again,
     eliminate_suspects,
     eliminate_suspects_linear,
+    readmit,
 )
 from twin.reconcile.linear import (
     DEFAULT_RANK_TOL,
@@ -60,6 +63,7 @@ __all__ = [
     "InconsistentConstraintsError",
     "LinearResult",
     "LinearSystem",
+    "Readmitted",
     "Result",
     "SolveOptions",
     "SyntheticNetwork",
@@ -68,6 +72,7 @@ __all__ = [
     "classify",
     "derived_uncertainty",
     "detection_power",
+    "eliminate_again",
     "eliminate_suspects",
     "eliminate_suspects_linear",
     "global_test",
@@ -75,6 +80,7 @@ __all__ = [
     "measurement_test",
     "minimum_detectable_bias",
     "numerical_gradient",
+    "readmit",
     "reconcile",
     "reconcile_linear",
     "sidak_critical",
