@@ -57,3 +57,23 @@ def test_bench_reconcile_rejects_bad_cycle_loads(capsys):
     with pytest.raises(SystemExit) as exc:
         parser.parse_args(["--cycle-loads", "1.0,1.9"])
     assert exc.value.code == 2 and "expected load fractions within 0.2-1.2" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("what", ["backfill", "reconcile", "properties"])
+def test_bench_with_an_unusable_plant_file_says_so_in_one_line(what, tmp_path, capsys, monkeypatch):
+    # a benchmark's plant file is checked like every command's: one line naming it, exit 2
+    # (missing) or 1 (broken), no traceback; the default is found from the package, so the
+    # benchmarks also run from another working directory
+    from twin.bench import DEFAULT_CONFIG
+    from twin.cli import main
+
+    assert DEFAULT_CONFIG.is_file()
+    monkeypatch.chdir(tmp_path)
+    assert main(["bench", what, "--config", str(tmp_path / "absent.toml")]) == 2
+    err = capsys.readouterr().err
+    assert err == f"twin bench {what}: cannot read {tmp_path / 'absent.toml'}: no such file\n"
+    broken = tmp_path / "broken.toml"
+    broken.write_text("[unit\n", encoding="utf-8")
+    assert main(["bench", what, "--config", str(broken)]) == 1
+    err = capsys.readouterr().err
+    assert err.startswith(f"{broken}:1:") and "Traceback" not in err

@@ -50,6 +50,8 @@ from typing import Any
 
 import numpy as np
 
+from twin.bench import DEFAULT_CONFIG
+
 GOAL_WINDOWS_PER_S = 500.0
 GOAL_ROWS_PER_S = 5e6  # CSV rows per second per core (CPU time of the reading process)
 READING_HOW = ("median of `repeats` reads of the same file by one HistoryReader each (CPU seconds of the process, "
@@ -60,7 +62,7 @@ YEAR_WINDOWS_1MIN = 365 * 24 * 60
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--config", default="configs/demo-u1.toml", help="plant config (default demo-u1)")
+    parser.add_argument("--config", default=str(DEFAULT_CONFIG), help="plant config (default demo-u1)")
     parser.add_argument("--hours", type=float, default=2.0, help="simulated span back-filled [h] (default 2)")
     parser.add_argument("--cycle", type=float, default=60.0, help="window grid and length [s] (default 60)")
     parser.add_argument("--sample-interval", type=float, default=10.0, help="history sample interval [s] (default 10)")

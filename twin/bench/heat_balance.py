@@ -28,11 +28,11 @@ import statistics
 import time
 from collections.abc import Callable
 from dataclasses import replace
-from pathlib import Path
 from typing import Any
 
+from twin.bench import DEFAULT_CONFIG
+
 GOAL_MS = 50.0
-DEFAULT_CONFIG = Path(__file__).resolve().parents[2] / "configs" / "demo-u1.toml"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:

@@ -23,7 +23,6 @@ from typing import Any
 from twin.bench.ingest_publisher import BulkPublisher
 from twin.mqtt import MqttClient
 
-DEFAULT_CONFIG = Path(__file__).resolve().parents[2] / "configs" / "demo-u1.toml"
 T0 = 1_700_000_000.0  # simulated epoch of the first window [s]
 
 

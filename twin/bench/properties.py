@@ -42,12 +42,11 @@ import platform
 import statistics
 import time
 from collections.abc import Callable
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-DEFAULT_CONFIG = Path(__file__).resolve().parents[2] / "configs" / "demo-u1.toml"
+from twin.bench import DEFAULT_CONFIG
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:

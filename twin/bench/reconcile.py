@@ -35,9 +35,11 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import numpy as np
 
+from twin.bench import DEFAULT_CONFIG
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--config", default="configs/demo-u1.toml", help="plant config (default demo-u1)")
+    parser.add_argument("--config", default=str(DEFAULT_CONFIG), help="plant config (default demo-u1)")
     parser.add_argument("--runs", type=int, default=50, help="warm-started demo-u1 runs (default 50)")
     parser.add_argument("--slsqp-runs", type=int, default=3, help="SLSQP runs (default 3)")
     parser.add_argument("--repeat", type=int, default=5, help="runs per synthetic size (default 5)")

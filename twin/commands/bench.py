@@ -42,6 +42,13 @@ def run(args: argparse.Namespace) -> int:
     if args._bench is None:
         print(f"twin bench: {args.benchmark!r} is not available in this build", file=sys.stderr)
         return 2
+    config = getattr(args, "config", None)
+    if isinstance(config, str):  # a plant file that cannot be used: one line, not a traceback from inside
+        from twin.commands._plant import load_plant
+
+        loaded = load_plant(f"twin bench {args.benchmark}", config)
+        if isinstance(loaded, int):
+            return loaded
     figures = args._bench(args)
     print(json.dumps(figures, indent=2, sort_keys=True))
     return 0
