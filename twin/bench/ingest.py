@@ -569,7 +569,8 @@ def _cycle_figures(bench: _Bench, args: argparse.Namespace, queue: int) -> dict[
         return CYCLE_HOOK(bench.store, bench.topic_map, args)
     if int(args.cycles) <= 0:
         return None
-    from twin.bench.ingest_cycle import DEFAULT_CONFIG, cycle_latency
+    from twin.bench import DEFAULT_CONFIG
+    from twin.bench.ingest_cycle import cycle_latency
 
     with tempfile.TemporaryDirectory(prefix="twin-bench-") as tmp:
         broker, port, _ = _start_broker(Path(tmp), max(queue, 10_000))
