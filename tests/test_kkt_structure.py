@@ -39,12 +39,18 @@ def _problem_synthetic():
     return J, np.asarray(net.measured), net.system.n_vars, vs, rs
 
 
-@pytest.mark.parametrize("make", [_problem_demo, _problem_synthetic])
-def test_kept_structure_gives_the_coordinate_matrix(make):
+def _with_sigma(make, seed: int):
+    """The problem, its unmeasured columns and measurement σ drawn around the variable scales."""
     J, measured, n_vars, vs, rs = make()
     unmeasured = np.setdiff1d(np.arange(n_vars), measured)
-    rng = np.random.default_rng(2)
+    rng = np.random.default_rng(seed)
     sigma = vs[measured] * (0.5 + rng.random(measured.size))
+    return J, measured, unmeasured, vs, rs, sigma, rng
+
+
+@pytest.mark.parametrize("make", [_problem_demo, _problem_synthetic])
+def test_kept_structure_gives_the_coordinate_matrix(make):
+    J, measured, unmeasured, vs, rs, sigma, rng = _with_sigma(make, 2)
     assert J.format == "csr" and J.has_canonical_format
     for k in range(2):  # the second call reuses the kept structure
         Jk = J.copy()
@@ -91,10 +97,7 @@ def test_unit_solves_are_the_columns_of_the_inverse(make):
     # the covariance's unit-column solves, set up in the factored matrix's order: the same
     # numbers as the general solve with one refinement sweep, on an ordered and on an unordered
     # matrix; and the columns of K0⁻¹ as numpy's dense LU (LAPACK) gives them
-    J, measured, n_vars, vs, rs = make()
-    unmeasured = np.setdiff1d(np.arange(n_vars), measured)
-    rng = np.random.default_rng(7)
-    sigma = vs[measured] * (0.5 + rng.random(measured.size))
+    J, measured, unmeasured, vs, rs, sigma, _ = _with_sigma(make, 7)
     n, p = measured.size, unmeasured.size
     j0, j1 = 3, min(n, 40)
     for Jk in (J, J.tocsc()):  # kept structure (ordered), coordinate assembly (unordered)
