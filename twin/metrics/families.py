@@ -8,6 +8,7 @@ writer (:class:`twin.backfill.openmetrics.OpenMetricsWriter`) and
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Iterable, Iterator, Mapping
 from typing import Any
@@ -233,6 +234,7 @@ def _streams(f: _Families, r: CycleResult) -> None:
         f.gauge("twin_stream_quality_ratio", "Steam quality (dryness fraction) of a two-phase stream; absent in single phase", st.quality, stream=name)
 
 
+@functools.cache  # a handful of quantities; every window writes every tag's
 def _sensor_families(quantity: str) -> tuple[str, str, str, str, str, str, Any] | None:
     """Names and help texts of a sensor quantity's measured, reconciled and uncertainty gauges,
     and the conversion of its values; None for a dimension without them."""
@@ -250,14 +252,9 @@ def _sensor_families(quantity: str) -> tuple[str, str, str, str, str, str, Any] 
             _kelvin_to_celsius if absolute else float)
 
 
-#: :func:`_sensor_families` by quantity, built on first use (every window writes every tag's)
-_SENSOR_FAMILIES: dict[str, tuple[str, str, str, str, str, str, Any] | None] = {}
-
-
 def _sensors(f: _Families, r: CycleResult) -> None:
     for tag, t in r.tags.items():
-        q = t.quantity
-        spec = _SENSOR_FAMILIES[q] if q in _SENSOR_FAMILIES else _SENSOR_FAMILIES.setdefault(q, _sensor_families(q))
+        spec = _sensor_families(t.quantity)
         if spec is not None:
             measured, measured_doc, reconciled, reconciled_doc, uncertainty, uncertainty_doc, conv = spec
             f.gauge(measured, measured_doc, conv(t.measured), tag=tag)

@@ -139,6 +139,7 @@ class PlantReconciler:
         # (re-tested first in the next window of that set, see _reconcile)
         self._retest: tuple[tuple[int, ...], int] | None = None
         self._soft_cols = np.array([r.column for r in self.system.soft], dtype=int)
+        self._soft_set = frozenset(self._soft_cols.tolist())
         protected = {c for d in self.kpi_defs if d.name in PROTECTED_KPIS for c in d.columns}
         self._protected_cols = np.array(sorted(protected), dtype=int)
 
@@ -393,7 +394,7 @@ class PlantReconciler:
 
     def _keep_ok(self, cls: Classification) -> bool:
         """An elimination trial set is allowed: it keeps every soft relation and the protected KPIs determined."""
-        if not set(self._soft_cols.tolist()).issubset(set(cls.measured.tolist())):
+        if not self._soft_set.issubset(cls.measured.tolist()):
             return False
         protected = self._protected_cols
         return bool(np.all(cls.determined[protected])) if protected.size else True

@@ -196,6 +196,11 @@ def _first_choice(z: np.ndarray, adjustments: np.ndarray, var_a: np.ndarray | No
     return [j for j in np.argsort(-np.nan_to_num(drop, nan=-1.0)) if flags[j]], bias
 
 
+def _trial_key(trial: np.ndarray) -> tuple:
+    """The key of an elimination trial set's classification in the caller's cache."""
+    return ("trial", *(int(v) for v in trial))
+
+
 def _solve_without(system: ConstraintSystem, measured: np.ndarray, y: np.ndarray, V: np.ndarray, keep: np.ndarray,
                    starts: list[Any], options: SolveOptions | None,
                    classifications: MutableMapping[tuple, Classification] | None) -> Result:
@@ -234,15 +239,17 @@ def _serial(system: ConstraintSystem, measured: np.ndarray, y: np.ndarray, V: np
         if len(log) >= max_eliminations:
             break
         order, bias = choice
-        J = _dense(system.jacobian(res.z_warm))
+        J = None  # the Jacobian at the solution, only for a trial set not classified before
         chosen = None
         for j in order:
             trial = np.delete(measured[keep], j)
             if trial.size == 0:
                 continue
-            key = ("trial", *(int(v) for v in trial))
+            key = _trial_key(trial)
             cls = classifications.get(key) if classifications is not None else None
             if cls is None:
+                if J is None:
+                    J = _dense(system.jacobian(res.z_warm))
                 cls = classify(J, trial, sigma=np.sqrt(np.diag(np.delete(np.delete(Vk, j, 0), j, 1))))
                 if classifications is not None:
                     classifications[key] = cls
@@ -355,7 +362,7 @@ def eliminate_again(system: ConstraintSystem, measured, y, V, position: int, *, 
     order, bias = choice
     for j in order:  # the first flagged measurement whose removal is allowed must be this one
         trial = np.delete(measured, j)
-        cls = classifications.get(("trial", *(int(v) for v in trial))) if trial.size else None
+        cls = classifications.get(_trial_key(trial)) if trial.size else None
         if cls is None:
             return None  # not classified before: the full set decides
         if ok(cls):

@@ -233,18 +233,21 @@ class ScaledKKT:
         ``K0`` is the factored matrix without the ``−δI`` block.
         """
         order = self._order
-        if order is not None:
-            rhs = rhs[order]
+        if order is None:
+            return self._refined(rhs, sweeps)
+        s = self._refined(rhs[order], sweeps)
+        out = np.empty_like(s)  # in s's memory layout, which the callers' products see
+        out[order] = s
+        return out
+
+    def _refined(self, rhs: np.ndarray, sweeps: int) -> np.ndarray:
+        """``K0 s = rhs`` with ``rhs`` and ``s`` in the rows of the factored matrix, refined ``sweeps`` times."""
         s = self.lu.solve(rhs)
         delta = self._delta if rhs.ndim == 1 else self._delta[:, None]
         for _ in range(sweeps):
             s = s + self.lu.solve(rhs - (self.K @ s + delta * s))
         if not np.all(np.isfinite(s)):
             raise KKTFactorisationError("KKT solve produced non-finite values")
-        if order is not None:
-            out = np.empty_like(s)
-            out[order] = s
-            return out
         return s
 
     def step(self, g: np.ndarray, f_scaled: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -280,8 +283,4 @@ class ScaledKKT:
         where = self._where
         rhs = np.zeros((self.n + self.p + self.m, k), order="F")
         rhs[where[j0:j1], np.arange(k)] = 1.0
-        s = self.lu.solve(rhs)
-        s = s + self.lu.solve(rhs - (self.K @ s + self._delta[:, None] * s))
-        if not np.all(np.isfinite(s)):
-            raise KKTFactorisationError("KKT solve produced non-finite values")
-        return s[where[: self.n + self.p]]
+        return self._refined(rhs, 1)[where[: self.n + self.p]]
